@@ -14,6 +14,8 @@ Public names: ``seed_state``, ``next_u64``, ``uniform``, ``normal``.
 from __future__ import annotations
 
 import math
+import os
+import warnings
 
 import numpy as np
 from numba import njit
@@ -22,6 +24,10 @@ _GOLDEN_GAMMA = np.uint64(0x9E3779B97F4A7C15)  # SplitMix64 increment (Steele et
 _MIX1 = np.uint64(0xBF58476D1CE4E5B9)  # SplitMix64 finaliser constants (Steele et al. 2014)
 _MIX2 = np.uint64(0x94D049BB133111EB)
 _TWO_POW_53 = 9007199254740992.0  # 2**53: a double has 53 bits of mantissa
+
+if os.environ.get("NUMBA_DISABLE_JIT") == "1":
+    # As plain Python, numpy warns on the uint64 wrap-around that SplitMix64 relies on.
+    warnings.filterwarnings("ignore", "overflow encountered in scalar", RuntimeWarning)
 
 
 def seed_state(seed: int, stream: int = 0) -> np.uint64:

@@ -1,0 +1,7 @@
+"""``python -m clampcore``: the command line."""
+
+import sys
+
+from clampcore.cli import main
+
+sys.exit(main())

@@ -1,0 +1,98 @@
+"""ADC/DAC counts <-> membrane potential and command current.
+
+A board's N-bit converter maps count c (0 .. 2^N - 1) linearly onto its range
+[min_V, max_V]: volts = min_V + c (max_V - min_V) / (2^N - 1) (PROTOCOL.md).
+The amplifier then scales: its membrane-potential output gives
+v_mV = volts * vm_mV_per_V + vm_offset_mV, from which the liquid-junction
+potential is subtracted (V_m = V_recorded - V_LJ, the convention of Neher 1992,
+Methods Enzymol 207:123); its command input passes
+i_pA = volts * command_pA_per_V + command_offset_pA.
+
+The host side (``counts_to_mV``, ``pA_to_counts``) is what the loop uses; the
+board side (``mV_to_counts``, ``counts_to_pA``) is the physics a simulated rig
+applies. All four are compiled and read one float64 array ``conv`` built by
+``conversion_array``.
+
+Public names: ``Converter``, ``DEFAULT_BOARD_ADC``, ``DEFAULT_BOARD_DAC``,
+``conversion_array``, ``counts_to_mV``, ``pA_to_counts``, ``mV_to_counts``,
+``counts_to_pA``, ``current_range_pA``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numba import njit
+
+
+@dataclass(frozen=True)
+class Converter:
+    """One converter of a board: resolution and full-scale range in volts."""
+
+    bits: int
+    min_V: float
+    max_V: float
+
+
+# The simulated rig's converters: 16-bit, +-10 V, as on common lab DAQ boards (common practice).
+DEFAULT_BOARD_ADC = Converter(16, -10.0, 10.0)
+DEFAULT_BOARD_DAC = Converter(16, -10.0, 10.0)
+
+C_ADC_TOP, C_ADC_MIN, C_ADC_MAX = 0, 1, 2
+C_DAC_TOP, C_DAC_MIN, C_DAC_MAX = 3, 4, 5
+C_VM_SCALE, C_VM_OFFSET, C_LJP = 6, 7, 8
+C_CMD_SCALE, C_CMD_OFFSET = 9, 10
+N_CONV = 11
+
+
+def conversion_array(adc: Converter, dac: Converter, amplifier: dict[str, Any]) -> np.ndarray:
+    """The ``conv`` array for a board's converters and an ``[amplifier]`` table."""
+    conv = np.zeros(N_CONV)
+    conv[C_ADC_TOP] = 2**adc.bits - 1
+    conv[C_ADC_MIN], conv[C_ADC_MAX] = adc.min_V, adc.max_V
+    conv[C_DAC_TOP] = 2**dac.bits - 1
+    conv[C_DAC_MIN], conv[C_DAC_MAX] = dac.min_V, dac.max_V
+    conv[C_VM_SCALE] = amplifier["vm_mV_per_V"]
+    conv[C_VM_OFFSET] = amplifier["vm_offset_mV"]
+    conv[C_LJP] = amplifier["liquid_junction_mV"]
+    conv[C_CMD_SCALE] = amplifier["command_pA_per_V"]
+    conv[C_CMD_OFFSET] = amplifier["command_offset_pA"]
+    return conv
+
+
+@njit(cache=True, nogil=True)
+def counts_to_mV(conv: np.ndarray, counts: float) -> float:
+    """Host: ADC counts -> membrane potential in mV (junction potential corrected)."""
+    volts = conv[C_ADC_MIN] + counts * (conv[C_ADC_MAX] - conv[C_ADC_MIN]) / conv[C_ADC_TOP]
+    return volts * conv[C_VM_SCALE] + conv[C_VM_OFFSET] - conv[C_LJP]
+
+
+@njit(cache=True, nogil=True)
+def pA_to_counts(conv: np.ndarray, i_pA: float) -> int:
+    """Host: command current in pA -> nearest DAC count, clipped to the converter."""
+    volts = (i_pA - conv[C_CMD_OFFSET]) / conv[C_CMD_SCALE]
+    c = round((volts - conv[C_DAC_MIN]) / (conv[C_DAC_MAX] - conv[C_DAC_MIN]) * conv[C_DAC_TOP])
+    return int(min(max(c, 0.0), conv[C_DAC_TOP]))
+
+
+@njit(cache=True, nogil=True)
+def mV_to_counts(conv: np.ndarray, v_mV: float) -> int:
+    """Board physics: true membrane potential -> the ADC count the board reads."""
+    volts = (v_mV + conv[C_LJP] - conv[C_VM_OFFSET]) / conv[C_VM_SCALE]
+    c = round((volts - conv[C_ADC_MIN]) / (conv[C_ADC_MAX] - conv[C_ADC_MIN]) * conv[C_ADC_TOP])
+    return int(min(max(c, 0.0), conv[C_ADC_TOP]))
+
+
+@njit(cache=True, nogil=True)
+def counts_to_pA(conv: np.ndarray, counts: float) -> float:
+    """Board physics: DAC count -> the current the amplifier injects, pA."""
+    volts = conv[C_DAC_MIN] + counts * (conv[C_DAC_MAX] - conv[C_DAC_MIN]) / conv[C_DAC_TOP]
+    return volts * conv[C_CMD_SCALE] + conv[C_CMD_OFFSET]
+
+
+def current_range_pA(conv: np.ndarray) -> tuple[float, float]:
+    """The lowest and highest current the DAC and amplifier can command, pA."""
+    ends = (counts_to_pA(conv, 0.0), counts_to_pA(conv, conv[C_DAC_TOP]))
+    return min(ends), max(ends)

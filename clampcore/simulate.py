@@ -1,0 +1,274 @@
+"""Offline closed loop: the experiment's step against a model cell, faster than real time.
+
+For every sample n the model cell is advanced over (t_{n-1}, t_n] with the
+command in force at sample n, its membrane potential is read through the same
+ADC and amplifier scaling as on the simulated rig, ``step`` computes the
+command, and that command is in force from sample n + 1 + extra_delay_samples
+on (through the DAC and amplifier scaling). This is the timing model of the
+real loop (DEVELOPERS.md), and the same ``step`` the serial loop calls.
+
+Public names: ``simulate``, ``Recording``, ``closed_loop``, ``recording_from_arrays``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numba import njit
+
+from clampcore.calibration import (
+    DEFAULT_BOARD_ADC,
+    DEFAULT_BOARD_DAC,
+    conversion_array,
+    counts_to_mV,
+    counts_to_pA,
+    mV_to_counts,
+    pA_to_counts,
+)
+from clampcore.elements import KIND_NEURON
+from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.experiment import Experiment
+from clampcore.program import Program, build_program
+from clampcore.step import (
+    FAULT_BAD_V,
+    FAULT_NONFINITE,
+    FLAG_LIMITED,
+    LS_CELL_SPIKED,
+    LS_FLAGS,
+    step,
+)
+from simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
+
+# Elements whose conductance is recorded (a current waveform has none).
+_CONDUCTANCE_KINDS = ("leak", "threshold_reset", "synapse", "noise")
+
+
+@njit(cache=True, nogil=True)
+def closed_loop(
+    n_samples: int,
+    delay_samples: int,
+    quantise: bool,
+    conv: np.ndarray,
+    cell_kind: int,
+    cell_p: np.ndarray,
+    cell_s: np.ndarray,
+    cell_rng: np.ndarray,
+    kind: np.ndarray,
+    params: np.ndarray,
+    state: np.ndarray,
+    rng: np.ndarray,
+    trains: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+    loop_p: np.ndarray,
+    loop_s: np.ndarray,
+    spike_rows: np.ndarray,
+    commands_pA: np.ndarray,
+    out_v: np.ndarray,
+    out_i: np.ndarray,
+    out_g: np.ndarray,
+    out_i_el: np.ndarray,
+    out_spikes: np.ndarray,
+    out_flags: np.ndarray,
+) -> None:
+    """Run ``n_samples`` of the closed loop, writing every output array in place.
+
+    ``commands_pA`` (length ``delay_samples``) holds the commands still on their
+    way to the cell; ``spike_rows`` lists the neuron/threshold rows whose spike
+    flag is recorded after the cell's (column 0 of ``out_spikes``).
+    """
+    dt_ms = loop_p[0]
+    zero_counts = pA_to_counts(conv, 0.0)
+    applied_pA = counts_to_pA(conv, zero_counts) if quantise else 0.0
+    for n in range(n_samples):
+        if n >= delay_samples:
+            applied_pA = commands_pA[n % delay_samples]
+        if n > 0:
+            cell_advance(cell_kind, cell_p, cell_s, cell_rng, applied_pA, dt_ms)
+        v_mV = cell_measure_mV(cell_kind, cell_p, cell_s, cell_rng, applied_pA)
+        if quantise:
+            v_mV = counts_to_mV(conv, mV_to_counts(conv, v_mV))
+        i_pA = step(v_mV, n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+        commands_pA[n % delay_samples] = (
+            counts_to_pA(conv, pA_to_counts(conv, i_pA)) if quantise else i_pA
+        )
+        out_v[n] = v_mV
+        out_i[n] = i_pA
+        out_g[n, :] = g_out
+        out_i_el[n, :] = i_out
+        out_spikes[n, 0] = loop_s[LS_CELL_SPIKED] != 0.0
+        for j in range(spike_rows.shape[0]):
+            out_spikes[n, j + 1] = state[spike_rows[j], NEURON_S_SPIKED] != 0.0
+        out_flags[n] = int(loop_s[LS_FLAGS])
+
+
+@dataclass
+class Recording:
+    """What a run recorded: traces per sample, spikes, faults, and what ran."""
+
+    rate_hz: float
+    v_mV: np.ndarray
+    i_pA: np.ndarray
+    g_nS: dict[str, np.ndarray]
+    i_element_pA: dict[str, np.ndarray]
+    spikes: dict[str, np.ndarray]  # source name -> bool per sample ("cell" first)
+    flags: np.ndarray
+    faults: dict[str, int]
+    experiment: Experiment
+    seed: int = 0
+    source: str = "offline simulation"
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def t_s(self) -> np.ndarray:
+        return np.arange(self.v_mV.size) / self.rate_hz
+
+    @property
+    def duration_s(self) -> float:
+        return self.v_mV.size / self.rate_hz
+
+    @property
+    def spike_times_s(self) -> np.ndarray:
+        """The recorded cell's spike times, s."""
+        return np.flatnonzero(self.spikes["cell"]) / self.rate_hz
+
+    def neuron_spike_times_s(self, name: str) -> np.ndarray:
+        return np.flatnonzero(self.spikes[name]) / self.rate_hz
+
+    def summary(self) -> dict[str, float]:
+        n_spikes = int(self.spikes["cell"].sum())
+        return {
+            "duration_s": self.duration_s,
+            "spikes": n_spikes,
+            "rate_hz": n_spikes / self.duration_s if self.duration_s else 0.0,
+            "mean_current_pA": float(np.mean(self.i_pA)) if self.i_pA.size else 0.0,
+            "peak_current_pA": float(np.max(np.abs(self.i_pA))) if self.i_pA.size else 0.0,
+            "mean_v_mV": float(np.mean(self.v_mV)) if self.v_mV.size else 0.0,
+            "fault_samples": self.faults["fault_samples"],
+            "limited_samples": self.faults["limited_samples"],
+        }
+
+    def summary_text(self) -> str:
+        s = self.summary()
+        return (
+            f"{s['duration_s']:.3g} s: {s['spikes']} spikes ({s['rate_hz']:.2f} Hz), "
+            f"mean V {s['mean_v_mV']:.2f} mV, current mean {s['mean_current_pA']:.1f} pA "
+            f"peak {s['peak_current_pA']:.1f} pA, faults {s['fault_samples']}, "
+            f"samples at the current limit {s['limited_samples']}"
+        )
+
+    def columns(self) -> dict[str, np.ndarray]:
+        """Per-sample columns named as the journal and NWB writer expect."""
+        cols: dict[str, np.ndarray] = {"v_mV": self.v_mV, "i_pA": self.i_pA}
+        for name, g in self.g_nS.items():
+            cols[f"g_nS/{name}"] = g
+        for name, i in self.i_element_pA.items():
+            cols[f"i_pA/{name}"] = i
+        for name, s in self.spikes.items():
+            cols[f"spike/{name}"] = s.astype(np.float64)
+        return cols
+
+    def save(self, path: str | Path) -> Path:
+        """Write ``.npz`` or, for a ``.nwb`` path, NWB."""
+        path = Path(path)
+        if path.suffix == ".nwb":
+            from clampcore.recorder import write_recording_nwb
+
+            return write_recording_nwb(self, path)
+        np.savez_compressed(path, t_s=self.t_s, **self.columns())
+        return path if path.suffix == ".npz" else path.with_suffix(path.suffix + ".npz")
+
+
+def _spike_rows(program: Program) -> np.ndarray:
+    return np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], dtype=np.int64)
+
+
+def simulate(experiment: Any, duration_s: float, seed: int = 0, quantise: bool = True) -> Recording:
+    """Run ``experiment`` (path, TOML text, dict or Experiment) for ``duration_s`` offline.
+
+    ``quantise`` passes V and I through the simulated rig's 16-bit converters and
+    the ``[amplifier]`` scaling, as a run on the simulated rig does.
+    """
+    program = build_program(experiment, seed=seed)
+    exp = program.experiment
+    n_samples = round(duration_s * exp.loop["rate_hz"])
+    if n_samples < 1:
+        raise ValueError(f"duration_s = {duration_s!r}: shorter than one sample")
+    cell_cfg = dict(exp.cell)
+    cell_cfg["seed"] = int(cell_cfg["seed"]) + (int(seed) << 20)
+    cell = make_cell(cell_cfg, exp.dt_ms)
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, exp.amplifier)
+    n_el = len(program.names)
+    rows = _spike_rows(program)
+    delay = 1 + int(exp.loop["extra_delay_samples"])
+    out_v = np.zeros(n_samples)
+    out_i = np.zeros(n_samples)
+    out_g = np.zeros((n_samples, n_el))
+    out_i_el = np.zeros((n_samples, n_el))
+    out_spikes = np.zeros((n_samples, 1 + rows.size), dtype=np.bool_)
+    out_flags = np.zeros(n_samples, dtype=np.int64)
+    closed_loop(
+        n_samples,
+        delay,
+        quantise,
+        conv,
+        cell.kind,
+        cell.params,
+        cell.state,
+        cell.rng,
+        *program.arrays(),
+        rows,
+        np.zeros(delay),
+        out_v,
+        out_i,
+        out_g,
+        out_i_el,
+        out_spikes,
+        out_flags,
+    )
+    return recording_from_arrays(
+        program, out_v, out_i, out_g, out_i_el, out_spikes, out_flags, seed=seed
+    )
+
+
+def recording_from_arrays(
+    program: Program,
+    v_mV: np.ndarray,
+    i_pA: np.ndarray,
+    g: np.ndarray,
+    i_el: np.ndarray,
+    spikes: np.ndarray,
+    flags: np.ndarray,
+    seed: int = 0,
+    source: str = "offline simulation",
+) -> Recording:
+    """Name the columns of a run's arrays (shared by simulation and the serial loop)."""
+    names, kinds = program.names, program.kinds
+    spike_names = ["cell", *[names[r] for r in _spike_rows(program)]]
+    return Recording(
+        rate_hz=float(program.experiment.loop["rate_hz"]),
+        v_mV=v_mV,
+        i_pA=i_pA,
+        g_nS={
+            n: g[:, r]
+            for r, (n, k) in enumerate(zip(names, kinds, strict=True))
+            if k in _CONDUCTANCE_KINDS
+        },
+        i_element_pA={
+            n: i_el[:, r]
+            for r, (n, k) in enumerate(zip(names, kinds, strict=True))
+            if k != "neuron"
+        },
+        spikes={n: spikes[:, j] for j, n in enumerate(spike_names)},
+        flags=flags,
+        faults={
+            "fault_samples": int(np.count_nonzero(flags & (FAULT_BAD_V | FAULT_NONFINITE))),
+            "limited_samples": int(np.count_nonzero(flags & FLAG_LIMITED)),
+        },
+        experiment=program.experiment,
+        seed=seed,
+        source=source,
+    )
