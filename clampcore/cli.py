@@ -16,6 +16,8 @@ from __future__ import annotations
 
 import argparse
 import sys
+from pathlib import Path
+from typing import Any
 
 from clampcore.experiment import ExperimentError, load_experiment
 
@@ -51,6 +53,86 @@ def _simulate(args: argparse.Namespace) -> int:
     return 0
 
 
+def _run(args: argparse.Namespace) -> int:
+    from clampcore.engine import Engine, RunOptions
+
+    options = RunOptions(
+        seed=args.seed,
+        watchdog_ms=args.watchdog_ms,
+        spin_us=args.spin_us,
+        low_latency=args.low_latency,
+        rig_clock=args.rig_clock,
+        rig_log=Path(args.rig_log) if args.rig_log else None,
+    )
+    result = run_with_status(Engine(args.experiment, args.port, options), args.duration, args.out)
+    return 0 if result.error is None else 1
+
+
+def run_with_status(engine: Any, duration_s: float | None, out: str | None) -> Any:
+    """Start ``engine``, print a live status line until it ends (or Ctrl-C), then a summary."""
+    from clampcore.engine import status_line
+
+    rate = float(engine.experiment.loop["rate_hz"])
+    engine.start(duration_s=duration_s, out=out)
+    tty = sys.stdout.isatty()
+    try:
+        while not engine.wait(0.5):
+            line = status_line(engine.status(), rate)
+            print(("\r" + line) if tty else line, end="" if tty else "\n", flush=True)
+    except KeyboardInterrupt:
+        print("\nstopping: 0 pA first, then the board, then the recording", flush=True)
+    result = engine.finish()
+    print(("\n" if tty else "") + status_line(result.summary, rate))
+    print(f"ended: {result.exit_reason}")
+    if result.error:
+        print(f"clampcore: {result.error}", file=sys.stderr)
+    t = result.timing
+    if t:
+        print(
+            "timing: latency p50 {:.0f} / p99 {:.0f} samples; within 1/2/3 samples "
+            "{:.2%} / {:.2%} / {:.2%}; host turnaround p50 {:.1f} µs, p99.9 {:.1f} µs".format(
+                t.get("latency_p50_samples", float("nan")),
+                t.get("latency_p99_samples", float("nan")),
+                t.get("share_within_1_samples", float("nan")),
+                t.get("share_within_2_samples", float("nan")),
+                t.get("share_within_3_samples", float("nan")),
+                t.get("turnaround_p50_us", float("nan")),
+                t.get("turnaround_p99.9_us", float("nan")),
+            )
+        )
+    if result.nwb_path:
+        print(f"recording: {result.nwb_path}")
+    return result
+
+
+def _ports(args: argparse.Namespace) -> int:
+    from clampcore.board_link import list_ports
+
+    ports = list_ports()
+    if not ports:
+        print("no serial ports found (use 'sim' for the simulated rig)")
+    for p in ports:
+        ident = " ".join(x for x in (p["usb_id"], p["manufacturer"], p["serial_number"]) if x)
+        print(f"{p['device']:<20} {ident:<40} {p['description']}")
+    return 0
+
+
+def _recover(args: argparse.Namespace) -> int:
+    from clampcore.nwb import journal_to_nwb
+
+    journal = Path(args.journal)
+    out = Path(args.out) if args.out else journal.with_suffix(".nwb")
+    journal_to_nwb(journal, out, overwrite=True)
+    print(f"wrote {out}")
+    return 0
+
+
+def _demo(args: argparse.Namespace) -> int:
+    from clampcore.demo import run_demo
+
+    return run_demo(Path(args.out_dir), args.duration)
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="clampcore", description="Dynamic clamp on a serial board."
@@ -68,6 +150,34 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=int, default=0)
     p.set_defaults(func=_simulate)
 
+    p = sub.add_parser("run", help="run an experiment on a board (or 'sim')")
+    p.add_argument("experiment")
+    p.add_argument("--port", required=True, help="device path, pyserial URL, or 'sim'")
+    p.add_argument("--duration", type=float, default=None, help="seconds (default: until Ctrl-C)")
+    p.add_argument("--out", help="recording path (.nwb; a .journal folder is kept beside it)")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--watchdog-ms", type=float, default=20.0, help="board watchdog (default 20)")
+    p.add_argument("--spin-us", type=float, default=200.0, help="spin before sleeping (µs)")
+    p.add_argument(
+        "--low-latency", action="store_true", help="hold /dev/cpu_dma_latency at 0 while running"
+    )
+    p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
+    p.add_argument("--rig-log", help="for 'sim': the rig's ground-truth log")
+    p.set_defaults(func=_run)
+
+    p = sub.add_parser("ports", help="list serial ports with their USB identity")
+    p.set_defaults(func=_ports)
+
+    p = sub.add_parser("recover", help="convert what a crashed run left to NWB")
+    p.add_argument("journal")
+    p.add_argument("--out")
+    p.set_defaults(func=_recover)
+
+    p = sub.add_parser("demo", help="run an example on the simulated rig and plot it")
+    p.add_argument("--out-dir", default="demo-output")
+    p.add_argument("--duration", type=float, default=5.0)
+    p.set_defaults(func=_demo)
+
     for name, module in _EXTRA_COMMANDS.items():
         try:
             mod = __import__(module, fromlist=["add_parser"])
@@ -78,7 +188,7 @@ def _parser() -> argparse.ArgumentParser:
 
 
 # Commands that live in their own modules; each module has ``add_parser(sub, name)``.
-_EXTRA_COMMANDS: dict[str, str] = {}
+_EXTRA_COMMANDS: dict[str, str] = {"rig": "simulated_rig.cli", "gui": "gui.app"}
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -88,6 +198,9 @@ def main(argv: list[str] | None = None) -> int:
     except ExperimentError as exc:
         print(f"clampcore: {exc}", file=sys.stderr)
         return 2
+    except (RuntimeError, ValueError, OSError) as exc:  # BoardError, EngineError, NwbError, ...
+        print(f"clampcore: {exc}", file=sys.stderr)
+        return 1
     except KeyboardInterrupt:
         return 130
 

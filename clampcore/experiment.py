@@ -45,7 +45,7 @@ class Experiment:
     electrode: dict[str, Any]
     elements: list[dict[str, Any]]
     amplifier_given: bool = False
-    text: str = ""
+    text: str = field(default="", compare=False)  # the source text: not part of equality
     path: Path | None = field(default=None, compare=False)
 
     @property
@@ -85,7 +85,9 @@ def load_experiment(source: str | Path | dict[str, Any] | Experiment) -> Experim
     path: Path | None = None
     if isinstance(source, dict):
         raw = copy.deepcopy(source)
-        text = _dump_toml(raw)
+        exp = _validate(raw)  # first: a wrong type must be an ExperimentError, not a TypeError
+        exp.text = _dump_toml(raw)
+        return exp
     else:
         if isinstance(source, Path) or (
             isinstance(source, str) and "\n" not in source and source.endswith(".toml")

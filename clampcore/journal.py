@@ -32,6 +32,7 @@ Public names: ``Journal``, ``JournalData``, ``JournalError``, ``read_journal``,
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import json
 import math
@@ -225,7 +226,7 @@ class Journal:
         self._rows += np.ascontiguousarray(array, dtype=_DTYPE).tobytes()
 
     def event(self, record: dict) -> None:
-        """Buffer one event: a JSON-serialisable dict with ``"sample"`` (int >= 0) and ``"kind"``."""
+        """Buffer one event: a JSON-serialisable dict with an int ``"sample"`` and a ``"kind"``."""
         self._check_open()
         if not isinstance(record, Mapping):
             raise JournalError(f"an event must be a dict, got {type(record).__name__}")
@@ -248,10 +249,10 @@ class Journal:
                 done += os.write(fd, view[done:])
         except OSError as exc:
             view.release()
-            try:  # keep the file aligned on whole rows/lines so later writes stay readable
+            with contextlib.suppress(
+                OSError
+            ):  # keep whole rows/lines so later writes stay readable
                 os.ftruncate(fd, start)
-            except OSError:
-                pass
             raise JournalError(f"cannot write {self.path / name}: {exc}") from exc
         view.release()
 
@@ -269,10 +270,8 @@ class Journal:
 
     def _release(self) -> None:
         for fd in (self._samples_fd, self._events_fd):
-            try:
+            with contextlib.suppress(OSError):
                 os.close(fd)
-            except OSError:
-                pass
         self._closed = True
 
     def close(self, final_meta: dict | None = None) -> None:

@@ -69,7 +69,10 @@ _FORMAT_KEY = "clampcore_recording"  # marks our JSON document in data_collectio
 _FORMAT_VERSION = 1
 _RESERVED_EVENT_COLUMNS = ("id", "timestamp", "duration", "annotation")  # EventsTable's own
 _JSON_ENCODING = "json"
-_COMPRESS_MIN_VALUES = 1_000_000  # gzip only datasets of >= 8 MB: small ones gain little
+# gzip datasets above 50 MB of float64, the size from which nwbinspector's
+# check_small_dataset_compression suggests compression; below it, gzip doubled the
+# conversion time of a 60 s x 20 kHz run and saved little on noisy data (measured here).
+_COMPRESS_MIN_VALUES = 50_000_000 // 8
 _GZIP_LEVEL = 4  # common practice: most of level 9's ratio at a fraction of its time
 
 # Scale of each journal unit in SI (exact decimal prefixes).
@@ -141,7 +144,7 @@ def _text(value: Any) -> str | None:
 
 
 def _dataset(array: np.ndarray) -> Any:
-    """Large arrays are chunked and gzip-compressed (nwbinspector suggests it above 50 MB)."""
+    """Large arrays are chunked and gzip-compressed; small ones are stored as they are."""
     if array.size < _COMPRESS_MIN_VALUES:
         return array
     from hdmf.backends.hdf5.h5_utils import H5DataIO
@@ -203,6 +206,15 @@ def _subject(meta: Mapping[str, Any], simulated: bool, placeholders: list[str]) 
         if value is not None:
             kwargs[key] = value
     return Subject(**kwargs)
+
+
+def _resistance_text(value: Any) -> str | None:
+    """``"7.5 MOhm"`` from a number of MOhm; 0, negative or missing means not measured."""
+    if isinstance(value, bool) or value is None:
+        return None
+    if isinstance(value, int | float | np.integer | np.floating):
+        return f"{float(value):g} MOhm" if math.isfinite(value) and value > 0 else None
+    return _text(value)
 
 
 def _experimenter(value: Any) -> list[str] | None:
@@ -323,7 +335,7 @@ def _check_data(data: JournalData) -> tuple[float, int, int]:
     return float(data.meta["rate_hz"]), int(data.meta.get("first_sample", 0)), n_samples
 
 
-def _build_nwbfile(data: JournalData) -> Any:  # noqa: C901 (one linear mapping, kept in one place)
+def _build_nwbfile(data: JournalData) -> Any:
     from hdmf.common import DynamicTable, VectorData
     from pynwb import NWBFile, TimeSeries
     from pynwb.device import Device
@@ -427,7 +439,7 @@ def _build_nwbfile(data: JournalData) -> Any:  # noqa: C901 (one linear mapping,
         device=device,
         description=electrode_description,
         location=location,
-        resistance=None if resistance is None else f"{resistance} MOhm",
+        resistance=_resistance_text(resistance),
         cell_id=cell_id,
     )
     nwbfile.add_icephys_electrode(electrode)
@@ -442,7 +454,7 @@ def _build_nwbfile(data: JournalData) -> Any:  # noqa: C901 (one linear mapping,
     def module(name: str, description: str) -> Any:
         if name not in modules:
             modules[name] = nwbfile.create_processing_module(name=name, description=description)
-            taken[name] = set()
+            taken[name] = {"timing_statistics"}  # the name of the statistics table
         return modules[name]
 
     for name in names:
@@ -523,7 +535,11 @@ def _build_nwbfile(data: JournalData) -> Any:  # noqa: C901 (one linear mapping,
             )
             column_map[name] = f"processing/loop_timing/{series_name}"
 
-    if response is not None or stimulus is not None:
+    if response is not None:
+        nwbfile.add_acquisition(response)
+    if stimulus is not None:
+        nwbfile.add_stimulus(stimulus)
+    if n_samples and (response is not None or stimulus is not None):  # the table needs a row
         nwbfile.add_intracellular_recording(
             electrode=electrode, stimulus=stimulus, response=response
         )
@@ -706,7 +722,7 @@ def read_nwb_summary(path: Path) -> dict:
         spike_times: dict[str, np.ndarray] = {}
         for column, where in document["columns"].items():
             group, _, name = (where or "").partition("/")
-            kind, element = _column_kind(column)
+            _, element = _column_kind(column)
             if where is None or group == "events":
                 samples = (
                     np.zeros(0, dtype=np.int64)

@@ -31,6 +31,10 @@ LOOP_COLUMNS = {
 }
 
 
+# The mailbox's code for each ParamSlot.array (clampcore.shared.MAIL_TO_*).
+MAIL_TARGETS = {"params": 0.0, "loop": 1.0}
+
+
 @dataclass(frozen=True)
 class ParamSlot:
     """Where a live parameter lives: ``array`` is "params" (row, col) or "loop" (col)."""

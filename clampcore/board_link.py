@@ -1,0 +1,182 @@
+"""The control side of a board connection: open, handshake, configure, start, stop.
+
+Everything here is plain Python and happens outside the per-sample path: the
+loop process opens the port with pyserial, asks for the board's capabilities,
+configures and starts it, hands the file descriptor to the compiled loop, and
+afterwards commands 0 pA and stops the board.
+
+Every failure below the engine becomes a ``BoardError`` that says what went
+wrong and where.
+
+Public names: ``BoardLink``, ``BoardError``, ``list_ports``, ``board_converters``.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+import time
+from typing import Any
+
+import serial
+from serial.tools import list_ports as _list_ports
+
+from clampcore.calibration import Converter
+from firmware_protocol import codec
+
+_CONTROL_SEQ_START = 0x8000  # control frames count from here; commands use their own numbers
+_REPLY_TIMEOUT_S = 2.0  # a board answers a control message within a few ms; 2 s is generous
+
+
+class BoardError(RuntimeError):
+    """A board or port problem, with the port and the step that failed."""
+
+    def __init__(self, port: str, what: str, detail: str) -> None:
+        super().__init__(f"{port}: {what}: {detail}")
+        self.port, self.what, self.detail = port, what, detail
+
+
+def list_ports() -> list[dict[str, Any]]:
+    """Serial ports with their USB identity (vendor:product, serial number, description)."""
+    out = []
+    for p in sorted(_list_ports.comports(), key=lambda p: p.device):
+        usb = f"{p.vid:04x}:{p.pid:04x}" if p.vid is not None and p.pid is not None else ""
+        out.append(
+            {
+                "device": p.device,
+                "usb_id": usb,
+                "serial_number": p.serial_number or "",
+                "manufacturer": p.manufacturer or "",
+                "description": p.description or "",
+            }
+        )
+    return out
+
+
+def board_converters(hello: codec.Hello) -> tuple[Converter, Converter]:
+    """The board's ADC and DAC as ``Converter``s (ranges reported in µV)."""
+    adc = Converter(hello.adc_bits, hello.adc_min_uV * 1e-6, hello.adc_max_uV * 1e-6)
+    dac = Converter(hello.dac_bits, hello.dac_min_uV * 1e-6, hello.dac_max_uV * 1e-6)
+    return adc, dac
+
+
+class BoardLink:
+    """A serial connection to a board speaking PROTOCOL.md."""
+
+    def __init__(self, port: str) -> None:
+        self.port = port
+        try:
+            if "://" in port:
+                self.serial = serial.serial_for_url(port, timeout=0.05, write_timeout=1.0)
+            else:
+                # The baud rate is ignored by USB CDC boards and pseudo-terminals; 2 Mbaud
+                # covers 20 kHz x ~22-byte frames for a real UART (common practice).
+                self.serial = serial.Serial(
+                    port, baudrate=2_000_000, timeout=0.05, write_timeout=1.0
+                )
+        except (serial.SerialException, OSError, ValueError) as exc:
+            raise BoardError(port, "cannot open the port", str(exc)) from exc
+        self._seq = _CONTROL_SEQ_START
+        self._pending = b""
+        self.hello: codec.Hello | None = None
+
+    # ------------------------------------------------------------------ raw file descriptor
+    def blocking_fd(self) -> int | None:
+        """The port's descriptor in blocking mode (None for URL ports without one)."""
+        try:
+            fd = self.serial.fileno()
+        except (AttributeError, NotImplementedError, serial.SerialException):
+            return None
+        # pyserial leaves O_NONBLOCK set (REALTIME-NOTES): clear it for blocking reads.
+        flags = fcntl.fcntl(fd, fcntl.F_GETFL)
+        fcntl.fcntl(fd, fcntl.F_SETFL, flags & ~os.O_NONBLOCK)
+        return fd
+
+    # ------------------------------------------------------------------ messages
+    def send(self, message: Any, seq: int | None = None) -> int:
+        if seq is None:
+            seq = self._seq
+            self._seq = _CONTROL_SEQ_START + ((self._seq + 1 - _CONTROL_SEQ_START) % 0x7FFF)
+        try:
+            self.serial.write(codec.encode_message(message, seq))
+            self.serial.flush()
+        except (serial.SerialException, OSError) as exc:
+            raise BoardError(self.port, f"sending {type(message).__name__}", str(exc)) from exc
+        return seq
+
+    def _frames(self, deadline: float):  # noqa: ANN202 - generator of (seq, message)
+        while time.monotonic() < deadline:
+            while b"\x00" in self._pending:
+                wire, self._pending = self._pending.split(b"\x00", 1)
+                if not wire:
+                    continue
+                try:
+                    yield codec.decode_message(wire)
+                except codec.FrameError:
+                    continue  # dropped, like the loop's decoder does
+            try:
+                data = self.serial.read(max(1, self.serial.in_waiting))
+            except (serial.SerialException, OSError) as exc:
+                raise BoardError(self.port, "reading", str(exc)) from exc
+            self._pending += data
+
+    def request(self, message: Any, reply_type: type, timeout_s: float = _REPLY_TIMEOUT_S) -> Any:
+        """Send a control message and wait for its reply (samples in between are skipped)."""
+        seq = self.send(message)
+        for reply_seq, reply in self._frames(time.monotonic() + timeout_s):
+            if isinstance(reply, reply_type):
+                if isinstance(reply, codec.Status) and reply.ack_seq != seq:
+                    continue  # an unsolicited report or an older reply
+                return reply
+        raise BoardError(
+            self.port,
+            f"no {reply_type.__name__} reply to {type(message).__name__}",
+            f"nothing within {timeout_s:g} s (is a board running clampcore's protocol there?)",
+        )
+
+    def handshake(self) -> codec.Hello:
+        self.serial.reset_input_buffer()
+        self.hello = self.request(codec.GetHello(), codec.Hello)
+        return self.hello
+
+    def configure(self, rate_hz: int, watchdog_us: int, fault_counts: int) -> codec.Status:
+        reply = self.request(
+            codec.Configure(rate_hz, 1, watchdog_us, (fault_counts,)), codec.Status
+        )
+        if reply.result != codec.RESULT_OK:
+            raise BoardError(self.port, "configure refused", f"board result code {reply.result}")
+        return reply
+
+    def start(self) -> codec.Status:
+        reply = self.request(codec.Start(), codec.Status)
+        if reply.result != codec.RESULT_OK:
+            raise BoardError(self.port, "start refused", f"board result code {reply.result}")
+        return reply
+
+    def command_now(self, seq: int, answers_counter: int, dac_counts: int) -> None:
+        """Send one COMMAND at once (used to command 0 pA before stopping)."""
+        self.send(codec.Command(answers_counter % 2**32, (dac_counts,)), seq=seq % 0x10000)
+
+    def take_unread(self) -> bytes:
+        """Bytes read while waiting for a reply but not yet used (e.g. the first sample)."""
+        data, self._pending = self._pending, b""
+        return data
+
+    def stop(self) -> codec.Status | None:
+        """Stop the board; returns its final status, or None if it did not answer."""
+        try:
+            return self.request(codec.Stop(), codec.Status, timeout_s=1.0)
+        except BoardError:
+            return None
+
+    def status(self) -> codec.Status | None:
+        try:
+            return self.request(codec.GetStatus(), codec.Status, timeout_s=1.0)
+        except BoardError:
+            return None
+
+    def close(self) -> None:
+        try:
+            self.serial.close()
+        except (serial.SerialException, OSError):
+            pass

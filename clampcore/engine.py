@@ -1,0 +1,519 @@
+"""Run an experiment on a board: the loop process, the recorder and the controls.
+
+``Engine`` is what the command line and the window use::
+
+    engine = Engine("examples/imposed_lif.toml", port="sim")
+    engine.start(duration_s=5)
+    engine.change("imposed_spike", "threshold_mV", -48.0)   # applied at a sample boundary
+    result = engine.finish()                                # waits, records NWB
+
+The loop runs in its own process (``_loop_process``): it opens the port, asks
+the board for its capabilities, refuses to start when the calibration is missing
+or the board cannot represent the current limit, configures and starts the
+board and then stays inside the compiled ``clampcore.hostloop.fd_loop`` until a
+stop request, the duration, or a port failure. Whatever happens, it then
+commands 0 pA, stops the board and reports. Data leave it only through the
+shared-memory ring (``clampcore.shared``); the ``Recorder`` in this process
+copies them into the journal and writes NWB at the end.
+
+Public names: ``Engine``, ``RunOptions``, ``RunResult``, ``EngineError``, ``status_line``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import multiprocessing as mp
+import os
+import signal
+import struct
+import tempfile
+import time
+import traceback
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from clampcore.board_link import BoardError, BoardLink, board_converters
+from clampcore.calibration import conversion_array, current_range_pA, pA_to_counts
+from clampcore.elements import KIND_NEURON
+from clampcore.experiment import Experiment, load_experiment
+from clampcore.hostloop import (
+    EXIT_BOARD_SILENT,
+    EXIT_DURATION,
+    EXIT_MESSAGES,
+    EXIT_PORT_CLOSED,
+    EXIT_PORT_ERROR,
+    EXIT_STOP_REQUEST,
+    LK_LAST_COUNTER,
+    LK_NEXT_SEQ,
+    LK_SAMPLES,
+    fd_loop,
+    new_link,
+    process_rx,
+    record_turnaround,
+)
+from clampcore.program import MAIL_TARGETS, Program, build_program, check_live_change
+from clampcore.recorder import Recorder, recording_meta
+from clampcore.shared import (
+    CTRL_EXIT,
+    CTRL_STATE,
+    CTRL_STOP,
+    CTRL_WRITTEN,
+    CTRL_ZERO,
+    LAT_BINS,
+    ST_BAD_FRAMES,
+    ST_FAULTS,
+    ST_LAT_HIST,
+    ST_LATE,
+    ST_LIMITED,
+    ST_MISSING,
+    ST_SAMPLES,
+    ST_SPIKES,
+    ST_TURN_HIST,
+    ST_UNANSWERED,
+    ST_WATCHDOG,
+    STATE_FAILED,
+    STATE_RUNNING,
+    STATE_STARTING,
+    STATE_STOPPED,
+    STATE_STOPPING,
+    TURN_BIN_US,
+    RingLayout,
+    SharedRun,
+)
+
+
+class EngineError(RuntimeError):
+    """A run that could not start or did not end cleanly; says why."""
+
+
+@dataclass
+class RunOptions:
+    """How to run; defaults are the conservative ones."""
+
+    seed: int = 0
+    # The board's watchdog: no command for this long and it outputs 0 pA. Several times
+    # the worst scheduling stall measured on these machines (~4 ms, REALTIME-NOTES).
+    watchdog_ms: float = 20.0
+    # Spin this long for input before sleeping in poll(): waking a sleeping reader costs
+    # 50-90 µs here (REALTIME-NOTES), more than a sample period at 20 kHz.
+    spin_us: float = 200.0
+    # The loop stops if the board sends nothing for this long (a vanished board).
+    silent_ms: int = 1000
+    low_latency: bool = False  # hold /dev/cpu_dma_latency at 0 while running
+    rig_clock: str = "wall"  # for port "sim": the simulated rig's clock
+    rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
+    rig_faults: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class RunResult:
+    exit_reason: str
+    exit_code: int
+    samples: int
+    nwb_path: Path | None
+    journal_path: Path | None
+    timing: dict[str, float]
+    summary: dict[str, Any]
+    board_status: dict[str, Any] | None
+    error: str | None = None
+
+
+def _neuron_rows(program: Program) -> np.ndarray:
+    return np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], dtype=np.int64)
+
+
+@contextlib.contextmanager
+def _cpu_dma_latency_zero(enabled: bool):  # noqa: ANN202
+    """Hold /dev/cpu_dma_latency at 0 µs while running (standard Linux low-latency practice)."""
+    if not enabled:
+        yield False
+        return
+    try:
+        fd = os.open("/dev/cpu_dma_latency", os.O_WRONLY)
+    except OSError:
+        yield False
+        return
+    try:
+        os.write(fd, struct.pack("i", 0))
+        yield True
+    finally:
+        os.close(fd)
+
+
+def _loop_process(
+    exp_text: str,
+    port: str,
+    names: dict[str, str],
+    options: RunOptions,
+    max_samples: int,
+    allow_default_calibration: bool,
+    conn: Any,
+) -> None:
+    """Body of the loop process. Never raises: reports through ``conn``."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides when to stop
+    report: dict[str, Any] = {"exit_code": 0, "error": None, "board_status": None}
+    shared = link = None
+    started = False
+    try:
+        program = build_program(exp_text, seed=options.seed)
+        exp = program.experiment
+        shared = SharedRun.attach(names, RingLayout.for_program(program))
+        link = BoardLink(port)
+        hello = link.handshake()
+        report["board"] = {k: getattr(hello, k) for k in hello.__dataclass_fields__}
+        if not exp.amplifier_given and not allow_default_calibration:
+            raise EngineError(
+                "refusing to start: the experiment has no [amplifier] section, so ADC/DAC counts "
+                "cannot be converted to mV and pA (give vm_mV_per_V and command_pA_per_V)"
+            )
+        adc, dac = board_converters(hello)
+        conv = conversion_array(adc, dac, exp.amplifier)
+        lo, hi = current_range_pA(conv)
+        limit = exp.loop["max_current_pA"]
+        if lo > -limit or hi < limit:
+            raise EngineError(
+                f"refusing to start: the board and amplifier can command {lo:.0f}..{hi:.0f} pA, "
+                f"which cannot represent max_current_pA = ±{limit:g}"
+            )
+        rate = int(round(exp.loop["rate_hz"]))
+        if rate > hello.max_rate_hz:
+            raise EngineError(
+                f"refusing to start: rate_hz {rate} > the board's {hello.max_rate_hz}"
+            )
+        zero = pA_to_counts(conv, 0.0)
+        watchdog_us = int(
+            np.clip(options.watchdog_ms * 1000, hello.watchdog_min_us, hello.watchdog_max_us)
+        )
+        link.configure(rate, watchdog_us, zero)
+        arrays = new_link(zero)
+        with _cpu_dma_latency_zero(options.low_latency) as held:
+            report["low_latency_held"] = held
+            link.start()
+            started = True
+            shared.ctrl[CTRL_STATE] = STATE_RUNNING
+            fd = link.blocking_fd()
+            loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
+            loop_args += (shared.mailbox, shared.applied, shared.stats)
+            # Samples that came with the replies must be answered before the loop waits.
+            _feed(link, link.take_unread(), arrays, loop_args, shared)
+            if fd is not None:
+                code = fd_loop(
+                    fd,
+                    options.spin_us,
+                    options.silent_ms,
+                    max_samples,
+                    *arrays.arrays(),
+                    *loop_args,
+                )
+            else:
+                code = _python_loop(link, arrays, loop_args, options, max_samples, shared)
+        report["exit_code"] = int(code)
+        shared.ctrl[CTRL_STATE] = STATE_STOPPING
+        if code in (EXIT_PORT_CLOSED, EXIT_PORT_ERROR, EXIT_BOARD_SILENT):
+            report["error"] = EXIT_MESSAGES[code]
+    except (BoardError, EngineError, OSError) as exc:
+        report["error"] = str(exc)
+    except Exception:  # noqa: BLE001 - any fault: report it, never leave the cell driven
+        report["error"] = traceback.format_exc()
+    finally:
+        if link is not None:
+            if started:
+                # Safety first: 0 pA, then stop the board.
+                with contextlib.suppress(BoardError, OSError, NameError):
+                    link.command_now(
+                        int(arrays.lk[LK_NEXT_SEQ]), int(max(arrays.lk[LK_LAST_COUNTER], 0)), zero
+                    )
+                with contextlib.suppress(BoardError, OSError):
+                    status = link.stop()
+                    if status is not None:
+                        report["board_status"] = {
+                            k: getattr(status, k) for k in status.__dataclass_fields__
+                        }
+            link.close()
+        if shared is not None:
+            shared.ctrl[CTRL_STATE] = STATE_FAILED if report["error"] else STATE_STOPPED
+            shared.ctrl[CTRL_EXIT] = report["exit_code"]
+            shared.close()
+        conn.send(report)
+        conn.close()
+
+
+def _feed(link: BoardLink, data: bytes, arrays: Any, loop_args: tuple, shared: SharedRun) -> None:
+    """Run bytes already received through the per-sample path and send the answer."""
+    if not data:
+        return
+    t_ready = time.monotonic()
+    a = arrays
+    a.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
+    length = process_rx(
+        len(data), a.lk, a.answered, a.dstate, a.dbuf, a.frame, a.adc, a.fields, a.dac,
+        a.rx, a.tx, *loop_args,
+    )  # fmt: skip
+    if length > 0:
+        try:
+            link.serial.write(a.tx[:length].tobytes())
+        except Exception as exc:  # noqa: BLE001 - pyserial raises several kinds
+            raise BoardError(link.port, "sending a command", str(exc)) from exc
+        record_turnaround(a.lk, shared.ring, shared.stats, (time.monotonic() - t_ready) * 1e6)
+
+
+def _python_loop(
+    link: BoardLink,
+    arrays: Any,
+    loop_args: tuple,
+    options: RunOptions,
+    max_samples: int,
+    shared: SharedRun,
+) -> int:
+    """The same per-sample path with pyserial doing the I/O (URL ports without a descriptor)."""
+    ser = link.serial
+    idle_since = time.monotonic()
+    rx_size = arrays.rx.size
+    while True:
+        if shared.ctrl[CTRL_STOP]:
+            return EXIT_STOP_REQUEST
+        if max_samples > 0 and arrays.lk[LK_SAMPLES] >= max_samples:
+            return EXIT_DURATION
+        try:
+            data = ser.read(max(1, min(ser.in_waiting, rx_size)))
+        except Exception:  # noqa: BLE001 - pyserial raises several kinds
+            return EXIT_PORT_ERROR
+        if not data:
+            if (time.monotonic() - idle_since) * 1000 > options.silent_ms:
+                return EXIT_BOARD_SILENT
+            continue
+        idle_since = time.monotonic()
+        try:
+            _feed(link, data, arrays, loop_args, shared)
+        except BoardError:
+            return EXIT_PORT_ERROR
+
+
+class Engine:
+    """One run of an experiment on a port ("sim" starts the simulated rig)."""
+
+    def __init__(self, experiment: Any, port: str, options: RunOptions | None = None) -> None:
+        self.experiment: Experiment = load_experiment(experiment)
+        self.port = port
+        self.options = options or RunOptions()
+        self.program = build_program(self.experiment, seed=self.options.seed)
+        self.layout = RingLayout.for_program(self.program)
+        self.shared: SharedRun | None = None
+        self.recorder: Recorder | None = None
+        self._proc: mp.Process | None = None
+        self._conn: Any = None
+        self._rig: Any = None
+        self._tmpdir: tempfile.TemporaryDirectory[str] | None = None
+        self.t_start = 0.0
+        self.result: RunResult | None = None
+
+    # ------------------------------------------------------------------ lifecycle
+    def start(self, duration_s: float | None = None, out: Path | str | None = None) -> None:
+        """Start the loop (and the rig for port "sim") and the recorder; returns at once."""
+        exp = self.experiment
+        out_path = Path(out) if out else Path(time.strftime("clampcore-run-%Y%m%d-%H%M%S.nwb"))
+        self.nwb_path = out_path.with_suffix(".nwb")
+        journal_path = out_path.with_suffix(".journal")
+        if journal_path.exists() and any(journal_path.iterdir()):
+            raise EngineError(f"{journal_path} already holds a recording: choose another --out")
+        self._tmpdir = tempfile.TemporaryDirectory(prefix="clampcore-")
+        try:
+            self._start(exp, journal_path, duration_s)
+        except BaseException:
+            self._cleanup_failed_start()
+            raise
+
+    def _start(self, exp: Experiment, journal_path: Path, duration_s: float | None) -> None:
+        port = self.port
+        source = port
+        if port == "sim":
+            from simulated_rig.board import start_rig
+
+            assert self._tmpdir is not None
+            exp_file = Path(self._tmpdir.name) / "experiment.toml"
+            exp_file.write_text(exp.text or exp.to_toml(), encoding="utf-8")
+            self._rig = start_rig(
+                exp_file,
+                clock=self.options.rig_clock,
+                seed=self.options.seed,
+                log=self.options.rig_log,
+                **self.options.rig_faults,
+            )
+            port = self._rig.path
+            source = "simulated rig"
+        self.shared = SharedRun.create(self.layout)
+        meta = recording_meta(exp, source, seed=self.options.seed)
+        self.recorder = Recorder(self.shared, self.program, journal_path, meta)
+        max_samples = round(duration_s * exp.loop["rate_hz"]) if duration_s else 0
+        ctx = mp.get_context("spawn")
+        self._conn, child_conn = ctx.Pipe(duplex=False)
+        self._proc = ctx.Process(
+            target=_loop_process,
+            args=(
+                exp.text or exp.to_toml(),
+                port,
+                self.shared.names,
+                self.options,
+                max_samples,
+                self.port == "sim",
+                child_conn,
+            ),
+            name="clampcore-loop",
+            daemon=True,
+        )
+        self.shared.ctrl[CTRL_STATE] = STATE_STARTING
+        self._proc.start()
+        child_conn.close()
+        self.recorder.start()
+        self.t_start = time.monotonic()
+
+    def _cleanup_failed_start(self) -> None:
+        if self._proc is not None and self._proc.is_alive():
+            self._proc.kill()
+        if self._rig is not None:
+            self._rig.stop()
+        if self.shared is not None:
+            self.shared.close()
+            self.shared = None
+        if self._tmpdir is not None:
+            self._tmpdir.cleanup()
+
+    @property
+    def running(self) -> bool:
+        return self._proc is not None and self._proc.is_alive()
+
+    @property
+    def state(self) -> int:
+        return int(self.shared.ctrl[CTRL_STATE]) if self.shared is not None else STATE_STOPPED
+
+    def request_stop(self) -> None:
+        if self.shared is not None:
+            self.shared.ctrl[CTRL_STOP] = 1
+
+    def set_zero_current(self, on: bool) -> None:
+        """Hold the command at 0 pA (True) or give control back to the elements (False)."""
+        if self.shared is not None:
+            self.shared.ctrl[CTRL_ZERO] = 1 if on else 0
+
+    def change(self, element: str, field_name: str, value: Any) -> int:
+        """Validate and send a live change; returns its mailbox number."""
+        stored = check_live_change(self.program, element, field_name, value)
+        slot = self.program.param_slot(element, field_name)
+        if self.shared is None:
+            raise EngineError("not running")
+        number = self.shared.post_change(MAIL_TARGETS[slot.array], slot.row, slot.col, stored)
+        # Keep our copy of the experiment in step, for saving and for later validation.
+        if element == "loop":
+            self.experiment.loop[field_name] = value
+        else:
+            self.experiment.element(element)[field_name] = value
+        return number
+
+    def wait(self, timeout_s: float | None = None) -> bool:
+        """Wait for the loop to end by itself; True if it has."""
+        if self._proc is None:
+            return True
+        self._proc.join(timeout_s)
+        return not self._proc.is_alive()
+
+    def finish(self, timeout_s: float = 10.0) -> RunResult:
+        """Stop (if still running), wait, write NWB, stop the rig; returns the result."""
+        if self.result is not None:
+            return self.result
+        assert self._proc is not None and self.recorder is not None and self.shared is not None
+        self.request_stop()
+        report: dict[str, Any] = {"exit_code": EXIT_STOP_REQUEST, "error": None}
+        if self._conn.poll(timeout_s):
+            with contextlib.suppress(EOFError):
+                report = self._conn.recv()
+        else:
+            report["error"] = "the loop process did not answer; it was ended"
+        self._proc.join(2.0)
+        if self._proc.is_alive():
+            self._proc.kill()
+            self._proc.join()
+        if self._rig is not None:
+            self._rig.stop()
+        status = self.status()
+        final = {
+            "exit_reason": report.get("error") or EXIT_MESSAGES.get(report["exit_code"], "?"),
+            "summary": status,
+            "board": report.get("board"),
+            "board_final_status": report.get("board_status"),
+        }
+        nwb = None
+        try:
+            nwb = self.recorder.stop(final, self.nwb_path)
+        finally:
+            self.shared.close()
+        timing = self.recorder.final_meta.get("timing", {})
+        self.result = RunResult(
+            exit_reason=final["exit_reason"],
+            exit_code=int(report["exit_code"]),
+            samples=int(status["samples"]),
+            nwb_path=nwb,
+            journal_path=self.recorder.path,
+            timing=timing,
+            summary=status,
+            board_status=report.get("board_status"),
+            error=report.get("error"),
+        )
+        if self._tmpdir is not None:
+            self._tmpdir.cleanup()
+        return self.result
+
+    # ------------------------------------------------------------------ status
+    def status(self) -> dict[str, Any]:
+        """Live figures from the loop's counters (cheap; safe to call often)."""
+        if self.shared is None or self.shared.stats is None:
+            return {}
+        st = self.shared.stats.copy()
+        rate = float(self.experiment.loop["rate_hz"])
+        samples = int(st[ST_SAMPLES])
+        lat = st[ST_LAT_HIST : ST_LAT_HIST + LAT_BINS]
+        turn = st[ST_TURN_HIST:]
+        elapsed = samples / rate
+        return {
+            "state": int(self.shared.ctrl[CTRL_STATE]),
+            "samples": samples,
+            "elapsed_s": elapsed,
+            "latency_p50_samples": _hist_percentile(lat, 50, 1.0),
+            "latency_p99_samples": _hist_percentile(lat, 99, 1.0),
+            "turnaround_p50_us": _hist_percentile(turn, 50, TURN_BIN_US),
+            "turnaround_p99_us": _hist_percentile(turn, 99, TURN_BIN_US),
+            "late": int(st[ST_LATE]),
+            "missing": int(st[ST_MISSING]),
+            "unanswered": int(st[ST_UNANSWERED]),
+            "bad_frames": int(st[ST_BAD_FRAMES]),
+            "watchdog": int(st[ST_WATCHDOG]),
+            "faults": int(st[ST_FAULTS]),
+            "limited": int(st[ST_LIMITED]),
+            "spikes": int(st[ST_SPIKES]),
+            "firing_rate_hz": st[ST_SPIKES] / elapsed if elapsed > 0 else 0.0,
+            "written": int(self.shared.ctrl[CTRL_WRITTEN]),
+            "zeroed": bool(self.shared.ctrl[CTRL_ZERO]),
+        }
+
+
+def status_line(s: dict[str, Any], rate_hz: float) -> str:
+    """The one-line live status."""
+    if not s:
+        return "starting"
+    return (
+        f"t {s['elapsed_s']:6.1f} s | {rate_hz / 1000:g} kHz | latency p50 {s['latency_p50_samples']:.0f} "
+        f"p99 {s['latency_p99_samples']:.0f} samples | turnaround p50 {s['turnaround_p50_us']:.0f} "
+        f"p99 {s['turnaround_p99_us']:.0f} µs | late {s['late']} missing {s['missing']} "
+        f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "
+        f"({s['firing_rate_hz']:.1f} Hz)" + (" | ZERO CURRENT" if s["zeroed"] else "")
+    )
+
+
+def _hist_percentile(hist: np.ndarray, q: float, bin_width: float) -> float:
+    total = hist.sum()
+    if total <= 0:
+        return float("nan")
+    k = int(np.searchsorted(np.cumsum(hist), total * q / 100.0))
+    return (k + (0.5 if bin_width != 1.0 else 0.0)) * bin_width

@@ -1,0 +1,449 @@
+"""The host's per-sample path, compiled: bytes in -> sample -> step -> command -> bytes out.
+
+``process_rx`` takes a chunk of bytes read from the board and, for every
+SAMPLE frame in it: converts the ADC count to mV, applies pending live changes
+at this sample boundary, runs ``step``, writes the ring row, and keeps the
+command for the newest sample; it then encodes that one COMMAND (older samples
+in the same chunk are superseded and counted as unanswered). ``fd_loop`` wraps
+it with ``read``/``write`` on a file descriptor, waiting for input by spinning
+for ``spin_us`` and then sleeping in ``poll``; it measures the host's turnaround
+(input ready -> command written) and stops on a stop request, the duration, or
+a port that closed or failed.
+
+Real-time rules: everything here is ``@njit(cache=True, nogil=True)`` over
+preallocated arrays; no allocation, no Python objects, no locks, no I/O but the
+one read and one write per pass. Policy (what to do on a fault, when to record,
+how to show status) lives in ``clampcore.engine``.
+
+Public names: ``LinkArrays``, ``new_link``, ``process_rx``, ``fd_loop``, the
+``EXIT_*`` codes and ``LK_*`` indices.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from numba import njit
+
+from clampcore.calibration import counts_to_mV, pA_to_counts
+from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.shared import (
+    APPLIED_SAMPLE,
+    CTRL_FIRST_COUNTER,
+    CTRL_HEARTBEAT,
+    CTRL_MAIL_APPLIED,
+    CTRL_MAIL_WRITTEN,
+    CTRL_STOP,
+    CTRL_WRITTEN,
+    CTRL_ZERO,
+    LAT_BINS,
+    MAIL_TO_PARAMS,
+    MAILBOX_SLOTS,
+    ST_BAD_FRAMES,
+    ST_COMMANDS,
+    ST_FAULTS,
+    ST_LAT_HIST,
+    ST_LATE,
+    ST_LIMITED,
+    ST_MISSING,
+    ST_OTHER_FRAMES,
+    ST_SAMPLES,
+    ST_SPIKES,
+    ST_TURN_HIST,
+    ST_UNANSWERED,
+    ST_WATCHDOG,
+    ST_ZEROED,
+    TURN_BIN_US,
+    TURN_BINS,
+    COL_COUNTER,
+    COL_FLAGS,
+    COL_I,
+    COL_LATENCY,
+    COL_STATUS,
+    COL_TURNAROUND,
+    COL_V,
+    N_FIXED_COLUMNS,
+)
+from clampcore.step import (
+    FAULT_BAD_V,
+    FAULT_NONFINITE,
+    FLAG_LIMITED,
+    LS_CELL_SPIKED,
+    LS_FLAGS,
+    step,
+)
+from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_us
+from firmware_protocol.codec import (
+    DEFRAMER_BAD,
+    MAX_CHANNELS,
+    MAX_PAYLOAD,
+    MAX_WIRE,
+    SAMPLE_CMD_SEQ,
+    SAMPLE_COUNTER,
+    SAMPLE_NFIELDS,
+    SAMPLE_STATUS,
+    STATUS_LATE,
+    STATUS_WATCHDOG,
+    decode_sample,
+    deframe_next,
+    encode_command,
+    new_deframer,
+)
+
+EXIT_RUNNING = 0
+EXIT_STOP_REQUEST = 1
+EXIT_DURATION = 2
+EXIT_PORT_CLOSED = 3
+EXIT_PORT_ERROR = 4
+EXIT_BOARD_SILENT = 5
+EXIT_MESSAGES = {
+    EXIT_RUNNING: "running",
+    EXIT_STOP_REQUEST: "stopped on request",
+    EXIT_DURATION: "duration reached",
+    EXIT_PORT_CLOSED: "the serial port closed or vanished",
+    EXIT_PORT_ERROR: "a serial read or write failed",
+    EXIT_BOARD_SILENT: "the board sent nothing for too long",
+}
+
+FLAG_ZEROED = 8  # ring flags bit: the zero-current control held the command at 0 pA
+
+# link state (int64 array ``lk``)
+LK_NEXT_SEQ = 0  # sequence number of the next command (1..65535, 0 is never used)
+LK_LAST_COUNTER = 1  # counter of the last sample (-1 before the first)
+LK_FIRST_COUNTER = 2
+LK_SAMPLES = 3  # samples processed
+LK_PENDING = 4  # 1 when the newest sample still needs its command
+LK_PENDING_COUNTER = 5
+LK_PENDING_DAC = 6
+LK_PENDING_ROW = 7  # ring row of the pending sample (for its turnaround)
+LK_ZERO_COUNTS = 8  # the DAC count that means 0 pA
+N_LK = 10
+
+_SEQ_SPACE = 65536  # u16 sequence numbers (PROTOCOL.md)
+_POLL_SLICE_MS = 50  # a sleeping wait wakes this often to see a stop request
+_POLLHUP_POLLERR_POLLNVAL = 0x10 | 0x08 | 0x20  # <poll.h> on Linux
+
+
+@dataclass
+class LinkArrays:
+    """Every buffer the compiled link needs, allocated once per run."""
+
+    lk: np.ndarray
+    answered: np.ndarray  # sample counter each command seq answered (-1: none)
+    dstate: np.ndarray
+    dbuf: np.ndarray
+    frame: np.ndarray
+    adc: np.ndarray
+    fields: np.ndarray
+    dac: np.ndarray
+    rx: np.ndarray
+    tx: np.ndarray
+    timespec: np.ndarray
+    pollfd: np.ndarray
+
+    def arrays(self) -> tuple[np.ndarray, ...]:
+        return (
+            self.lk,
+            self.answered,
+            self.dstate,
+            self.dbuf,
+            self.frame,
+            self.adc,
+            self.fields,
+            self.dac,
+            self.rx,
+            self.tx,
+            self.timespec,
+            self.pollfd,
+        )
+
+
+def new_link(zero_counts: int) -> LinkArrays:
+    dstate, dbuf = new_deframer()
+    lk = np.zeros(N_LK, dtype=np.int64)
+    lk[LK_NEXT_SEQ] = 1
+    lk[LK_LAST_COUNTER] = -1
+    lk[LK_FIRST_COUNTER] = -1
+    lk[LK_ZERO_COUNTS] = zero_counts
+    return LinkArrays(
+        lk=lk,
+        answered=np.full(_SEQ_SPACE, -1, dtype=np.int64),
+        dstate=dstate,
+        dbuf=dbuf,
+        frame=np.zeros(MAX_PAYLOAD, dtype=np.uint8),
+        adc=np.zeros(MAX_CHANNELS, dtype=np.int64),
+        fields=np.zeros(SAMPLE_NFIELDS, dtype=np.int64),
+        dac=np.zeros(1, dtype=np.int64),
+        rx=np.zeros(4096, dtype=np.uint8),  # a few dozen frames: more than one pass ever gets
+        tx=np.zeros(MAX_WIRE, dtype=np.uint8),
+        timespec=np.zeros(2, dtype=np.int64),
+        pollfd=np.zeros(2, dtype=np.int32),
+    )
+
+
+@njit(cache=True, nogil=True)
+def _apply_mail(
+    ctrl: np.ndarray,
+    mailbox: np.ndarray,
+    applied: np.ndarray,
+    params: np.ndarray,
+    loop_p: np.ndarray,
+    sample: int,
+) -> None:
+    while ctrl[CTRL_MAIL_APPLIED] < ctrl[CTRL_MAIL_WRITTEN]:
+        k = ctrl[CTRL_MAIL_APPLIED]
+        slot = k % MAILBOX_SLOTS
+        row = int(mailbox[slot, 1])
+        col = int(mailbox[slot, 2])
+        if mailbox[slot, 0] == MAIL_TO_PARAMS:
+            if 0 <= row < params.shape[0] and 0 <= col < params.shape[1]:
+                params[row, col] = mailbox[slot, 3]
+        elif 0 <= col < loop_p.shape[0]:
+            loop_p[col] = mailbox[slot, 3]
+        for j in range(4):
+            applied[slot, j] = mailbox[slot, j]
+        applied[slot, APPLIED_SAMPLE] = sample
+        ctrl[CTRL_MAIL_APPLIED] = k + 1
+
+
+@njit(cache=True, nogil=True)
+def process_rx(
+    nbytes: int,
+    lk: np.ndarray,
+    answered: np.ndarray,
+    dstate: np.ndarray,
+    dbuf: np.ndarray,
+    frame: np.ndarray,
+    adc: np.ndarray,
+    fields: np.ndarray,
+    dac: np.ndarray,
+    rx: np.ndarray,
+    tx: np.ndarray,
+    conv: np.ndarray,
+    kind: np.ndarray,
+    params: np.ndarray,
+    state: np.ndarray,
+    rng: np.ndarray,
+    trains: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+    loop_p: np.ndarray,
+    loop_s: np.ndarray,
+    neuron_rows: np.ndarray,
+    ctrl: np.ndarray,
+    ring: np.ndarray,
+    mailbox: np.ndarray,
+    applied: np.ndarray,
+    stats: np.ndarray,
+) -> int:
+    """Handle ``rx[:nbytes]``; return the length of the COMMAND frame left in ``tx`` (or 0)."""
+    n_el = kind.shape[0]
+    rows = ring.shape[0]
+    while True:
+        m = deframe_next(dstate, dbuf, rx, nbytes, frame)
+        if m <= 0:
+            break
+        k = decode_sample(frame, m, adc, fields)
+        if k < 1:
+            stats[ST_OTHER_FRAMES] += 1.0
+            continue
+        counter = fields[SAMPLE_COUNTER]
+        last = lk[LK_LAST_COUNTER]
+        if last < 0:
+            lk[LK_FIRST_COUNTER] = counter
+            ctrl[CTRL_FIRST_COUNTER] = counter
+        elif counter <= last:
+            stats[ST_OTHER_FRAMES] += 1.0  # a stale or repeated sample: ignored
+            continue
+        else:
+            stats[ST_MISSING] += counter - last - 1
+        lk[LK_LAST_COUNTER] = counter
+        if lk[LK_PENDING] != 0:
+            stats[ST_UNANSWERED] += 1.0
+        n = counter - lk[LK_FIRST_COUNTER]
+        _apply_mail(ctrl, mailbox, applied, params, loop_p, n)
+        v_mV = counts_to_mV(conv, adc[0])
+        i_pA = step(v_mV, n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+        flags = int(loop_s[LS_FLAGS])
+        if ctrl[CTRL_ZERO] != 0:
+            i_pA = 0.0
+            flags |= FLAG_ZEROED
+            stats[ST_ZEROED] += 1.0
+        status = fields[SAMPLE_STATUS]
+        answered_counter = answered[fields[SAMPLE_CMD_SEQ]]
+        latency = counter - answered_counter if answered_counter >= 0 else -1
+        # ring row
+        row = lk[LK_SAMPLES] % rows
+        ring[row, COL_COUNTER] = counter
+        ring[row, COL_V] = v_mV
+        ring[row, COL_I] = i_pA
+        ring[row, COL_FLAGS] = flags
+        ring[row, COL_STATUS] = status
+        ring[row, COL_LATENCY] = latency if latency >= 0 else math.nan
+        ring[row, COL_TURNAROUND] = math.nan
+        base = N_FIXED_COLUMNS
+        for r in range(n_el):
+            ring[row, base + r] = g_out[r]
+            ring[row, base + n_el + r] = i_out[r]
+        spk = base + 2 * n_el
+        ring[row, spk] = loop_s[LS_CELL_SPIKED]
+        for j in range(neuron_rows.shape[0]):
+            ring[row, spk + 1 + j] = state[neuron_rows[j], NEURON_S_SPIKED]
+        lk[LK_SAMPLES] += 1
+        ctrl[CTRL_WRITTEN] = lk[LK_SAMPLES]
+        # statistics
+        stats[ST_SAMPLES] += 1.0
+        if latency >= 0:
+            stats[ST_LAT_HIST + min(latency, LAT_BINS - 1)] += 1.0
+        if status & STATUS_LATE:
+            stats[ST_LATE] += 1.0
+        if status & STATUS_WATCHDOG:
+            stats[ST_WATCHDOG] += 1.0
+        if flags & (FAULT_BAD_V | FAULT_NONFINITE):
+            stats[ST_FAULTS] += 1.0
+        if flags & FLAG_LIMITED:
+            stats[ST_LIMITED] += 1.0
+        if loop_s[LS_CELL_SPIKED] != 0.0:
+            stats[ST_SPIKES] += 1.0
+        lk[LK_PENDING] = 1
+        lk[LK_PENDING_COUNTER] = counter
+        lk[LK_PENDING_DAC] = pA_to_counts(conv, i_pA)
+        lk[LK_PENDING_ROW] = row
+    stats[ST_BAD_FRAMES] = dstate[DEFRAMER_BAD]
+    if lk[LK_PENDING] == 0:
+        return 0
+    return encode_pending(lk, answered, dac, tx, stats)
+
+
+@njit(cache=True, nogil=True)
+def encode_pending(
+    lk: np.ndarray, answered: np.ndarray, dac: np.ndarray, tx: np.ndarray, stats: np.ndarray
+) -> int:
+    """Encode the command for the pending sample into ``tx``; return its length."""
+    seq = lk[LK_NEXT_SEQ]
+    dac[0] = lk[LK_PENDING_DAC]
+    length = encode_command(seq, lk[LK_PENDING_COUNTER], dac, tx)
+    answered[seq] = lk[LK_PENDING_COUNTER]
+    lk[LK_NEXT_SEQ] = seq + 1 if seq + 1 < _SEQ_SPACE else 1
+    lk[LK_PENDING] = 0
+    stats[ST_COMMANDS] += 1.0
+    return length
+
+
+@njit(cache=True, nogil=True)
+def record_turnaround(
+    lk: np.ndarray, ring: np.ndarray, stats: np.ndarray, turnaround_us: float
+) -> None:
+    """Store the host turnaround of the command just written (ring row and histogram)."""
+    ring[lk[LK_PENDING_ROW], COL_TURNAROUND] = turnaround_us
+    stats[ST_TURN_HIST + min(int(turnaround_us / TURN_BIN_US), TURN_BINS - 1)] += 1.0
+
+
+@njit(cache=True, nogil=True)
+def fd_loop(
+    fd: int,
+    spin_us: float,
+    silent_ms: int,
+    max_samples: int,
+    lk: np.ndarray,
+    answered: np.ndarray,
+    dstate: np.ndarray,
+    dbuf: np.ndarray,
+    frame: np.ndarray,
+    adc: np.ndarray,
+    fields: np.ndarray,
+    dac: np.ndarray,
+    rx: np.ndarray,
+    tx: np.ndarray,
+    timespec: np.ndarray,
+    pollfd: np.ndarray,
+    conv: np.ndarray,
+    kind: np.ndarray,
+    params: np.ndarray,
+    state: np.ndarray,
+    rng: np.ndarray,
+    trains: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+    loop_p: np.ndarray,
+    loop_s: np.ndarray,
+    neuron_rows: np.ndarray,
+    ctrl: np.ndarray,
+    ring: np.ndarray,
+    mailbox: np.ndarray,
+    applied: np.ndarray,
+    stats: np.ndarray,
+) -> int:
+    """Serve the board on ``fd`` until a stop condition; returns an ``EXIT_*`` code."""
+    idle_ms = 0
+    while True:
+        ctrl[CTRL_HEARTBEAT] += 1
+        if ctrl[CTRL_STOP] != 0:
+            return EXIT_STOP_REQUEST
+        if max_samples > 0 and lk[LK_SAMPLES] >= max_samples:
+            return EXIT_DURATION
+        # Wait for input: spin first (a sleeping reader wakes 50-90 µs late on these
+        # machines, REALTIME-NOTES), then sleep in poll().
+        ready = fd_wait_readable(fd, 0, pollfd)
+        if ready == 0 and spin_us > 0:
+            t0 = monotonic_us(timespec)
+            while ready == 0 and monotonic_us(timespec) - t0 < spin_us:
+                ready = fd_wait_readable(fd, 0, pollfd)
+        if ready == 0:
+            ready = fd_wait_readable(fd, _POLL_SLICE_MS, pollfd)
+        if ready < 0:
+            return EXIT_PORT_ERROR
+        if ready == 0:
+            idle_ms += _POLL_SLICE_MS
+            if silent_ms > 0 and idle_ms >= silent_ms:
+                return EXIT_BOARD_SILENT
+            continue
+        revents = pollfd[1] >> 16
+        if (revents & 0x01) == 0 and (revents & _POLLHUP_POLLERR_POLLNVAL) != 0:
+            return EXIT_PORT_CLOSED
+        idle_ms = 0
+        t_ready = monotonic_us(timespec)
+        got = fd_read(fd, rx, 0, rx.shape[0])
+        if got == 0:
+            return EXIT_PORT_CLOSED
+        if got < 0:
+            return EXIT_PORT_ERROR
+        length = process_rx(
+            got,
+            lk,
+            answered,
+            dstate,
+            dbuf,
+            frame,
+            adc,
+            fields,
+            dac,
+            rx,
+            tx,
+            conv,
+            kind,
+            params,
+            state,
+            rng,
+            trains,
+            g_out,
+            i_out,
+            loop_p,
+            loop_s,
+            neuron_rows,
+            ctrl,
+            ring,
+            mailbox,
+            applied,
+            stats,
+        )
+        if length > 0:
+            done = 0
+            while done < length:
+                w = fd_write(fd, tx, done, length - done)
+                if w <= 0:
+                    return EXIT_PORT_ERROR
+                done += w
+            record_turnaround(lk, ring, stats, monotonic_us(timespec) - t_ready)
