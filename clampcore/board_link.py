@@ -13,6 +13,7 @@ Public names: ``BoardLink``, ``BoardError``, ``list_ports``, ``board_converters`
 
 from __future__ import annotations
 
+import contextlib
 import fcntl
 import os
 import time
@@ -104,7 +105,7 @@ class BoardLink:
             raise BoardError(self.port, f"sending {type(message).__name__}", str(exc)) from exc
         return seq
 
-    def _frames(self, deadline: float):  # noqa: ANN202 - generator of (seq, message)
+    def _frames(self, deadline: float):
         while time.monotonic() < deadline:
             while b"\x00" in self._pending:
                 wire, self._pending = self._pending.split(b"\x00", 1)
@@ -123,7 +124,7 @@ class BoardLink:
     def request(self, message: Any, reply_type: type, timeout_s: float = _REPLY_TIMEOUT_S) -> Any:
         """Send a control message and wait for its reply (samples in between are skipped)."""
         seq = self.send(message)
-        for reply_seq, reply in self._frames(time.monotonic() + timeout_s):
+        for _reply_seq, reply in self._frames(time.monotonic() + timeout_s):
             if isinstance(reply, reply_type):
                 if isinstance(reply, codec.Status) and reply.ack_seq != seq:
                     continue  # an unsolicited report or an older reply
@@ -176,7 +177,5 @@ class BoardLink:
             return None
 
     def close(self) -> None:
-        try:
+        with contextlib.suppress(serial.SerialException, OSError):
             self.serial.close()
-        except (serial.SerialException, OSError):
-            pass

@@ -22,6 +22,8 @@ Public names: ``Engine``, ``RunOptions``, ``RunResult``, ``EngineError``, ``stat
 from __future__ import annotations
 
 import contextlib
+import ctypes
+import ctypes.util
 import multiprocessing as mp
 import os
 import signal
@@ -84,6 +86,8 @@ from clampcore.shared import (
     SharedRun,
 )
 
+_PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
+
 
 class EngineError(RuntimeError):
     """A run that could not start or did not end cleanly; says why."""
@@ -126,7 +130,7 @@ def _neuron_rows(program: Program) -> np.ndarray:
 
 
 @contextlib.contextmanager
-def _cpu_dma_latency_zero(enabled: bool):  # noqa: ANN202
+def _cpu_dma_latency_zero(enabled: bool):
     """Hold /dev/cpu_dma_latency at 0 µs while running (standard Linux low-latency practice)."""
     if not enabled:
         yield False
@@ -143,6 +147,16 @@ def _cpu_dma_latency_zero(enabled: bool):  # noqa: ANN202
         os.close(fd)
 
 
+def _die_with_parent() -> None:
+    """Linux: end this process if the one that started it dies (the board's watchdog then
+    takes the output to 0 pA), so no loop is ever left running without its recorder."""
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c"), use_errno=True)
+        libc.prctl(_PR_SET_PDEATHSIG, signal.SIGTERM)
+    except (OSError, AttributeError):
+        pass
+
+
 def _loop_process(
     exp_text: str,
     port: str,
@@ -154,6 +168,7 @@ def _loop_process(
 ) -> None:
     """Body of the loop process. Never raises: reports through ``conn``."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides when to stop
+    _die_with_parent()
     report: dict[str, Any] = {"exit_code": 0, "error": None, "board_status": None}
     shared = link = None
     started = False
@@ -178,7 +193,7 @@ def _loop_process(
                 f"refusing to start: the board and amplifier can command {lo:.0f}..{hi:.0f} pA, "
                 f"which cannot represent max_current_pA = ±{limit:g}"
             )
-        rate = int(round(exp.loop["rate_hz"]))
+        rate = round(exp.loop["rate_hz"])
         if rate > hello.max_rate_hz:
             raise EngineError(
                 f"refusing to start: rate_hz {rate} > the board's {hello.max_rate_hz}"
@@ -216,7 +231,7 @@ def _loop_process(
             report["error"] = EXIT_MESSAGES[code]
     except (BoardError, EngineError, OSError) as exc:
         report["error"] = str(exc)
-    except Exception:  # noqa: BLE001 - any fault: report it, never leave the cell driven
+    except Exception:
         report["error"] = traceback.format_exc()
     finally:
         if link is not None:
@@ -255,7 +270,7 @@ def _feed(link: BoardLink, data: bytes, arrays: Any, loop_args: tuple, shared: S
     if length > 0:
         try:
             link.serial.write(a.tx[:length].tobytes())
-        except Exception as exc:  # noqa: BLE001 - pyserial raises several kinds
+        except Exception as exc:
             raise BoardError(link.port, "sending a command", str(exc)) from exc
         record_turnaround(a.lk, shared.ring, shared.stats, (time.monotonic() - t_ready) * 1e6)
 
@@ -279,7 +294,7 @@ def _python_loop(
             return EXIT_DURATION
         try:
             data = ser.read(max(1, min(ser.in_waiting, rx_size)))
-        except Exception:  # noqa: BLE001 - pyserial raises several kinds
+        except Exception:
             return EXIT_PORT_ERROR
         if not data:
             if (time.monotonic() - idle_since) * 1000 > options.silent_ms:
@@ -503,7 +518,8 @@ def status_line(s: dict[str, Any], rate_hz: float) -> str:
     if not s:
         return "starting"
     return (
-        f"t {s['elapsed_s']:6.1f} s | {rate_hz / 1000:g} kHz | latency p50 {s['latency_p50_samples']:.0f} "
+        f"t {s['elapsed_s']:6.1f} s | {rate_hz / 1000:g} kHz "
+        f"| latency p50 {s['latency_p50_samples']:.0f} "
         f"p99 {s['latency_p99_samples']:.0f} samples | turnaround p50 {s['turnaround_p50_us']:.0f} "
         f"p99 {s['turnaround_p99_us']:.0f} µs | late {s['late']} missing {s['missing']} "
         f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "

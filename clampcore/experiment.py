@@ -246,11 +246,14 @@ def _cross_check(el: dict[str, Any], where: str, dt_ms: float) -> None:
             raise ExperimentError(where, "reset_mV", el["reset_mV"], "must be below threshold_mV")
         if el["model"] != "lif" and not el["v_peak_mV"] > el["threshold_mV"]:
             raise ExperimentError(where, "v_peak_mV", el["v_peak_mV"], "must be above threshold_mV")
-    if kind == "synapse" and el["kinetics"] == "dual_exp":
-        if not el["tau_rise_ms"] < el["tau_decay_ms"]:
-            raise ExperimentError(
-                where, "tau_rise_ms", el["tau_rise_ms"], "must be shorter than tau_decay_ms"
-            )
+    if (
+        kind == "synapse"
+        and el["kinetics"] == "dual_exp"
+        and not el["tau_rise_ms"] < el["tau_decay_ms"]
+    ):
+        raise ExperimentError(
+            where, "tau_rise_ms", el["tau_rise_ms"], "must be shorter than tau_decay_ms"
+        )
     if kind == "synapse" and el["source"] == "train" and not el["times_ms"]:
         raise ExperimentError(where, "times_ms", el["times_ms"], "a train source needs times")
     if kind == "current" and el["waveform"] == "train" and el["pulse_ms"] > el["period_ms"]:

@@ -31,6 +31,13 @@ from clampcore.calibration import counts_to_mV, pA_to_counts
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.shared import (
     APPLIED_SAMPLE,
+    COL_COUNTER,
+    COL_FLAGS,
+    COL_I,
+    COL_LATENCY,
+    COL_STATUS,
+    COL_TURNAROUND,
+    COL_V,
     CTRL_FIRST_COUNTER,
     CTRL_HEARTBEAT,
     CTRL_MAIL_APPLIED,
@@ -41,6 +48,7 @@ from clampcore.shared import (
     LAT_BINS,
     MAIL_TO_PARAMS,
     MAILBOX_SLOTS,
+    N_FIXED_COLUMNS,
     ST_BAD_FRAMES,
     ST_COMMANDS,
     ST_FAULTS,
@@ -57,14 +65,6 @@ from clampcore.shared import (
     ST_ZEROED,
     TURN_BIN_US,
     TURN_BINS,
-    COL_COUNTER,
-    COL_FLAGS,
-    COL_I,
-    COL_LATENCY,
-    COL_STATUS,
-    COL_TURNAROUND,
-    COL_V,
-    N_FIXED_COLUMNS,
 )
 from clampcore.step import (
     FAULT_BAD_V,

@@ -115,7 +115,10 @@ class Program:
 
 
 def build_program(experiment: Any, seed: int = 0) -> Program:
-    """Arrays for ``experiment`` (anything ``load_experiment`` takes); ``seed`` offsets every stream."""
+    """Arrays for ``experiment`` (anything ``load_experiment`` takes).
+
+    ``seed`` offsets every random stream of the run.
+    """
     exp = load_experiment(experiment)
     n = len(exp.elements)
     names = [e["name"] for e in exp.elements]

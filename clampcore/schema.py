@@ -11,6 +11,7 @@ Public names: ``Field``, ``ELEMENT_FIELDS``, ``SECTION_FIELDS``, ``KINDS``,
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -222,7 +223,7 @@ def check_value(field: Field, value: Any) -> str | None:
             isinstance(t, bool) or not isinstance(t, int | float) or not t >= 0 for t in value
         ):
             return "must be a list of times >= 0"
-        if any(b < a for a, b in zip(value, value[1:], strict=False)):
+        if any(b < a for a, b in itertools.pairwise(value)):
             return "must be in ascending order"
         if any(math.isinf(t) for t in value):
             return "must be finite"

@@ -23,6 +23,7 @@ Public names: ``SharedRun``, ``RingLayout``, the ``CTRL_*``, ``ST_*``,
 
 from __future__ import annotations
 
+import contextlib
 import secrets
 from dataclasses import dataclass
 from multiprocessing import shared_memory
@@ -181,10 +182,8 @@ class SharedRun:
         for block in self._blocks.values():
             block.close()
             if self.owner:
-                try:
+                with contextlib.suppress(FileNotFoundError):
                     block.unlink()
-                except FileNotFoundError:
-                    pass
 
     # ------------------------------------------------------------------ readers
     def written(self) -> int:

@@ -36,7 +36,6 @@ import numpy as np
 from numba import njit
 
 from clampcore.elements import (
-    KIND_CURRENT,
     KIND_LEAK,
     KIND_NEURON,
     KIND_NOISE,
@@ -139,7 +138,7 @@ def step(
     # 3. Conductances and currents.
     for r in range(n_el):
         k = kind[r]
-        if k == KIND_THRESHOLD_RESET or k == KIND_NEURON:
+        if k in (KIND_THRESHOLD_RESET, KIND_NEURON):
             continue
         p = params[r]
         if p[P_ENABLED] == 0.0:

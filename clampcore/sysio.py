@@ -80,7 +80,7 @@ if numba_config.DISABLE_JIT:
     import select
     import time
 
-    def fd_read(fd: int, buf: np.ndarray, offset: int, nbytes: int) -> int:  # noqa: F811
+    def fd_read(fd: int, buf: np.ndarray, offset: int, nbytes: int) -> int:
         try:
             data = os.read(fd, nbytes)
         except BlockingIOError:
@@ -90,13 +90,13 @@ if numba_config.DISABLE_JIT:
         buf[offset : offset + len(data)] = np.frombuffer(data, dtype=np.uint8)
         return len(data)
 
-    def fd_write(fd: int, buf: np.ndarray, offset: int, nbytes: int) -> int:  # noqa: F811
+    def fd_write(fd: int, buf: np.ndarray, offset: int, nbytes: int) -> int:
         try:
             return os.write(fd, buf[offset : offset + nbytes].tobytes())
         except OSError:
             return -1
 
-    def fd_wait_readable(fd: int, timeout_ms: int, pollfd: np.ndarray) -> int:  # noqa: F811
+    def fd_wait_readable(fd: int, timeout_ms: int, pollfd: np.ndarray) -> int:
         poller = select.poll()
         poller.register(fd, select.POLLIN)
         try:
@@ -104,8 +104,8 @@ if numba_config.DISABLE_JIT:
         except OSError:
             return -1
 
-    def monotonic_ns(timespec: np.ndarray) -> int:  # noqa: F811
+    def monotonic_ns(timespec: np.ndarray) -> int:
         return time.monotonic_ns()
 
-    def monotonic_us(timespec: np.ndarray) -> float:  # noqa: F811
+    def monotonic_us(timespec: np.ndarray) -> float:
         return time.monotonic_ns() * 1e-3
