@@ -1,18 +1,29 @@
 """clampcore: dynamic clamp on a generic serial DAQ board.
 
 Public names: ``simulate``, ``load_experiment``, ``Experiment``,
-``ExperimentError``, ``Recording``, ``build_program``.
+``ExperimentError``, ``Recording``, ``build_program``. They are imported on
+first use, so that low-level modules (``clampcore.jit``, ``clampcore.rng``) can
+be imported by the model cells without pulling in the whole engine.
 """
 
-from clampcore.experiment import Experiment, ExperimentError, load_experiment
-from clampcore.program import build_program
-from clampcore.simulate import Recording, simulate
+from __future__ import annotations
 
-__all__ = [
-    "Experiment",
-    "ExperimentError",
-    "Recording",
-    "build_program",
-    "load_experiment",
-    "simulate",
-]
+import importlib
+from typing import Any
+
+_WHERE = {
+    "Experiment": "clampcore.experiment",
+    "ExperimentError": "clampcore.experiment",
+    "load_experiment": "clampcore.experiment",
+    "build_program": "clampcore.program",
+    "Recording": "clampcore.offline",
+    "simulate": "clampcore.offline",
+}
+
+__all__ = sorted(_WHERE)
+
+
+def __getattr__(name: str) -> Any:
+    if name in _WHERE:
+        return getattr(importlib.import_module(_WHERE[name]), name)
+    raise AttributeError(f"module 'clampcore' has no attribute {name!r}")

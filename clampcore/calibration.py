@@ -24,7 +24,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from numba import njit
+
+from clampcore.jit import kernel
 
 
 @dataclass(frozen=True)
@@ -62,14 +63,14 @@ def conversion_array(adc: Converter, dac: Converter, amplifier: dict[str, Any]) 
     return conv
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def counts_to_mV(conv: np.ndarray, counts: float) -> float:
     """Host: ADC counts -> membrane potential in mV (junction potential corrected)."""
     volts = conv[C_ADC_MIN] + counts * (conv[C_ADC_MAX] - conv[C_ADC_MIN]) / conv[C_ADC_TOP]
     return volts * conv[C_VM_SCALE] + conv[C_VM_OFFSET] - conv[C_LJP]
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def pA_to_counts(conv: np.ndarray, i_pA: float) -> int:
     """Host: command current in pA -> nearest DAC count, clipped to the converter."""
     volts = (i_pA - conv[C_CMD_OFFSET]) / conv[C_CMD_SCALE]
@@ -77,7 +78,7 @@ def pA_to_counts(conv: np.ndarray, i_pA: float) -> int:
     return int(min(max(c, 0.0), conv[C_DAC_TOP]))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def mV_to_counts(conv: np.ndarray, v_mV: float) -> int:
     """Board physics: true membrane potential -> the ADC count the board reads."""
     volts = (v_mV + conv[C_LJP] - conv[C_VM_OFFSET]) / conv[C_VM_SCALE]
@@ -85,7 +86,7 @@ def mV_to_counts(conv: np.ndarray, v_mV: float) -> int:
     return int(min(max(c, 0.0), conv[C_ADC_TOP]))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def counts_to_pA(conv: np.ndarray, counts: float) -> float:
     """Board physics: DAC count -> the current the amplifier injects, pA."""
     volts = conv[C_DAC_MIN] + counts * (conv[C_DAC_MAX] - conv[C_DAC_MIN]) / conv[C_DAC_TOP]

@@ -43,7 +43,7 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def _simulate(args: argparse.Namespace) -> int:
-    from clampcore.simulate import simulate
+    from clampcore.offline import simulate
 
     rec = simulate(args.experiment, args.duration, seed=args.seed)
     print(rec.summary_text())

@@ -10,7 +10,7 @@ for ``spin_us`` and then sleeping in ``poll``; it measures the host's turnaround
 (input ready -> command written) and stops on a stop request, the duration, or
 a port that closed or failed.
 
-Real-time rules: everything here is ``@njit(cache=True, nogil=True)`` over
+Real-time rules: everything here is a ``clampcore.jit.kernel`` (compiled, no GIL) over
 preallocated arrays; no allocation, no Python objects, no locks, no I/O but the
 one read and one write per pass. Policy (what to do on a fault, when to record,
 how to show status) lives in ``clampcore.engine``.
@@ -25,10 +25,10 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from numba import njit
 
 from clampcore.calibration import counts_to_mV, pA_to_counts
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.jit import kernel
 from clampcore.shared import (
     APPLIED_SAMPLE,
     COL_COUNTER,
@@ -183,7 +183,7 @@ def new_link(zero_counts: int) -> LinkArrays:
     )
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _apply_mail(
     ctrl: np.ndarray,
     mailbox: np.ndarray,
@@ -208,7 +208,7 @@ def _apply_mail(
         ctrl[CTRL_MAIL_APPLIED] = k + 1
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def process_rx(
     nbytes: int,
     lk: np.ndarray,
@@ -317,7 +317,7 @@ def process_rx(
     return encode_pending(lk, answered, dac, tx, stats)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def encode_pending(
     lk: np.ndarray, answered: np.ndarray, dac: np.ndarray, tx: np.ndarray, stats: np.ndarray
 ) -> int:
@@ -332,7 +332,7 @@ def encode_pending(
     return length
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def record_turnaround(
     lk: np.ndarray, ring: np.ndarray, stats: np.ndarray, turnaround_us: float
 ) -> None:
@@ -341,7 +341,7 @@ def record_turnaround(
     stats[ST_TURN_HIST + min(int(turnaround_us / TURN_BIN_US), TURN_BINS - 1)] += 1.0
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def fd_loop(
     fd: int,
     spin_us: float,

@@ -8,7 +8,7 @@ The generator is SplitMix64 (Steele, Lea & Flood 2014, "Fast splittable
 pseudorandom number generators", OOPSLA; constants from that paper); normal
 deviates use the Box–Muller transform (Box & Muller 1958).
 
-Public names: ``seed_state``, ``next_u64``, ``uniform``, ``normal``.
+Public names: ``seed_state``, ``next_u64``, ``uniform``, ``normal``, ``normal_cached``.
 """
 
 from __future__ import annotations
@@ -18,7 +18,8 @@ import os
 import warnings
 
 import numpy as np
-from numba import njit
+
+from clampcore.jit import kernel
 
 _GOLDEN_GAMMA = np.uint64(0x9E3779B97F4A7C15)  # SplitMix64 increment (Steele et al. 2014)
 _MIX1 = np.uint64(0xBF58476D1CE4E5B9)  # SplitMix64 finaliser constants (Steele et al. 2014)
@@ -36,7 +37,7 @@ def seed_state(seed: int, stream: int = 0) -> np.uint64:
     return np.uint64(mixed)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def next_u64(state: np.ndarray, i: int) -> np.uint64:
     """Advance ``state[i]`` and return the next 64-bit output (SplitMix64)."""
     z = state[i] + _GOLDEN_GAMMA
@@ -46,15 +47,32 @@ def next_u64(state: np.ndarray, i: int) -> np.uint64:
     return z ^ (z >> np.uint64(31))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def uniform(state: np.ndarray, i: int) -> float:
     """A uniform deviate in [0, 1) from ``state[i]``."""
     return float(next_u64(state, i) >> np.uint64(11)) / _TWO_POW_53
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def normal(state: np.ndarray, i: int) -> float:
     """A standard normal deviate from ``state[i]`` (Box–Muller, one value per call)."""
     u1 = 1.0 - uniform(state, i)  # in (0, 1]: log is finite
     u2 = uniform(state, i)
     return math.sqrt(-2.0 * math.log(u1)) * math.cos(2.0 * math.pi * u2)
+
+
+@kernel
+def normal_cached(state: np.ndarray, i: int, spare: np.ndarray, col: int) -> float:
+    """A standard normal deviate; Box–Muller's second value is kept in ``spare[col]``.
+
+    ``spare[col + 1]`` is 1.0 while a kept value waits. Half the cost of ``normal``.
+    """
+    if spare[col + 1] != 0.0:
+        spare[col + 1] = 0.0
+        return spare[col]
+    u1 = 1.0 - uniform(state, i)
+    u2 = uniform(state, i)
+    radius = math.sqrt(-2.0 * math.log(u1))
+    spare[col] = radius * math.sin(2.0 * math.pi * u2)
+    spare[col + 1] = 1.0
+    return radius * math.cos(2.0 * math.pi * u2)

@@ -33,7 +33,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
 
 from clampcore.elements import (
     KIND_LEAK,
@@ -50,6 +49,7 @@ from clampcore.elements import noise as _noise
 from clampcore.elements import synapse as _syn
 from clampcore.elements import threshold_reset as _tr
 from clampcore.elements.current import current_waveform
+from clampcore.jit import kernel
 
 # Loop parameters (float64 array ``loop_p``).
 LP_DT_MS = 0
@@ -73,7 +73,7 @@ FAULT_NONFINITE = 2
 FLAG_LIMITED = 4
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _detect_cell_spike(v_mV: float, loop_p: np.ndarray, loop_s: np.ndarray) -> bool:
     threshold = loop_p[LP_SPIKE_THRESHOLD_MV]
     if loop_s[LS_ARMED] != 0.0:
@@ -85,7 +85,7 @@ def _detect_cell_spike(v_mV: float, loop_p: np.ndarray, loop_s: np.ndarray) -> b
     return False
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def step(
     v_mV: float,
     n: int,
@@ -123,10 +123,13 @@ def step(
             g_out[r] = 0.0
             i_out[r] = 0.0
             continue
-        clamping = clamping or state[r, _tr.S_REMAIN] > 0.0
+        was_on = state[r, _tr.S_REMAIN] > 0.0
+        clamping = clamping or was_on
         i = _tr.threshold_reset_step(params[r], state[r], v_mV, dt_ms)
         imposed = imposed or state[r, _tr.S_SPIKED] != 0.0
-        g_out[r] = params[r, _tr.P_G] if i != 0.0 else 0.0
+        # The clamp's conductance is on while it clamps, even when V sits exactly at reset.
+        on = was_on or state[r, _tr.S_SPIKED] != 0.0
+        g_out[r] = params[r, _tr.P_G] if on else 0.0
         i_out[r] = i
         total += i
     # A detector crossing during an imposed reset is the same spike, not a new one.

@@ -17,7 +17,9 @@ import ctypes.util
 
 import numpy as np
 from numba import config as numba_config
-from numba import njit, types
+from numba import types
+
+from clampcore.jit import kernel
 
 # Load libc into the process so that numba's linker finds the symbols by name.
 ctypes.CDLL(ctypes.util.find_library("c"), mode=ctypes.RTLD_GLOBAL)
@@ -38,19 +40,19 @@ def buffer_address(array: np.ndarray) -> int:
     return int(array.ctypes.data)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def fd_read(fd: int, buf: np.ndarray, offset: int, nbytes: int) -> int:
     """read(2) into ``buf[offset:offset+nbytes]`` (uint8); bytes read, 0 at EOF, -1 on error."""
     return _read(fd, buf.ctypes.data + offset, nbytes)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def fd_write(fd: int, buf: np.ndarray, offset: int, nbytes: int) -> int:
     """write(2) of ``buf[offset:offset+nbytes]`` (uint8); bytes written or -1."""
     return _write(fd, buf.ctypes.data + offset, nbytes)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def fd_wait_readable(fd: int, timeout_ms: int, pollfd: np.ndarray) -> int:
     """poll(2) one descriptor for input: >0 readable, 0 timed out, <0 error.
 
@@ -61,14 +63,14 @@ def fd_wait_readable(fd: int, timeout_ms: int, pollfd: np.ndarray) -> int:
     return _poll(pollfd.ctypes.data, 1, timeout_ms)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def monotonic_ns(timespec: np.ndarray) -> int:
     """CLOCK_MONOTONIC in ns; ``timespec`` is an int64 array of 2 used as scratch."""
     _clock_gettime(_CLOCK_MONOTONIC, timespec.ctypes.data)
     return timespec[0] * 1_000_000_000 + timespec[1]
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def monotonic_us(timespec: np.ndarray) -> float:
     """CLOCK_MONOTONIC in µs (float); ``timespec`` is an int64 array of 2 used as scratch."""
     return monotonic_ns(timespec) * 1e-3

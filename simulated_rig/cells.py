@@ -50,8 +50,8 @@ import numbers
 from dataclasses import dataclass
 
 import numpy as np
-from numba import njit
 
+from clampcore.jit import kernel
 from clampcore.rng import normal, seed_state
 
 CELL_PASSIVE = 0
@@ -135,7 +135,7 @@ class CellArrays:
 # 23, 24, rewritten for V measured from outside with rest at -65 mV).
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _x_over_1_minus_exp(x: float, k: float) -> float:
     """``x / (1 - exp(-x/k))``, with its limit ``k`` at ``x = 0``."""
     u = x / k
@@ -144,37 +144,37 @@ def _x_over_1_minus_exp(x: float, k: float) -> float:
     return x / -math.expm1(-u)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _alpha_m(v_mV: float) -> float:
     return 0.1 * _x_over_1_minus_exp(v_mV + 40.0, 10.0)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _beta_m(v_mV: float) -> float:
     return 4.0 * math.exp(-(v_mV + 65.0) / 18.0)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _alpha_h(v_mV: float) -> float:
     return 0.07 * math.exp(-(v_mV + 65.0) / 20.0)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _beta_h(v_mV: float) -> float:
     return 1.0 / (1.0 + math.exp(-(v_mV + 35.0) / 10.0))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _alpha_n(v_mV: float) -> float:
     return 0.01 * _x_over_1_minus_exp(v_mV + 55.0, 10.0)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _beta_n(v_mV: float) -> float:
     return 0.125 * math.exp(-(v_mV + 65.0) / 80.0)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _gates_step(state: np.ndarray, h_ms: float) -> None:
     """Advance m, h, n over ``h_ms`` with V frozen at ``state[S_V_MV]``.
 
@@ -196,7 +196,7 @@ def _gates_step(state: np.ndarray, h_ms: float) -> None:
     state[S_N] = x_inf + (state[S_N] - x_inf) * math.exp(-h_ms * s)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _hh_voltage_step(params: np.ndarray, state: np.ndarray, i_pA: float, h_ms: float) -> None:
     """Advance V over ``h_ms`` with the gates frozen (exact: linear in V)."""
     m = state[S_M]
@@ -215,7 +215,7 @@ def _hh_voltage_step(params: np.ndarray, state: np.ndarray, i_pA: float, h_ms: f
 # ------------------------------------------------------------------ kernels
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def cell_advance(
     kind: int, params: np.ndarray, state: np.ndarray, rng: np.ndarray, i_pA: float, dt_ms: float
 ) -> None:
@@ -269,7 +269,7 @@ def cell_advance(
                 _gates_step(state, 0.5 * h_ms)
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def cell_measure_mV(
     kind: int, params: np.ndarray, state: np.ndarray, rng: np.ndarray, i_pA: float
 ) -> float:
@@ -284,7 +284,7 @@ def cell_measure_mV(
     return v_mV
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def cell_v_true_mV(kind: int, params: np.ndarray, state: np.ndarray) -> float:
     """The true membrane potential (no electrode drop, no noise)."""
     return state[S_V_MV]

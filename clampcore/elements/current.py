@@ -19,10 +19,11 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
 
+from clampcore.elements.decay import decay_factor
 from clampcore.elements.noise import ou_exact_step
-from clampcore.rng import normal
+from clampcore.jit import kernel
+from clampcore.rng import normal_cached
 
 WF_STEP, WF_TRAIN, WF_RAMP, WF_SINE, WF_WHITE, WF_COLOURED = 0, 1, 2, 3, 4, 5
 WAVEFORM_CODES = {
@@ -55,9 +56,11 @@ COLUMNS = {
 }
 
 S_OU = 0  # coloured noise state, pA
+S_DECAY = 1  # cached decay (tau, factor): columns 1, 2
+S_SPARE = 3  # Box–Muller spare deviate and its flag: columns 3, 4
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def current_waveform(
     p: np.ndarray, s: np.ndarray, rng: np.ndarray, row: int, t_ms: float, dt_ms: float
 ) -> float:
@@ -76,8 +79,9 @@ def current_waveform(
     elif waveform == WF_SINE:
         value = amp * math.sin(2.0 * math.pi * p[P_FREQUENCY] * t_on * 1e-3)
     elif waveform == WF_WHITE:
-        value = amp * normal(rng, row)
+        value = amp * normal_cached(rng, row, s, S_SPARE)
     else:
-        s[S_OU] = ou_exact_step(s[S_OU], 0.0, amp, p[P_TAU], dt_ms, rng, row)
+        decay = decay_factor(s, S_DECAY, p[P_TAU], dt_ms)
+        s[S_OU] = ou_exact_step(s[S_OU], 0.0, amp, decay, normal_cached(rng, row, s, S_SPARE))
         value = s[S_OU]
     return p[P_OFFSET] + value

@@ -7,14 +7,15 @@ resistance). Public names: ``COLUMNS``, ``leak_current``.
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+
+from clampcore.jit import kernel
 
 P_G = 2
 P_E = 3
 COLUMNS = {"g_nS": P_G, "e_mV": P_E}
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def leak_current(p: np.ndarray, v_mV: float) -> float:
     """Current in pA (nS x mV) that the leak passes at ``v_mV``."""
     return -p[P_G] * (v_mV - p[P_E])

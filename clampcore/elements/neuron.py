@@ -27,7 +27,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+
+from clampcore.elements.decay import decay_factor
+from clampcore.jit import kernel
 
 MODEL_LIF, MODEL_EIF, MODEL_ADEX = 0, 1, 2
 MODEL_CODES = {"lif": MODEL_LIF, "eif": MODEL_EIF, "adex": MODEL_ADEX}
@@ -66,9 +68,10 @@ S_LAST_SPIKE = 2  # sample index of the last spike (-inf before the first)
 S_ISYN = 3  # synaptic current gathered during this sample, pA
 S_SPIKED = 4  # 1.0 when the neuron spiked at this sample
 S_COUNT = 5
+S_DECAY = 6  # cached LIF decay (tau, factor): columns 6, 7
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def neuron_step(p: np.ndarray, s: np.ndarray, n: int, dt_ms: float) -> bool:
     """Advance one sample (index ``n``); True when the neuron spikes."""
     i_pA = s[S_ISYN] + p[P_BIAS]
@@ -81,7 +84,7 @@ def neuron_step(p: np.ndarray, s: np.ndarray, n: int, dt_ms: float) -> bool:
     if model == MODEL_LIF:
         if not refractory:
             v_inf = e_l + i_pA / g_l
-            v = v_inf + (v - v_inf) * math.exp(-dt_ms * g_l / c)
+            v = v_inf + (v - v_inf) * decay_factor(s, S_DECAY, c / g_l, dt_ms)
         threshold = p[P_VT]
     else:
         d_t = p[P_DELTA_T]

@@ -18,9 +18,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
 
-from clampcore.rng import normal
+from clampcore.elements.decay import decay_factor
+from clampcore.jit import kernel
+from clampcore.rng import normal_cached
 
 P_G_MEAN = 2
 P_G_SD = 3
@@ -29,21 +30,25 @@ P_E = 5
 COLUMNS = {"g_mean_nS": P_G_MEAN, "g_sd_nS": P_G_SD, "tau_ms": P_TAU, "e_mV": P_E}
 
 S_G = 0  # the OU process (unclipped), nS
+S_DECAY = 1  # cached decay (tau, factor): columns 1, 2
+S_SPARE = 3  # Box–Muller spare deviate and its flag: columns 3, 4
 
 
-@njit(cache=True, nogil=True)
-def ou_exact_step(
-    x: float, mean: float, sd: float, tau_ms: float, dt_ms: float, rng: np.ndarray, row: int
-) -> float:
-    """One exact Ornstein–Uhlenbeck update over ``dt_ms`` (Gillespie 1996)."""
-    decay = math.exp(-dt_ms / tau_ms)
-    return mean + (x - mean) * decay + sd * math.sqrt(1.0 - decay * decay) * normal(rng, row)
+@kernel
+def ou_exact_step(x: float, mean: float, sd: float, decay: float, z: float) -> float:
+    """One exact Ornstein–Uhlenbeck update (Gillespie 1996).
+
+    ``decay`` = exp(-dt/tau); ``z`` a standard normal deviate.
+    """
+    return mean + (x - mean) * decay + sd * math.sqrt(1.0 - decay * decay) * z
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def noise_conductance(
     p: np.ndarray, s: np.ndarray, rng: np.ndarray, row: int, dt_ms: float
 ) -> float:
     """Advance the process one sample; return the applied conductance (>= 0) in nS."""
-    s[S_G] = ou_exact_step(s[S_G], p[P_G_MEAN], p[P_G_SD], p[P_TAU], dt_ms, rng, row)
+    decay = decay_factor(s, S_DECAY, p[P_TAU], dt_ms)
+    z = normal_cached(rng, row, s, S_SPARE)
+    s[S_G] = ou_exact_step(s[S_G], p[P_G_MEAN], p[P_G_SD], decay, z)
     return max(s[S_G], 0.0)

@@ -34,9 +34,10 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
 
+from clampcore.elements.decay import decay_factor
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.jit import kernel
 from clampcore.rng import uniform
 
 KIN_EXP, KIN_ALPHA, KIN_DUAL = 0, 1, 2
@@ -78,13 +79,20 @@ S_R = 3  # STP: R of the last event
 S_LAST_MS = 4  # time of the last event (-inf before the first)
 S_TRAIN_POS = 5  # next index into the train
 S_EVENTS = 6  # events counted
+S_DECAY_A = 7  # cached decay of the first kinetic variable (tau, factor): columns 7, 8
+S_DECAY_B = 9  # cached decay of the rising part (dual_exp): columns 9, 10
+
+# A decayed conductance below this is set to 0: left alone it would sink into subnormal
+# floats after ~700 time constants, whose arithmetic is ~100x slower on x86 (measured here:
+# 150 ns instead of 30 ns a step). 1e-12 nS passes < 1e-10 pA at any membrane potential.
+_G_FLOOR_NS = 1e-12
 
 # Jahr & Stevens 1990: K_Mg = 3.57 mM, voltage dependence 0.062 per mV.
 _MG_K_MM = 3.57
 _MG_SLOPE_PER_MV = 0.062
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def mg_block(v_mV: float, mg_mM: float) -> float:
     """Fraction of NMDA-type conductance not blocked by Mg2+ (Jahr & Stevens 1990)."""
     if mg_mM <= 0.0:
@@ -92,7 +100,7 @@ def mg_block(v_mV: float, mg_mM: float) -> float:
     return 1.0 / (1.0 + mg_mM / _MG_K_MM * math.exp(-_MG_SLOPE_PER_MV * v_mV))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def dual_exp_peak_factor(tau_rise_ms: float, tau_decay_ms: float) -> float:
     """f such that f (exp(-t/tau_d) - exp(-t/tau_r)) peaks at exactly 1."""
     t_peak = tau_decay_ms * tau_rise_ms / (tau_decay_ms - tau_rise_ms)
@@ -100,7 +108,7 @@ def dual_exp_peak_factor(tau_rise_ms: float, tau_decay_ms: float) -> float:
     return 1.0 / (math.exp(-t_peak / tau_decay_ms) - math.exp(-t_peak / tau_rise_ms))
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def synapse_events(
     p: np.ndarray,
     s: np.ndarray,
@@ -134,7 +142,7 @@ def synapse_events(
     return 1 if state[int(p[P_SOURCE_ROW]), NEURON_S_SPIKED] != 0.0 else 0
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def _event_weight(p: np.ndarray, s: np.ndarray, t_ms: float) -> float:
     """g_max times the Tsodyks-Markram efficacy u R / U of an event at ``t_ms``."""
     tau_rec = p[P_TAU_REC]
@@ -152,21 +160,24 @@ def _event_weight(p: np.ndarray, s: np.ndarray, t_ms: float) -> float:
     return p[P_G_MAX] * u * r / big_u
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def synapse_conductance(
     p: np.ndarray, s: np.ndarray, events: int, t_ms: float, dt_ms: float
 ) -> float:
     """Decay over one sample, add this sample's events, return g in nS."""
     kinetics = int(p[P_KINETICS])
     if kinetics == KIN_EXP:
-        s[S_A] *= math.exp(-dt_ms / p[P_TAU_DECAY])
+        s[S_A] *= decay_factor(s, S_DECAY_A, p[P_TAU_DECAY], dt_ms)
     elif kinetics == KIN_ALPHA:
-        decay = math.exp(-dt_ms / p[P_TAU_ALPHA])
+        decay = decay_factor(s, S_DECAY_A, p[P_TAU_ALPHA], dt_ms)
         s[S_A] = (s[S_A] + dt_ms * s[S_B]) * decay
         s[S_B] *= decay
     else:
-        s[S_A] *= math.exp(-dt_ms / p[P_TAU_DECAY])
-        s[S_B] *= math.exp(-dt_ms / p[P_TAU_RISE])
+        s[S_A] *= decay_factor(s, S_DECAY_A, p[P_TAU_DECAY], dt_ms)
+        s[S_B] *= decay_factor(s, S_DECAY_B, p[P_TAU_RISE], dt_ms)
+    if abs(s[S_A]) < _G_FLOOR_NS and abs(s[S_B]) < _G_FLOOR_NS:
+        s[S_A] = 0.0
+        s[S_B] = 0.0
     for _ in range(events):
         w = _event_weight(p, s, t_ms)
         s[S_EVENTS] += 1.0

@@ -13,7 +13,8 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from numba import njit
+
+from clampcore.jit import kernel
 
 P_THRESHOLD = 2
 P_RESET = 3
@@ -32,7 +33,7 @@ S_COUNT = 2  # spikes counted
 S_SPIKED = 3  # 1.0 when this sample crossed threshold
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def threshold_reset_step(p: np.ndarray, s: np.ndarray, v_mV: float, dt_ms: float) -> float:
     """Advance one sample; returns the clamp current in pA. ``s[S_REMAIN]`` jumps on a spike."""
     s[S_SPIKED] = 0.0

@@ -17,7 +17,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from numba import njit
 
 from clampcore.calibration import (
     DEFAULT_BOARD_ADC,
@@ -31,6 +30,7 @@ from clampcore.calibration import (
 from clampcore.elements import KIND_NEURON
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.experiment import Experiment
+from clampcore.jit import kernel
 from clampcore.program import Program, build_program
 from clampcore.step import (
     FAULT_BAD_V,
@@ -46,7 +46,7 @@ from simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
 _CONDUCTANCE_KINDS = ("leak", "threshold_reset", "synapse", "noise")
 
 
-@njit(cache=True, nogil=True)
+@kernel
 def closed_loop(
     n_samples: int,
     delay_samples: int,
@@ -97,8 +97,9 @@ def closed_loop(
         )
         out_v[n] = v_mV
         out_i[n] = i_pA
-        out_g[n, :] = g_out
-        out_i_el[n, :] = i_out
+        for r in range(g_out.shape[0]):
+            out_g[n, r] = g_out[r]
+            out_i_el[n, r] = i_out[r]
         out_spikes[n, 0] = loop_s[LS_CELL_SPIKED] != 0.0
         for j in range(spike_rows.shape[0]):
             out_spikes[n, j + 1] = state[spike_rows[j], NEURON_S_SPIKED] != 0.0

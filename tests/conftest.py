@@ -1,0 +1,38 @@
+"""Shared test helpers.
+
+``require_brian2()`` imports brian2 for the cross-checks marked ``reference``:
+where brian2 is missing (or cannot be imported) the test is skipped with the
+reason, unless ``CLAMPCORE_REQUIRE_BRIAN2=1`` is set (``tasks.py test`` sets it
+in the reference environment), in which case the test fails instead.
+The ``brian2`` fixture does the same for a test that takes it as an argument.
+"""
+
+from __future__ import annotations
+
+import os
+from types import ModuleType
+
+import pytest
+
+
+def require_brian2() -> ModuleType:
+    """The brian2 module, or skip (fail under CLAMPCORE_REQUIRE_BRIAN2=1) when unusable."""
+    try:
+        import brian2
+    except Exception as exc:  # ImportError, or brian2 failing on an unsupported numpy
+        reason = (
+            f"brian2 is not usable here ({type(exc).__name__}: {exc}); the reference "
+            "cross-checks run in .venv-reference (python3 tasks.py test)"
+        )
+        if os.environ.get("CLAMPCORE_REQUIRE_BRIAN2") == "1":
+            pytest.fail(f"CLAMPCORE_REQUIRE_BRIAN2=1 but {reason}", pytrace=False)
+        pytest.skip(reason)
+    return brian2
+
+
+@pytest.fixture(scope="session")
+def brian2() -> ModuleType:
+    """brian2 set to its numpy code-generation target (no compiler needed)."""
+    module = require_brian2()
+    module.prefs.codegen.target = "numpy"
+    return module
