@@ -1,0 +1,149 @@
+"""Build and start the C parts of the protocol from Python (tests, benchmarks, the rig).
+
+Public names:
+
+* ``C_SOURCE_DIR`` - where ``ccb.h``, ``ccb_core.c`` and ``ports/`` live.
+* ``STRICT_FLAGS`` - the warning flags every C file must pass.
+* ``CompilerMissingError`` - raised when no C compiler is found.
+* ``find_c_compiler() -> str | None`` - ``$CC``, ``cc``, ``gcc`` or ``clang``.
+* ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
+* ``build_core_library(tmpdir) -> Path`` - shared library of the core plus the in-memory
+  port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
+* ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
+* ``build_pty_board(tmpdir) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
+* ``PtyBoard`` / ``start_pty_board(binary, *options) -> PtyBoard`` - run it; the
+  object gives the slave path and stops the process (also as a context manager).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+from pathlib import Path
+
+C_SOURCE_DIR = Path(__file__).resolve().parent / "c"
+STRICT_FLAGS = ("-std=c99", "-Wall", "-Wextra", "-Werror", "-pedantic")
+_OPT = ("-O2",)
+
+
+class CompilerMissingError(RuntimeError):
+    """No C compiler on this machine."""
+
+
+def find_c_compiler() -> str | None:
+    """Path of a C compiler: $CC if set, else cc, gcc or clang on PATH; None if none."""
+    env_cc = os.environ.get("CC")
+    candidates = [env_cc] if env_cc else []
+    candidates += ["cc", "gcc", "clang"]
+    for name in candidates:
+        found = shutil.which(name)
+        if found:
+            return found
+    return None
+
+
+def _compile(args: list[str], what: str) -> None:
+    cc = find_c_compiler()
+    if cc is None:
+        raise CompilerMissingError("no C compiler found (set CC or install cc/gcc/clang)")
+    proc = subprocess.run([cc, *args], capture_output=True, text=True, check=False)
+    if proc.returncode != 0:
+        raise RuntimeError(f"compiling {what} failed:\n{' '.join(args)}\n{proc.stderr}")
+
+
+def _core_sources() -> list[str]:
+    return [str(C_SOURCE_DIR / "ccb_core.c")]
+
+
+def build_core_library(tmpdir: str | os.PathLike[str]) -> Path:
+    """Compile the core and the in-memory port into ``tmpdir/libccb_mem.so``."""
+    out = Path(tmpdir) / "libccb_mem.so"
+    srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "memory_port.c")]
+    _compile([*STRICT_FLAGS, *_OPT, "-fPIC", "-shared", *srcs, "-o", str(out)], "libccb_mem")
+    return out
+
+
+_SANITIZE = ("-fsanitize=address,undefined", "-fno-sanitize-recover=all", "-g")
+
+
+def sanitizers_work(tmpdir: str | os.PathLike[str]) -> bool:
+    """True when this compiler builds and runs an AddressSanitizer/UBSan program here."""
+    src = Path(tmpdir) / "asan_probe.c"
+    exe = Path(tmpdir) / "asan_probe"
+    src.write_text("int main(void) { return 0; }\n")
+    try:
+        _compile([*_SANITIZE, str(src), "-o", str(exe)], "asan probe")
+    except (RuntimeError, CompilerMissingError):
+        return False
+    env = dict(os.environ, ASAN_OPTIONS="detect_leaks=0")
+    return subprocess.run([str(exe)], env=env, check=False).returncode == 0
+
+
+def build_fuzz_binary(tmpdir: str | os.PathLike[str], sanitize: bool) -> Path:
+    """Compile ``ports/fuzz_main.c`` with the core (and ASan/UBSan when ``sanitize``)."""
+    out = Path(tmpdir) / ("ccb_fuzz_asan" if sanitize else "ccb_fuzz")
+    srcs = [
+        *_core_sources(),
+        str(C_SOURCE_DIR / "ports" / "memory_port.c"),
+        str(C_SOURCE_DIR / "ports" / "fuzz_main.c"),
+    ]
+    extra = _SANITIZE if sanitize else ()
+    _compile([*STRICT_FLAGS, *_OPT, *extra, *srcs, "-o", str(out)], "ccb_fuzz")
+    return out
+
+
+def build_pty_board(tmpdir: str | os.PathLike[str]) -> Path:
+    """Compile the pseudo-terminal board (``ports/pty_board.c``) to ``tmpdir/pty_board``."""
+    out = Path(tmpdir) / "pty_board"
+    srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "pty_board.c")]
+    _compile([*STRICT_FLAGS, *_OPT, *srcs, "-o", str(out), "-lm"], "pty_board")
+    return out
+
+
+class PtyBoard:
+    """A running ``pty_board`` process; ``slave_path`` is the serial port to open."""
+
+    def __init__(self, proc: subprocess.Popen[bytes], slave_path: str) -> None:
+        self.proc = proc
+        self.slave_path = slave_path
+
+    def stop(self, timeout_s: float = 5.0) -> int:
+        """SIGTERM, wait, and return the exit code (kills after timeout_s)."""
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                self.proc.wait(timeout_s)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+        for stream in (self.proc.stdin, self.proc.stdout):
+            if stream is not None:
+                stream.close()
+        return self.proc.returncode
+
+    def __enter__(self) -> PtyBoard:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+
+def start_pty_board(binary: str | os.PathLike[str], *options: str) -> PtyBoard:
+    """Start the pty board with command-line ``options`` and read its slave path.
+
+    stdin is a pipe: the board also stops when it closes (see ``pty_board --help``).
+    """
+    proc = subprocess.Popen(
+        [str(binary), *options],
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+    )
+    assert proc.stdout is not None
+    line = proc.stdout.readline().decode("ascii", "replace").strip()
+    if not line.startswith("/"):
+        proc.kill()
+        proc.wait()
+        raise RuntimeError(f"pty_board did not print a slave path (got {line!r})")
+    return PtyBoard(proc, line)
