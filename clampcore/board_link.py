@@ -56,8 +56,9 @@ def list_ports() -> list[dict[str, Any]]:
 
 def board_converters(hello: codec.Hello) -> tuple[Converter, Converter]:
     """The board's ADC and DAC as ``Converter``s (ranges reported in µV)."""
-    adc = Converter(hello.adc_bits, hello.adc_min_uV * 1e-6, hello.adc_max_uV * 1e-6)
-    dac = Converter(hello.dac_bits, hello.dac_min_uV * 1e-6, hello.dac_max_uV * 1e-6)
+    # Divide (exact for whole volts) rather than multiply by 1e-6 (inexact in binary).
+    adc = Converter(hello.adc_bits, hello.adc_min_uV / 1e6, hello.adc_max_uV / 1e6)
+    dac = Converter(hello.dac_bits, hello.dac_min_uV / 1e6, hello.dac_max_uV / 1e6)
     return adc, dac
 
 
@@ -80,6 +81,9 @@ class BoardLink:
         self._seq = _CONTROL_SEQ_START
         self._pending = b""
         self.hello: codec.Hello | None = None
+        # A lone delimiter ends any partial frame a previous host left in the board's
+        # decoder (PROTOCOL.md: empty frames are ignored), so our first frame arrives whole.
+        self._write(b"\x00")
 
     # ------------------------------------------------------------------ raw file descriptor
     def blocking_fd(self) -> int | None:
@@ -98,12 +102,15 @@ class BoardLink:
         if seq is None:
             seq = self._seq
             self._seq = _CONTROL_SEQ_START + ((self._seq + 1 - _CONTROL_SEQ_START) % 0x7FFF)
+        self._write(codec.encode_message(message, seq), type(message).__name__)
+        return seq
+
+    def _write(self, data: bytes, what: str = "a delimiter") -> None:
         try:
-            self.serial.write(codec.encode_message(message, seq))
+            self.serial.write(data)
             self.serial.flush()
         except (serial.SerialException, OSError) as exc:
-            raise BoardError(self.port, f"sending {type(message).__name__}", str(exc)) from exc
-        return seq
+            raise BoardError(self.port, f"sending {what}", str(exc)) from exc
 
     def _frames(self, deadline: float):
         while time.monotonic() < deadline:
@@ -121,14 +128,21 @@ class BoardLink:
                 raise BoardError(self.port, "reading", str(exc)) from exc
             self._pending += data
 
-    def request(self, message: Any, reply_type: type, timeout_s: float = _REPLY_TIMEOUT_S) -> Any:
-        """Send a control message and wait for its reply (samples in between are skipped)."""
-        seq = self.send(message)
-        for _reply_seq, reply in self._frames(time.monotonic() + timeout_s):
-            if isinstance(reply, reply_type):
-                if isinstance(reply, codec.Status) and reply.ack_seq != seq:
-                    continue  # an unsolicited report or an older reply
-                return reply
+    def request(
+        self, message: Any, reply_type: type, timeout_s: float = _REPLY_TIMEOUT_S, tries: int = 1
+    ) -> Any:
+        """Send a control message and wait for its reply (samples in between are skipped).
+
+        ``tries`` > 1 resends after ``timeout_s / tries``: only for questions (GET_HELLO,
+        GET_STATUS), whose reply a running board may drop while its output is backed up.
+        """
+        for _ in range(tries):
+            seq = self.send(message)
+            for _reply_seq, reply in self._frames(time.monotonic() + timeout_s / tries):
+                if isinstance(reply, reply_type):
+                    if isinstance(reply, codec.Status) and reply.ack_seq != seq:
+                        continue  # an unsolicited report or an older reply
+                    return reply
         raise BoardError(
             self.port,
             f"no {reply_type.__name__} reply to {type(message).__name__}",
@@ -137,7 +151,7 @@ class BoardLink:
 
     def handshake(self) -> codec.Hello:
         self.serial.reset_input_buffer()
-        self.hello = self.request(codec.GetHello(), codec.Hello)
+        self.hello = self.request(codec.GetHello(), codec.Hello, tries=4)
         return self.hello
 
     def configure(self, rate_hz: int, watchdog_us: int, fault_counts: int) -> codec.Status:
@@ -172,7 +186,7 @@ class BoardLink:
 
     def status(self) -> codec.Status | None:
         try:
-            return self.request(codec.GetStatus(), codec.Status, timeout_s=1.0)
+            return self.request(codec.GetStatus(), codec.Status, timeout_s=2.0, tries=4)
         except BoardError:
             return None
 

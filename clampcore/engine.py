@@ -204,14 +204,15 @@ def _loop_process(
         )
         link.configure(rate, watchdog_us, zero)
         arrays = new_link(zero)
+        loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
+        loop_args += (shared.mailbox, shared.applied, shared.stats)
+        _compile_before_start(arrays, loop_args)
         with _cpu_dma_latency_zero(options.low_latency) as held:
             report["low_latency_held"] = held
             link.start()
             started = True
             shared.ctrl[CTRL_STATE] = STATE_RUNNING
             fd = link.blocking_fd()
-            loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
-            loop_args += (shared.mailbox, shared.applied, shared.stats)
             # Samples that came with the replies must be answered before the loop waits.
             _feed(link, link.take_unread(), arrays, loop_args, shared)
             if fd is not None:
@@ -254,6 +255,22 @@ def _loop_process(
             shared.close()
         conn.send(report)
         conn.close()
+
+
+def _compile_before_start(arrays: Any, loop_args: tuple) -> None:
+    """Load or compile the loop before the board starts sampling (compiling takes seconds).
+
+    The loop is entered once with a stop request already set, so it returns at once.
+    """
+    stopped = loop_args[-5].copy()  # ctrl
+    stopped[CTRL_STOP] = 1
+    args = (*loop_args[:-5], stopped, *loop_args[-4:])
+    fd_loop(-1, 0.0, 0, 0, *arrays.arrays(), *args)
+    a = arrays
+    process_rx(
+        0, a.lk, a.answered, a.dstate, a.dbuf, a.frame, a.adc, a.fields, a.dac, a.rx, a.tx,
+        *args,
+    )  # fmt: skip
 
 
 def _feed(link: BoardLink, data: bytes, arrays: Any, loop_args: tuple, shared: SharedRun) -> None:
@@ -345,7 +362,7 @@ class Engine:
         port = self.port
         source = port
         if port == "sim":
-            from simulated_rig.board import start_rig
+            from simulated_rig import start_rig
 
             assert self._tmpdir is not None
             exp_file = Path(self._tmpdir.name) / "experiment.toml"
@@ -397,6 +414,11 @@ class Engine:
             self._tmpdir.cleanup()
 
     @property
+    def loop_pid(self) -> int | None:
+        """Process id of the loop process (None before start)."""
+        return self._proc.pid if self._proc is not None else None
+
+    @property
     def running(self) -> bool:
         return self._proc is not None and self._proc.is_alive()
 
@@ -442,8 +464,13 @@ class Engine:
         self.request_stop()
         report: dict[str, Any] = {"exit_code": EXIT_STOP_REQUEST, "error": None}
         if self._conn.poll(timeout_s):
-            with contextlib.suppress(EOFError):
+            try:
                 report = self._conn.recv()
+            except EOFError:
+                report["error"] = (
+                    "the loop process ended without reporting (killed?); the board's watchdog "
+                    "took the output to its fault value (0 pA)"
+                )
         else:
             report["error"] = "the loop process did not answer; it was ended"
         self._proc.join(2.0)
