@@ -1,0 +1,679 @@
+"""The tuning window: run controls, live traces, parameter editor and loop health.
+
+The loop runs in its own process (``clampcore.engine``); this window only reads
+the shared-memory ring and counters, and writes live changes into the mailbox,
+so a busy or frozen window cannot make the loop miss a sample. One timer
+(``REFRESH_HZ``) redraws the traces and the health figures; nothing else runs
+periodically. Slow jobs (checking a board, stopping a run and writing its NWB
+file) run on worker threads and are polled by the same timer.
+
+Layout, top to bottom: the run bar (state, port, Connect, Start, Stop, where
+recordings go, the zero-current control), the alarm banner, then the traces on
+the left and tabs on the right (Parameters, Loop health, Log).
+
+Public names: ``TuningWindow``, ``REFRESH_HZ``, ``ZERO_SHORTCUT``.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from clampcore.engine import Engine, EngineError, RunOptions
+from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
+from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
+from gui.editor import ParameterEditor, Target
+from gui.health import AlarmBanner, HealthPanel, loop_health
+from gui.traces import TracePanel
+
+# 30 redraws a second: smooth to the eye (film runs at 24) and the issue's target.
+REFRESH_HZ = 30.0
+# Health figures are redrawn every 6th tick (5 times a second) unless their tab is shown.
+_HEALTH_EVERY = 6
+# Esc: the key a hand finds without looking; shown on the button.
+ZERO_SHORTCUT = "Esc"
+
+_STATE_COLOURS = {
+    "idle": "#3a3f47",
+    "checking": "#3a5f8a",
+    "starting": "#3a5f8a",
+    "running": "#1f7a3a",
+    "stopping": "#8a6d1f",
+    "stopped": "#3a3f47",
+    "failed": "#b00020",
+}
+
+
+class _Job:
+    """A function run on a worker thread; the timer polls ``done``."""
+
+    def __init__(self, name: str, fn: Any) -> None:
+        self.result: Any = None
+        self.error: BaseException | None = None
+        self._thread = threading.Thread(target=self._run, args=(fn,), name=name, daemon=True)
+        self._thread.start()
+
+    def _run(self, fn: Any) -> None:
+        try:
+            self.result = fn()
+        except BaseException as exc:
+            self.error = exc
+
+    @property
+    def done(self) -> bool:
+        return not self._thread.is_alive()
+
+    def wait(self, timeout_s: float | None = None) -> bool:
+        self._thread.join(timeout_s)
+        return self.done
+
+
+def _copy_experiment(exp: Experiment) -> Experiment:
+    """An independent experiment equal to ``exp`` (the loader's own round trip)."""
+    out = load_experiment(exp.to_dict())
+    out.path = exp.path
+    return out
+
+
+def _slot_names(engine: Engine) -> dict[tuple[float, int, int], tuple[str, str]]:
+    """(mailbox array, row, col) -> (element, field) for every live field of a run."""
+    from clampcore.program import MAIL_TARGETS
+    from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, SECTION_FIELDS
+
+    program = engine.program
+    wanted = [("loop", f.name) for f in SECTION_FIELDS["loop"] if f.live]
+    for el in engine.experiment.elements:
+        fields = (*COMMON_FIELDS, *ELEMENT_FIELDS[el["kind"]])
+        wanted += [(el["name"], f.name) for f in fields if f.live]
+    out = {}
+    for element, field in wanted:
+        with contextlib.suppress(KeyError):
+            slot = program.param_slot(element, field)
+            out[(MAIL_TARGETS[slot.array], slot.row, slot.col)] = (element, field)
+    return out
+
+
+class TuningWindow(QtWidgets.QMainWindow):
+    """Run an experiment on a port and tune it live.
+
+    ``experiment``: anything ``load_experiment`` takes, or None for an empty one;
+    ``port``: a device path, a pyserial URL, or "sim" for the simulated rig;
+    ``options``: the engine's ``RunOptions``; ``record_dir``: where recordings go.
+    """
+
+    def __init__(
+        self,
+        experiment: Any = None,
+        port: str = "sim",
+        options: RunOptions | None = None,
+        record_dir: Path | str | None = None,
+    ) -> None:
+        super().__init__()
+        self.options = options or RunOptions()
+        self.experiment: Experiment = (
+            load_experiment(experiment) if experiment is not None else load_experiment({})
+        )
+        self.experiment_path: Path | None = self.experiment.path
+        self.engine: Engine | None = None
+        self.result: Any = None  # RunResult of the last run
+        self.last_error: str | None = None
+        self._finishing: _Job | None = None
+        self._checking: _Job | None = None
+        self._zero_held = False
+        self._run_count = 0
+        self._changes_logged = 0
+        self._slot_names: dict[tuple[float, int, int], tuple[str, str]] | None = None
+        self._ticks = 0
+        self._state = ""
+        self.setWindowTitle("clampcore — tuning")
+        self.resize(1500, 920)
+
+        self._build_run_bar(port, record_dir)
+        self.banner = AlarmBanner()
+        self.traces = TracePanel()
+        self.editor = ParameterEditor(self._submit)
+        self.editor.add_requested = self.add_element
+        self.editor.remove_requested = self.remove_element
+        self.editor.fileAction.connect(self._file_action)
+        self.health = HealthPanel()
+        self.log = QtWidgets.QPlainTextEdit()
+        self.log.setReadOnly(True)
+        self.log.setMaximumBlockCount(2000)
+
+        self.tabs = QtWidgets.QTabWidget()
+        self.tabs.addTab(self.editor, "Parameters")
+        self.tabs.addTab(self.health, "Loop health")
+        self.tabs.addTab(self.log, "Log")
+        split = QtWidgets.QSplitter(QtCore.Qt.Orientation.Horizontal)
+        split.addWidget(self.traces)
+        split.addWidget(self.tabs)
+        split.setStretchFactor(0, 3)
+        split.setStretchFactor(1, 1)
+        split.setSizes([1050, 450])
+        central = QtWidgets.QWidget()
+        col = QtWidgets.QVBoxLayout(central)
+        col.setContentsMargins(6, 6, 6, 6)
+        col.addWidget(self.run_bar)
+        col.addWidget(self.banner)
+        col.addWidget(split, 1)
+        self.setCentralWidget(central)
+        self._build_menu()
+
+        self.zero_action = QtGui.QAction("Zero current", self)
+        self.zero_action.setShortcut(QtGui.QKeySequence(ZERO_SHORTCUT))
+        self.zero_action.setShortcutContext(QtCore.Qt.ShortcutContext.ApplicationShortcut)
+        self.zero_action.triggered.connect(lambda: self.set_zero_current(True))
+        self.addAction(self.zero_action)
+
+        self.timer = QtCore.QTimer(self)
+        self.timer.setTimerType(QtCore.Qt.TimerType.PreciseTimer)
+        self.timer.setInterval(round(1000 / REFRESH_HZ))
+        self.timer.timeout.connect(self._tick)
+        self.timer.start()
+
+        self.editor.set_experiment(self.experiment)
+        self.traces.show_experiment(self.experiment)
+        self._set_state("idle", "not running")
+        self._update_title()
+
+    # ------------------------------------------------------------------ building
+    def _build_run_bar(self, port: str, record_dir: Path | str | None) -> None:
+        bar = QtWidgets.QFrame()
+        bar.setObjectName("runbar")
+        row = QtWidgets.QHBoxLayout(bar)
+        row.setContentsMargins(4, 2, 4, 2)
+        self.state_label = QtWidgets.QLabel()
+        self.state_label.setMinimumWidth(110)
+        self.state_label.setAlignment(QtCore.Qt.AlignmentFlag.AlignCenter)
+        font = self.state_label.font()
+        font.setBold(True)
+        font.setPointSize(font.pointSize() + 2)
+        self.state_label.setFont(font)
+        row.addWidget(self.state_label)
+        self.state_detail = QtWidgets.QLabel()
+        self.state_detail.setMinimumWidth(260)
+        row.addWidget(self.state_detail, 1)
+        row.addWidget(QtWidgets.QLabel("Port"))
+        self.port_box = QtWidgets.QComboBox()
+        self.port_box.setEditable(True)
+        self.port_box.setMinimumWidth(150)
+        self.port_box.addItem("sim")
+        with contextlib.suppress(Exception):
+            from clampcore.board_link import list_ports
+
+            for p in list_ports():
+                self.port_box.addItem(p["device"])
+        self.port_box.setCurrentText(port)
+        self.port_box.setToolTip("a serial device, a pyserial URL, or 'sim' for the simulated rig")
+        row.addWidget(self.port_box)
+        self.connect_button = QtWidgets.QPushButton("Connect")
+        self.connect_button.setToolTip("ask the board on this port who it is")
+        self.connect_button.clicked.connect(self.check_board)
+        row.addWidget(self.connect_button)
+        self.start_button = QtWidgets.QPushButton("Start")
+        self.start_button.clicked.connect(lambda: self.start_run())
+        row.addWidget(self.start_button)
+        self.stop_button = QtWidgets.QPushButton("Stop")
+        self.stop_button.clicked.connect(self.stop_run)
+        row.addWidget(self.stop_button)
+        row.addWidget(QtWidgets.QLabel("Record into"))
+        self.record_dir = QtWidgets.QLineEdit(str(Path(record_dir or Path.cwd())))
+        self.record_dir.setMinimumWidth(160)
+        self.record_dir.setToolTip("folder for the NWB recordings; each run gets its own file")
+        row.addWidget(self.record_dir)
+        browse = QtWidgets.QPushButton("…")
+        browse.setMaximumWidth(28)
+        browse.clicked.connect(self._choose_record_dir)
+        row.addWidget(browse)
+        self.zero_button = QtWidgets.QPushButton(f"Zero current  [{ZERO_SHORTCUT}]")
+        self.zero_button.setCheckable(True)
+        self.zero_button.setMinimumWidth(230)
+        self.zero_button.setToolTip(
+            f"hold the injected current at 0 pA ({ZERO_SHORTCUT}); click again to release"
+        )
+        self.zero_button.clicked.connect(self.set_zero_current)
+        row.addWidget(self.zero_button)
+        self.run_bar = bar
+        self._style_zero()
+
+    def _build_menu(self) -> None:
+        menu = self.menuBar().addMenu("&Experiment")
+        for text, key, slot in (
+            ("&Open…", QtGui.QKeySequence.StandardKey.Open, lambda: self._file_action("load")),
+            ("&Save", QtGui.QKeySequence.StandardKey.Save, self._save_here),
+            ("Save &as…", QtGui.QKeySequence.StandardKey.SaveAs, lambda: self._file_action("save")),
+        ):
+            action = menu.addAction(text)
+            action.setShortcut(QtGui.QKeySequence(key))
+            action.triggered.connect(slot)
+        menu.addSeparator()
+        menu.addAction("&Quit", QtGui.QKeySequence.StandardKey.Quit, self.close)
+
+    # ------------------------------------------------------------------ state
+    @property
+    def running(self) -> bool:
+        """A run exists and has not been finished."""
+        return self.engine is not None and self._finishing is None
+
+    def _set_state(self, state: str, detail: str) -> None:
+        if detail != self.state_detail.text():
+            self.state_detail.setText(detail)
+        if state == self._state:
+            return
+        self._state = state
+        self.state_label.setText(state.upper())
+        self.state_label.setStyleSheet(
+            f"background: {_STATE_COLOURS[state]}; color: white; padding: 4px 10px;"
+            " border-radius: 3px;"
+        )
+        busy = state in ("starting", "running", "stopping")
+        self.start_button.setEnabled(not busy and self._checking is None)
+        self.stop_button.setEnabled(state in ("starting", "running"))
+        self.port_box.setEnabled(not busy)
+        self.connect_button.setEnabled(not busy and self._checking is None)
+
+    @property
+    def state(self) -> str:
+        """idle, checking, starting, running, stopping, stopped or failed."""
+        return self._state
+
+    def _update_title(self) -> None:
+        name = self.experiment_path.name if self.experiment_path else "unsaved experiment"
+        self.setWindowTitle(f"clampcore — tuning — {name}")
+
+    def _note(self, text: str) -> None:
+        self.log.appendPlainText(time.strftime("%H:%M:%S ") + text)
+
+    # ------------------------------------------------------------------ run control
+    def check_board(self) -> None:
+        """Ask the board on the chosen port for its identity (on a worker thread)."""
+        if self._checking is not None or self.engine is not None:
+            return
+        port = self.port_box.currentText().strip()
+        exp_text = self.experiment.to_toml()
+        clock = self.options.rig_clock
+
+        def ask() -> str:
+            from clampcore.board_link import BoardLink
+
+            rig = None
+            try:
+                if port == "sim":
+                    import tempfile
+
+                    from simulated_rig.board import start_rig
+
+                    with tempfile.TemporaryDirectory(prefix="clampcore-") as tmp:
+                        path = Path(tmp) / "experiment.toml"
+                        path.write_text(exp_text, encoding="utf-8")
+                        rig = start_rig(path, clock=clock)
+                        return _hello_text(BoardLink(rig.path), "simulated rig")
+                return _hello_text(BoardLink(port), port)
+            finally:
+                if rig is not None:
+                    rig.stop()
+
+        self._checking = _Job("clampcore-connect", ask)
+        self._set_state("checking", f"asking the board on {port}…")
+
+    def start_run(self, duration_s: float | None = None, out: Path | str | None = None) -> bool:
+        """Start a run of the current experiment; returns False (and says why) if it cannot."""
+        if self.engine is not None or self._checking is not None:
+            return False
+        port = self.port_box.currentText().strip()
+        if not port:
+            self._fail_start("choose a port ('sim' for the simulated rig)")
+            return False
+        if out is None:
+            folder = Path(self.record_dir.text().strip() or ".")
+            try:
+                folder.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                self._fail_start(f"cannot use {folder} for recordings: {exc}")
+                return False
+            out = _free_name(folder, time.strftime("clampcore-%Y%m%d-%H%M%S"))
+        try:
+            engine = Engine(_copy_experiment(self.experiment), port, self.options)
+            engine.start(duration_s=duration_s, out=out)
+        except (EngineError, ExperimentError, OSError, RuntimeError, ValueError) as exc:
+            self._fail_start(str(exc))
+            return False
+        self.engine = engine
+        self.result = None
+        self.last_error = None
+        self._run_count += 1
+        self._changes_logged = 0
+        self._slot_names = None
+        self.banner.reset()
+        if self._zero_held:
+            engine.set_zero_current(True)
+        assert engine.shared is not None
+        self.traces.attach(engine.shared, engine.experiment)
+        self.health.set_rate(engine.experiment.loop["rate_hz"])
+        self.editor.set_experiment(
+            self.experiment, {e["name"] for e in engine.experiment.elements}, running=True
+        )
+        self._set_state("starting", f"opening {port}; recording to {engine.nwb_path.name}")
+        self._note(f"run {self._run_count}: started on {port}, recording to {engine.nwb_path}")
+        return True
+
+    def _fail_start(self, why: str) -> None:
+        self.last_error = why
+        self._note(f"cannot start: {why}")
+        self.banner.show_message("fault", f"Cannot start: {why}")
+        self._set_state("failed", "not started")
+
+    def stop_run(self) -> None:
+        """Stop the loop (0 pA first) and write the recording, on a worker thread."""
+        engine = self.engine
+        if engine is None or self._finishing is not None:
+            return
+        self.traces.detach()  # before the shared memory closes
+        self._finishing = _Job("clampcore-finish", engine.finish)
+        self._set_state("stopping", "0 pA, stopping the board, writing the recording…")
+
+    def wait_finished(self, timeout_s: float = 30.0) -> Any:
+        """Block until a stopping run is written (for scripts and tests); returns its result."""
+        job = self._finishing
+        if job is not None:
+            job.wait(timeout_s)
+            self._tick()
+        return self.result
+
+    def set_zero_current(self, on: bool = True) -> None:
+        """Hold the injected current at 0 pA (True) or give it back to the elements."""
+        self._zero_held = bool(on)
+        if self.engine is not None and self._finishing is None:
+            self.engine.set_zero_current(self._zero_held)
+        self._style_zero()
+        self._note("current held at 0 pA" if on else "current released to the elements")
+
+    def _style_zero(self) -> None:
+        held = self._zero_held
+        self.zero_button.setChecked(held)
+        self.zero_button.setText(
+            "HELD AT 0 pA — click to release" if held else f"Zero current  [{ZERO_SHORTCUT}]"
+        )
+        colour = "#b00020" if held else "#7a1f1f"
+        self.zero_button.setStyleSheet(
+            f"QPushButton {{ background: {colour}; color: white; font-weight: bold;"
+            " padding: 4px 10px; }"
+        )
+
+    @property
+    def zero_held(self) -> bool:
+        return self._zero_held
+
+    # ------------------------------------------------------------------ the timer
+    def _tick(self) -> None:
+        """Redraw and poll; the only periodic work of the window."""
+        if self._checking is not None and self._checking.done:
+            job, self._checking = self._checking, None
+            if job.error is not None:
+                self._note(f"connect: {job.error}")
+                self._set_state("failed", f"no board: {job.error}")
+            else:
+                self._note(f"connect: {job.result}")
+                self._set_state("idle", job.result)
+        if self._finishing is not None:
+            if self._finishing.done:
+                self._finished()
+            return
+        engine = self.engine
+        if engine is None:
+            return
+        state = engine.state
+        if state == STATE_RUNNING:
+            self._ticks += 1
+            self.traces.refresh()
+            stats = engine.shared.stats.copy()
+            health = loop_health(stats, engine.experiment.loop["rate_hz"])
+            if self._ticks % _HEALTH_EVERY == 0 or self.tabs.currentWidget() is self.health:
+                self.health.update_from(health)
+            self.banner.update_from(health)
+            self._log_changes()
+            elapsed = health["samples"] / engine.experiment.loop["rate_hz"]
+            zero = "  ·  0 pA HELD" if self._zero_held else ""
+            self._set_state("running", f"{elapsed:.1f} s  ·  {engine.nwb_path.name}{zero}")
+        elif state == STATE_STARTING:
+            if not engine.running and engine.wait(0):
+                self.stop_run()  # the loop process ended before it ran
+        elif state in (STATE_STOPPED, STATE_FAILED) or not engine.running:
+            self._log_changes()
+            self.stop_run()
+
+    def _log_changes(self) -> None:
+        engine = self.engine
+        if engine is None or engine.shared is None:
+            return
+        rate = engine.experiment.loop["rate_hz"]
+        changes = engine.shared.applied_changes(self._changes_logged)
+        if changes and self._slot_names is None:
+            self._slot_names = _slot_names(engine)
+        for ch in changes:
+            key = (ch["array"], ch["row"], ch["col"])
+            element, field = (self._slot_names or {}).get(key, ("?", "?"))
+            self._note(
+                f"applied {element}.{field} = {ch['value']:g} at sample {ch['sample']} "
+                f"(t = {ch['sample'] / rate:.4f} s)"
+            )
+            self._changes_logged = ch["number"] + 1
+
+    def _finished(self) -> None:
+        job, self._finishing = self._finishing, None
+        self.engine = None
+        assert job is not None
+        if job.error is not None:
+            self.last_error = str(job.error)
+            self._note(f"stopping failed: {job.error}")
+            self.banner.show_message("fault", f"Stopping failed: {job.error}")
+            self._set_state("failed", str(job.error))
+        else:
+            result = job.result
+            self.result = result
+            where = f"saved {result.nwb_path}" if result.nwb_path else "no recording written"
+            self._note(f"run {self._run_count} ended: {result.exit_reason}; {where}")
+            if result.error:
+                self.last_error = result.error
+                self.banner.show_message("fault", f"The run failed: {result.error.strip()}")
+                self._set_state("failed", f"{result.error.strip()[:120]} · {where}")
+            else:
+                self._set_state("stopped", f"{result.exit_reason} · {where}")
+        self.editor.set_experiment(self.experiment)
+        self.traces.show_experiment(self.experiment)
+
+    # ------------------------------------------------------------------ edits
+    def _submit(self, target: Target, field: str, value: Any) -> str | None:
+        """Validate and apply one field; None when accepted, else why not."""
+        section, name = target
+        engine = self.engine if self.running else None
+        live_here = engine is not None and (
+            section == "section" or name in {e["name"] for e in engine.experiment.elements}
+        )
+        if live_here:
+            assert engine is not None
+            if section == "section" and name != "loop":
+                return f"[{name}] cannot change while running: stop first"
+            try:
+                engine.change("loop" if section == "section" else name, field, value)
+            except ExperimentError as exc:
+                return str(exc)
+            except KeyError as exc:
+                return str(exc.args[0]) if exc.args else "cannot change while running"
+            except RuntimeError as exc:  # a full mailbox
+                return str(exc)
+        # The experiment for saving and for the next run, checked by the loader.
+        draft = self.experiment.to_dict()
+        if section == "section":
+            draft.setdefault(name, {})[field] = value
+        else:
+            for el in draft["element"]:
+                if el["name"] == name:
+                    el[field] = value
+        try:
+            checked = load_experiment(draft)
+        except ExperimentError as exc:
+            if live_here:  # the loop took it; the file cannot: say so rather than diverge
+                return f"sent to the loop, but the experiment file refuses it: {exc}"
+            return str(exc)
+        self._adopt(checked)
+        # The lines drawn are those of what runs (or of what will run, when stopped).
+        self.traces.update_levels(engine.experiment if engine is not None else self.experiment)
+        return None
+
+    def _adopt(self, checked: Experiment) -> None:
+        """Take ``checked`` as the current experiment (keeping what to_dict leaves out)."""
+        old = self.experiment
+        checked.path = old.path
+        if not checked.amplifier_given:
+            checked.amplifier = dict(old.amplifier)
+        self.experiment = checked
+
+    def add_element(self, kind: str, name: str) -> str | None:
+        """Add an element with default values; None when added, else why not."""
+        try:
+            el = validate_element({"kind": kind, "name": name}, len(self.experiment.elements),
+                                  self.experiment.dt_ms)  # fmt: skip
+            draft = self.experiment.to_dict()
+            draft["element"].append(el)
+            checked = load_experiment(draft)
+        except ExperimentError as exc:
+            return str(exc)
+        self._adopt(checked)
+        self._refresh_editor()
+        self._note(f"added {kind} '{name}'" + (" (next run)" if self.running else ""))
+        return None
+
+    def remove_element(self, name: str) -> str | None:
+        """Remove an element; None when removed, else why not."""
+        draft = self.experiment.to_dict()
+        kept = [e for e in draft["element"] if e["name"] != name]
+        if len(kept) == len(draft["element"]):
+            return f"no element named {name!r}"
+        draft["element"] = kept
+        try:
+            checked = load_experiment(draft)
+        except ExperimentError as exc:
+            return f"cannot remove {name!r}: {exc}"
+        self._adopt(checked)
+        self._refresh_editor()
+        self._note(f"removed '{name}'" + (" (next run)" if self.running else ""))
+        return None
+
+    def _refresh_editor(self) -> None:
+        if self.running:
+            assert self.engine is not None
+            names = {e["name"] for e in self.engine.experiment.elements}
+            self.editor.set_experiment(self.experiment, names, running=True)
+        else:
+            self.editor.set_experiment(self.experiment)
+            self.traces.show_experiment(self.experiment)
+
+    # ------------------------------------------------------------------ files
+    def load_file(self, path: Path | str) -> str | None:
+        """Open an experiment file; None when loaded, else why not."""
+        if self.running:
+            return "stop the run before opening another experiment"
+        try:
+            exp = load_experiment(Path(path))
+        except ExperimentError as exc:
+            return str(exc)
+        self.experiment = exp
+        self.experiment_path = Path(path)
+        self.editor.set_experiment(exp)
+        self.traces.show_experiment(exp)
+        self._update_title()
+        self._note(f"opened {path}")
+        return None
+
+    def save_file(self, path: Path | str) -> str | None:
+        """Write the experiment (as edited) to ``path``; None when saved, else why not."""
+        path = Path(path)
+        text = self.experiment.to_toml()
+        try:
+            back = load_experiment(text)  # what is saved must load back to the same
+        except ExperimentError as exc:
+            return f"not saved: {exc}"
+        if back != self.experiment:
+            return "not saved: the file would not load back to the same experiment"
+        try:
+            path.write_text(text, encoding="utf-8")
+        except OSError as exc:
+            return f"not saved: {exc}"
+        self.experiment.path = path
+        self.experiment_path = path
+        self._update_title()
+        self._note(f"saved {path}")
+        return None
+
+    def _file_action(self, what: str) -> None:
+        start = str(self.experiment_path or Path.cwd())
+        if what == "load":
+            path, _ = QtWidgets.QFileDialog.getOpenFileName(
+                self, "Open experiment", start, "Experiment (*.toml)"
+            )
+            if path:
+                self._show_file_result(self.load_file(path))
+        else:
+            path, _ = QtWidgets.QFileDialog.getSaveFileName(
+                self, "Save experiment", start, "Experiment (*.toml)"
+            )
+            if path:
+                self._show_file_result(self.save_file(path))
+
+    def _save_here(self) -> None:
+        if self.experiment_path is None:
+            self._file_action("save")
+        else:
+            self._show_file_result(self.save_file(self.experiment_path))
+
+    def _show_file_result(self, reason: str | None) -> None:
+        if reason:
+            self.editor.message.setStyleSheet("color: #ff7f7f;")
+            self.editor.message.setText(reason)
+            self._note(reason)
+
+    def _choose_record_dir(self) -> None:
+        path = QtWidgets.QFileDialog.getExistingDirectory(
+            self, "Record into", self.record_dir.text()
+        )
+        if path:
+            self.record_dir.setText(path)
+
+    # ------------------------------------------------------------------ closing
+    def closeEvent(self, event: QtGui.QCloseEvent) -> None:
+        """Closing the window stops a run cleanly (0 pA, board stopped, NWB written)."""
+        self.timer.stop()
+        if self.engine is not None:
+            if self._finishing is None:
+                self.traces.detach()
+                self._finishing = _Job("clampcore-finish", self.engine.finish)
+            self._finishing.wait(30.0)
+            self._tick()
+        super().closeEvent(event)
+
+
+def _hello_text(link: Any, where: str) -> str:
+    try:
+        hello = link.handshake()
+    finally:
+        link.close()
+    return (
+        f"{where}: {hello.identity}, {hello.adc_bits}-bit ADC / {hello.dac_bits}-bit DAC, "
+        f"up to {hello.max_rate_hz / 1000:g} kHz"
+    )
+
+
+def _free_name(folder: Path, stem: str) -> Path:
+    """``folder/stem.nwb``, or ``stem-2.nwb``… if a recording by that name exists."""
+    k = 1
+    while True:
+        name = stem if k == 1 else f"{stem}-{k}"
+        if not (folder / f"{name}.nwb").exists() and not (folder / f"{name}.journal").exists():
+            return folder / f"{name}.nwb"
+        k += 1
