@@ -61,6 +61,7 @@ def _run(args: argparse.Namespace) -> int:
         watchdog_ms=args.watchdog_ms,
         spin_us=args.spin_us,
         low_latency=args.low_latency,
+        realtime_priority=args.realtime,
         rig_clock=args.rig_clock,
         rig_log=Path(args.rig_log) if args.rig_log else None,
     )
@@ -157,7 +158,10 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="recording path (.nwb; a .journal folder is kept beside it)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--watchdog-ms", type=float, default=20.0, help="board watchdog (default 20)")
-    p.add_argument("--spin-us", type=float, default=200.0, help="spin before sleeping (µs)")
+    p.add_argument("--spin-us", type=float, default=30.0, help="spin before sleeping (µs)")
+    p.add_argument(
+        "--realtime", type=int, default=0, metavar="PRIO", help="SCHED_FIFO priority (if permitted)"
+    )
     p.add_argument(
         "--low-latency", action="store_true", help="hold /dev/cpu_dma_latency at 0 while running"
     )

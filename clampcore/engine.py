@@ -102,11 +102,15 @@ class RunOptions:
     # the worst scheduling stall measured on these machines (~4 ms, REALTIME-NOTES).
     watchdog_ms: float = 20.0
     # Spin this long for input before sleeping in poll(): waking a sleeping reader costs
-    # 50-90 µs here (REALTIME-NOTES), more than a sample period at 20 kHz.
-    spin_us: float = 200.0
+    # 50-90 µs here (REALTIME-NOTES). Longer spins starve the other processes on a 2-core
+    # machine: 30 µs gave the fewest late commands against the simulated rig (bench_loop.py).
+    spin_us: float = 30.0
     # The loop stops if the board sends nothing for this long (a vanished board).
     silent_ms: int = 1000
     low_latency: bool = False  # hold /dev/cpu_dma_latency at 0 while running
+    # Run the loop process under SCHED_FIFO at this priority (1-99; 0 = ordinary scheduling),
+    # where permitted: the standard Linux practice for real-time acquisition.
+    realtime_priority: int = 0
     rig_clock: str = "wall"  # for port "sim": the simulated rig's clock
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_faults: dict[str, Any] = field(default_factory=dict)
@@ -145,6 +149,17 @@ def _cpu_dma_latency_zero(enabled: bool):
         yield True
     finally:
         os.close(fd)
+
+
+def _realtime(priority: int) -> bool:
+    """Ask for SCHED_FIFO at ``priority``; False (and ordinary scheduling) if not permitted."""
+    if priority <= 0:
+        return False
+    try:
+        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(priority))
+    except (OSError, AttributeError):
+        return False
+    return True
 
 
 def _die_with_parent() -> None:
@@ -207,6 +222,7 @@ def _loop_process(
         loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
         loop_args += (shared.mailbox, shared.applied, shared.stats)
         _compile_before_start(arrays, loop_args)
+        report["realtime"] = _realtime(options.realtime_priority)
         with _cpu_dma_latency_zero(options.low_latency) as held:
             report["low_latency_held"] = held
             link.start()
