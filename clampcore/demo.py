@@ -10,6 +10,7 @@ Public names: ``run_demo``, ``example_path``.
 
 from __future__ import annotations
 
+import shutil
 from pathlib import Path
 
 from clampcore.cli import run_with_status
@@ -26,6 +27,7 @@ def example_path(name: str) -> Path:
 
 def run_demo(out_dir: Path, duration_s: float = 5.0, example: str = "imposed_lif.toml") -> int:
     out_dir.mkdir(parents=True, exist_ok=True)
+    shutil.rmtree(out_dir / "demo.journal", ignore_errors=True)  # the demo's own last run
     exp = example_path(example)
     print(f"clampcore demo: {exp.name} on the simulated rig for {duration_s:g} s")
     engine = Engine(exp, "sim")

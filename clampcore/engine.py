@@ -16,6 +16,10 @@ commands 0 pA, stops the board and reports. Data leave it only through the
 shared-memory ring (``clampcore.shared``); the ``Recorder`` in this process
 copies them into the journal and writes NWB at the end.
 
+The loop process is started with multiprocessing's "spawn" method (no fork of a
+process that may hold GUI threads), so a script that uses ``Engine`` must keep its
+top-level code under ``if __name__ == "__main__":``.
+
 Public names: ``Engine``, ``RunOptions``, ``RunResult``, ``EngineError``, ``status_line``.
 """
 

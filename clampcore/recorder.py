@@ -55,7 +55,7 @@ def write_recording_nwb(recording: Any, path: Path) -> Path:
     return Path(path)
 
 
-def timing_summary(columns: dict[str, np.ndarray], rate_hz: float) -> dict[str, float]:
+def timing_summary(columns: dict[str, np.ndarray]) -> dict[str, float]:
     """Loop-timing figures of a run from its per-sample columns."""
     out: dict[str, float] = {"samples": float(len(columns.get("v_mV", [])))}
     lat = columns.get("latency_samples")
@@ -149,7 +149,7 @@ class Recorder:
         self.drain()
         final = dict(final_meta or {})
         columns = read_journal(self.path).columns
-        final["timing"] = timing_summary(columns, self.program.experiment.loop["rate_hz"])
+        final["timing"] = timing_summary(columns)
         final["lost_rows"] = self.lost_rows
         self.final_meta = final
         self.journal.close(final)

@@ -117,18 +117,6 @@ class RingLayout:
     def index(self, name: str) -> int:
         return self.names.index(name)
 
-    @property
-    def g_start(self) -> int:
-        return N_FIXED_COLUMNS
-
-    @property
-    def n_elements(self) -> int:
-        return (len(self.names) - N_FIXED_COLUMNS - self.n_spike_sources) // 2
-
-    @property
-    def n_spike_sources(self) -> int:
-        return sum(1 for n in self.names if n.startswith("spike/"))
-
 
 class SharedRun:
     """The shared blocks of one run. ``create`` in the owner, ``attach`` elsewhere."""

@@ -7,7 +7,7 @@ addresses (``array.ctypes.data``), which the C calling convention passes
 exactly as a pointer on the platforms numba supports.
 
 Public names: ``fd_read``, ``fd_write``, ``fd_wait_readable``, ``monotonic_us``,
-``monotonic_ns``, ``buffer_address``.
+``monotonic_ns``.
 """
 
 from __future__ import annotations
@@ -31,13 +31,6 @@ _clock_gettime = types.ExternalFunction("clock_gettime", types.intc(types.intc, 
 
 _CLOCK_MONOTONIC = 1  # <time.h> on Linux
 _POLLIN = 0x001  # <poll.h> on Linux
-
-
-def buffer_address(array: np.ndarray) -> int:
-    """The address of a C-contiguous array's first byte."""
-    if not array.flags.c_contiguous:
-        raise ValueError("buffer must be C-contiguous")
-    return int(array.ctypes.data)
 
 
 @kernel
