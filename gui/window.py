@@ -31,10 +31,12 @@ from gui.editor import ParameterEditor, Target
 from gui.health import AlarmBanner, HealthPanel, loop_health
 from gui.traces import TracePanel
 
-# 30 redraws a second: smooth to the eye (film runs at 24) and the issue's target.
-REFRESH_HZ = 30.0
-# Health figures are redrawn every 6th tick (5 times a second) unless their tab is shown.
-_HEALTH_EVERY = 6
+# The issue asks for at least 30 redraws a second (smooth to the eye: film runs at 24). A
+# 30 Hz timer delivers slightly fewer (its 33 ms interval plus jitter: 29.7/s measured), so
+# the timer asks for 36 and the benchmark checks what arrives.
+REFRESH_HZ = 36.0
+# Health figures are redrawn every 7th tick (about 5 times a second) unless their tab is shown.
+_HEALTH_EVERY = 7
 # Esc: the key a hand finds without looking; shown on the button.
 ZERO_SHORTCUT = "Esc"
 
