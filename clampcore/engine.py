@@ -45,6 +45,7 @@ from clampcore.board_link import BoardError, BoardLink, board_converters
 from clampcore.calibration import conversion_array, current_range_pA, pA_to_counts
 from clampcore.elements import KIND_NEURON
 from clampcore.experiment import Experiment, load_experiment
+from clampcore.health import loop_health
 from clampcore.hostloop import (
     EXIT_BOARD_SILENT,
     EXIT_DURATION,
@@ -68,24 +69,11 @@ from clampcore.shared import (
     CTRL_STOP,
     CTRL_WRITTEN,
     CTRL_ZERO,
-    LAT_BINS,
-    ST_BAD_FRAMES,
-    ST_FAULTS,
-    ST_LAT_HIST,
-    ST_LATE,
-    ST_LIMITED,
-    ST_MISSING,
-    ST_SAMPLES,
-    ST_SPIKES,
-    ST_TURN_HIST,
-    ST_UNANSWERED,
-    ST_WATCHDOG,
     STATE_FAILED,
     STATE_RUNNING,
     STATE_STARTING,
     STATE_STOPPED,
     STATE_STOPPING,
-    TURN_BIN_US,
     RingLayout,
     SharedRun,
 )
@@ -532,51 +520,22 @@ class Engine:
         """Live figures from the loop's counters (cheap; safe to call often)."""
         if self.shared is None or self.shared.stats is None:
             return {}
-        st = self.shared.stats.copy()
-        rate = float(self.experiment.loop["rate_hz"])
-        samples = int(st[ST_SAMPLES])
-        lat = st[ST_LAT_HIST : ST_LAT_HIST + LAT_BINS]
-        turn = st[ST_TURN_HIST:]
-        elapsed = samples / rate
-        return {
-            "state": int(self.shared.ctrl[CTRL_STATE]),
-            "samples": samples,
-            "elapsed_s": elapsed,
-            "latency_p50_samples": _hist_percentile(lat, 50, 1.0),
-            "latency_p99_samples": _hist_percentile(lat, 99, 1.0),
-            "turnaround_p50_us": _hist_percentile(turn, 50, TURN_BIN_US),
-            "turnaround_p99_us": _hist_percentile(turn, 99, TURN_BIN_US),
-            "late": int(st[ST_LATE]),
-            "missing": int(st[ST_MISSING]),
-            "unanswered": int(st[ST_UNANSWERED]),
-            "bad_frames": int(st[ST_BAD_FRAMES]),
-            "watchdog": int(st[ST_WATCHDOG]),
-            "faults": int(st[ST_FAULTS]),
-            "limited": int(st[ST_LIMITED]),
-            "spikes": int(st[ST_SPIKES]),
-            "firing_rate_hz": st[ST_SPIKES] / elapsed if elapsed > 0 else 0.0,
-            "written": int(self.shared.ctrl[CTRL_WRITTEN]),
-            "zeroed": bool(self.shared.ctrl[CTRL_ZERO]),
-        }
+        out = loop_health(self.shared.stats.copy(), float(self.experiment.loop["rate_hz"]))
+        out["state"] = int(self.shared.ctrl[CTRL_STATE])
+        out["written"] = int(self.shared.ctrl[CTRL_WRITTEN])
+        out["zero_held"] = bool(self.shared.ctrl[CTRL_ZERO])
+        return out
 
 
 def status_line(s: dict[str, Any], rate_hz: float) -> str:
     """The one-line live status."""
-    if not s:
-        return "starting"
+    if not s or s["samples"] == 0:
+        return "starting: connecting to the board and loading the compiled loop"
     return (
         f"t {s['elapsed_s']:6.1f} s | {rate_hz / 1000:g} kHz "
         f"| latency p50 {s['latency_p50_samples']:.0f} "
         f"p99 {s['latency_p99_samples']:.0f} samples | turnaround p50 {s['turnaround_p50_us']:.0f} "
         f"p99 {s['turnaround_p99_us']:.0f} µs | late {s['late']} missing {s['missing']} "
         f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "
-        f"({s['firing_rate_hz']:.1f} Hz)" + (" | ZERO CURRENT" if s["zeroed"] else "")
+        f"({s['firing_rate_hz']:.1f} Hz)" + (" | ZERO CURRENT" if s["zero_held"] else "")
     )
-
-
-def _hist_percentile(hist: np.ndarray, q: float, bin_width: float) -> float:
-    total = hist.sum()
-    if total <= 0:
-        return float("nan")
-    k = int(np.searchsorted(np.cumsum(hist), total * q / 100.0))
-    return (k + (0.5 if bin_width != 1.0 else 0.0)) * bin_width

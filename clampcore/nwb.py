@@ -62,6 +62,7 @@ from typing import Any
 import numpy as np
 
 from clampcore.journal import JournalData, JournalError, check_meta, read_journal
+from clampcore.journal import _json_default as journal_json_default
 
 SIMULATED_SOURCES = ("offline simulation", "simulated rig")
 
@@ -97,15 +98,10 @@ def _version() -> str:
 
 
 def _json_default(value: Any) -> Any:
-    if isinstance(value, np.generic):
-        return value.item()
-    if isinstance(value, np.ndarray):
-        return value.tolist()
-    if isinstance(value, _dt.datetime | _dt.date | _dt.time):
-        return value.isoformat()
-    if isinstance(value, Path):
-        return str(value)
-    return repr(value)  # never fail a recording over one odd metadata value
+    try:
+        return journal_json_default(value)
+    except TypeError:
+        return repr(value)  # never fail a recording over one odd metadata value
 
 
 def _dumps(value: Any, indent: int | None = None) -> str:

@@ -167,8 +167,6 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
             state[r, neuron.S_LAST_SPIKE] = -math.inf
         elif k == "current":
             p[current.P_WAVEFORM] = current.WAVEFORM_CODES[e["waveform"]]
-        elif k == "threshold_reset":
-            state[r, 0] = math.nan  # no previous V: no crossing at the first sample
     loop = exp.loop
     loop_p = np.zeros(step_mod.N_LOOP_PARAMS)
     loop_p[step_mod.LP_DT_MS] = dt_ms

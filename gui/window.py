@@ -26,9 +26,10 @@ from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.engine import Engine, EngineError, RunOptions
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
+from clampcore.health import loop_health
 from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
 from gui.editor import ParameterEditor, Target
-from gui.health import AlarmBanner, HealthPanel, loop_health
+from gui.health import AlarmBanner, HealthPanel
 from gui.traces import TracePanel
 
 # The issue asks for at least 30 redraws a second (smooth to the eye: film runs at 24). A

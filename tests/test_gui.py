@@ -27,6 +27,7 @@ from PySide6 import QtCore, QtWidgets
 
 from clampcore.engine import RunOptions
 from clampcore.experiment import ExperimentError, load_experiment
+from clampcore.health import loop_health
 from clampcore.hostloop import FLAG_ZEROED
 from clampcore.nwb import read_nwb_summary
 from clampcore.schema import SECTION_FIELDS
@@ -38,7 +39,6 @@ from clampcore.shared import (
     TURN_BIN_US,
 )
 from gui.editor import parse_value, unit_of
-from gui.health import loop_health
 from gui.traces import PeakDecimator, SpikeTimes
 from gui.window import ZERO_SHORTCUT, TuningWindow
 from simulated_rig.groundtruth import LOG_FAULT_OUTPUT, NO_COMMAND, read_log
@@ -302,7 +302,7 @@ def test_zero_current_control(qtbot, tmp_path):
     qtbot.keyClick(window, QtCore.Qt.Key.Key_Escape)  # the shortcut
     assert window.zero_held and window.zero_button.isChecked()
     engine = window.engine
-    qtbot.waitUntil(lambda: engine.status()["zeroed"], timeout=5000)
+    qtbot.waitUntil(lambda: engine.status()["zero_held"], timeout=5000)
     _wait_samples(qtbot, window, 1000)
     # The flag is in the ring while held.
     n = _written(window)
