@@ -88,7 +88,9 @@ def run_with_status(engine: Any, duration_s: float | None, out: str | None) -> A
     if result.error:
         print(f"clampcore: {result.error}", file=sys.stderr)
     t = result.timing
-    if t:
+    if result.samples == 0:
+        print("no samples were recorded; no recording written")
+    elif t:
         print(
             "timing: latency p50 {:.0f} / p99 {:.0f} samples; within 1/2/3 samples "
             "{:.2%} / {:.2%} / {:.2%}; host turnaround p50 {:.1f} µs, p99.9 {:.1f} µs".format(

@@ -14,6 +14,7 @@ Public names: ``Recorder``, ``recording_meta``, ``write_recording_nwb``,
 from __future__ import annotations
 
 import datetime as dt
+import shutil
 import threading
 from pathlib import Path
 from typing import Any
@@ -141,8 +142,13 @@ class Recorder:
             "new": change["value"],
         }
 
-    def stop(self, final_meta: dict[str, Any] | None = None, nwb_path: Path | None = None) -> Path:
-        """Drain the rest, close the journal, convert it to NWB; returns the NWB path."""
+    def stop(
+        self, final_meta: dict[str, Any] | None = None, nwb_path: Path | None = None
+    ) -> Path | None:
+        """Drain the rest, close the journal, convert it to NWB; returns the NWB path.
+
+        A run that recorded no sample (it never started) leaves no files: returns None.
+        """
         self._stop.set()
         if self._thread.is_alive():
             self._thread.join()
@@ -153,6 +159,9 @@ class Recorder:
         final["lost_rows"] = self.lost_rows
         self.final_meta = final
         self.journal.close(final)
+        if self.journal.rows_written == 0 and not self.journal.events_written:
+            shutil.rmtree(self.path, ignore_errors=True)
+            return None
         out = nwb_path or self.path.with_suffix(".nwb")
         return journal_to_nwb(self.path, Path(out), overwrite=True)
 
