@@ -25,5 +25,12 @@ F = TypeVar("F", bound=Callable[..., Any])
 
 
 def kernel(fn: F) -> F:
-    """Compile ``fn`` as a per-sample kernel (cached, no GIL, no reference counting)."""
-    return njit(cache=True, nogil=True, _nrt=False)(fn)  # type: ignore[return-value]
+    """Compile ``fn`` as a per-sample kernel (cached, no GIL, no reference counting).
+
+    Should a numba release drop the ``_nrt`` option, the kernel still compiles, with
+    reference counting (slower, same results).
+    """
+    try:
+        return njit(cache=True, nogil=True, _nrt=False)(fn)  # type: ignore[return-value]
+    except (KeyError, TypeError, ValueError):  # numba refuses an option it does not know
+        return njit(cache=True, nogil=True)(fn)  # type: ignore[return-value]

@@ -122,3 +122,38 @@ def test_zero_current_control_commands_zero(rig):
     assert cmd.dac_counts[0] == pA_to_counts(conv, 0.0)
     assert shared.ring[0, COL_I] == 0.0
     assert int(shared.ring[0, COL_FLAGS]) & 8  # FLAG_ZEROED
+
+
+def _scenario_rows() -> list[list[float]]:
+    """Ring rows after a fixed scenario (used compiled and as plain Python)."""
+    program = build_program(EXPERIMENT)
+    shared = SharedRun.create(RingLayout.for_program(program))
+    try:
+        conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, program.experiment.amplifier)
+        link = new_link(pA_to_counts(conv, 0.0))
+        for k in range(20):
+            _feed(program, shared, conv, link, _sample(k, 30000 + 37 * k, cmd_seq=k))
+        return shared.ring[:20, :5].tolist()
+    finally:
+        shared.close()
+
+
+def test_compiled_equals_plain_python():
+    """The same host path under NUMBA_DISABLE_JIT=1 (a child process) gives the same rows."""
+    import json
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parent.parent
+    code = (
+        "import json, numba, sys; sys.path.insert(0, 'tests'); "
+        "assert numba.config.DISABLE_JIT; "
+        "from test_hostloop import _scenario_rows; print(json.dumps(_scenario_rows()))"
+    )
+    env = dict(os.environ, NUMBA_DISABLE_JIT="1", PYTHONPATH=str(root))
+    out = subprocess.run(
+        [sys.executable, "-c", code], cwd=root, env=env, capture_output=True, text=True, check=True
+    )
+    assert json.loads(out.stdout) == _scenario_rows()
