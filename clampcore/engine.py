@@ -103,6 +103,9 @@ class RunOptions:
     # Run the loop process under SCHED_FIFO at this priority (1-99; 0 = ordinary scheduling),
     # where permitted: the standard Linux practice for real-time acquisition.
     realtime_priority: int = 0
+    # Do the serial I/O with pyserial from Python (slower) instead of inside the compiled
+    # loop: what ports without a file descriptor (some pyserial URLs) always get.
+    python_io: bool = False
     rig_clock: str = "wall"  # for port "sim": the simulated rig's clock
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_faults: dict[str, Any] = field(default_factory=dict)
@@ -220,7 +223,7 @@ def _loop_process(
             link.start()
             started = True
             shared.ctrl[CTRL_STATE] = STATE_RUNNING
-            fd = link.blocking_fd()
+            fd = None if options.python_io else link.blocking_fd()
             # Samples that came with the replies must be answered before the loop waits.
             _feed(link, link.take_unread(), arrays, loop_args, shared)
             if fd is not None:

@@ -9,10 +9,14 @@ intact. Every NWB file written here passes pynwb's validator.
 from __future__ import annotations
 
 import os
+import select
 import signal
+import socket
 import subprocess
 import sys
+import threading
 import time
+import tty
 from pathlib import Path
 
 import numpy as np
@@ -303,3 +307,53 @@ def test_refuses_a_limit_the_board_cannot_represent(tmp_path):
     result = _run(Engine(exp, "sim", RunOptions(rig_clock="lockstep")), 1.0, tmp_path / "lim.nwb")
     assert result.error and "cannot represent" in result.error
     assert result.samples == 0
+
+
+def _bridge_tcp_to_pty(pty_path: str) -> int:
+    """A loopback TCP port whose one client is joined to the pty (a board on a network URL)."""
+    server = socket.socket()
+    server.bind(("127.0.0.1", 0))
+    server.listen(1)
+    port = server.getsockname()[1]
+
+    def serve() -> None:
+        client, _ = server.accept()
+        pty = os.open(pty_path, os.O_RDWR | os.O_NOCTTY)
+        tty.setraw(pty)
+        try:
+            while True:
+                ready, _, _ = select.select([client, pty], [], [], 5.0)
+                if not ready:
+                    return
+                for src in ready:
+                    if src is client:
+                        data = client.recv(4096)
+                        if not data:
+                            return
+                        os.write(pty, data)
+                    else:
+                        client.sendall(os.read(pty, 4096))
+        except OSError:
+            return
+        finally:
+            client.close()
+            os.close(pty)
+            server.close()
+
+    threading.Thread(target=serve, daemon=True).start()
+    return port
+
+
+def test_pyserial_url_with_python_io_equals_offline_simulation(tmp_path):
+    """A board reached through a pyserial URL (socket://), the I/O done by pyserial in
+    Python: the same samples as the offline simulation (same per-sample path)."""
+    exp = EXAMPLES / "imposed_lif.toml"
+    with start_rig(exp, clock="lockstep") as rig:
+        tcp_port = _bridge_tcp_to_pty(rig.path)
+        engine = Engine(exp, f"socket://127.0.0.1:{tcp_port}", RunOptions(python_io=True))
+        result = _run(engine, 0.2, tmp_path / "url.nwb")
+    assert result.error is None, result.error
+    rec = _valid(result.nwb_path)
+    offline = clampcore.simulate(exp, 0.2)
+    np.testing.assert_array_equal(rec["v_mV"], offline.v_mV)
+    np.testing.assert_array_equal(rec["i_pA"], offline.i_pA)
