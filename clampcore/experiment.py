@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import copy
 import math
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,6 +23,10 @@ from typing import Any
 from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, KINDS, SECTION_FIELDS, check_value
 
 RESERVED_NAMES = ("cell", "poisson", "train")
+# ISO 8601 durations (P21D, P3M, P1Y2M, PT12H; a range's start "P21D/" as NWB allows).
+_ISO_DURATION = re.compile(
+    r"P(?=\d|T)(\d+Y)?(\d+M)?(\d+W)?(\d+D)?(T(?=\d)(\d+H)?(\d+M)?(\d+(\.\d+)?S)?)?(/.*)?"
+)
 
 
 class ExperimentError(ValueError):
@@ -176,6 +181,10 @@ def _section(name: str, raw: Any) -> dict[str, Any]:
         if reason:
             raise ExperimentError(where, f.name, value, reason)
         out[f.name] = value
+    if name == "subject" and out["age"] and not _ISO_DURATION.fullmatch(out["age"]):
+        raise ExperimentError(
+            where, "age", out["age"], "must be an ISO 8601 duration as NWB asks, e.g. P21D or P3M"
+        )
     if name == "loop" and out["rate_hz"] > 100_000:
         # A serial board cannot carry more than ~100k frames/s (USB full speed, 12 Mbit/s).
         raise ExperimentError(where, "rate_hz", out["rate_hz"], "must be at most 100000")

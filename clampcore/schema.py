@@ -179,8 +179,9 @@ SECTION_FIELDS: dict[str, tuple[Field, ...]] = {
     "subject": (
         _f("subject_id", "", "text", live=False),
         _f("species", "", "text", live=False),
-        _f("age", "", "text", live=False),
-        _f("sex", "U", "text", live=False),
+        _f("age", "", "text", live=False, doc="ISO 8601 duration, e.g. P21D (NWB)"),
+        # NWB's Subject.sex: M, F, U (unknown) or O (other).
+        _f("sex", "U", "choice", live=False, choices=("M", "F", "U", "O")),
         _f("description", "", "text", live=False),
     ),
     "electrode": (

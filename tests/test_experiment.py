@@ -344,3 +344,19 @@ def test_bad_structure_refused(raw: dict, needle: str) -> None:
 def test_unknown_section_from_text() -> None:
     with pytest.raises(ExperimentError, match=r"section \[celll\]: unknown section"):
         load_experiment("[celll]\nmodel = 'hh'\n")
+
+
+@pytest.mark.parametrize(
+    ("field", "value"),
+    [("age", "30 days"), ("age", "P"), ("sex", "male"), ("sex", "X")],
+)
+def test_subject_metadata_in_the_form_nwb_asks(field: str, value: str) -> None:
+    # NWB: Subject.age is an ISO 8601 duration, Subject.sex one of M, F, U, O (NWB schema docs).
+    with pytest.raises(ExperimentError) as err:
+        load_experiment({"subject": {field: value}})
+    assert field in str(err.value) and repr(value) in str(err.value)
+
+
+@pytest.mark.parametrize("age", ["P21D", "P3M", "P1Y2M", "PT12H", "P21D/P30D"])
+def test_subject_ages_accepted(age: str) -> None:
+    assert load_experiment({"subject": {"age": age, "sex": "F"}}).subject["age"] == age
