@@ -146,6 +146,10 @@ def start_rig(
         stdout=subprocess.PIPE,
         stderr=stderr_file,
         env=child_env,
+        # Its own session: a Ctrl-C at the terminal reaches the host, which stops the run
+        # (0 pA, STOP) and then the rig; the rig must not vanish first. It still ends with
+        # its parent, when its standard input closes.
+        start_new_session=True,
     )
     rig = RigProcess(proc, "", stderr_file)
     assert proc.stdout is not None
