@@ -15,6 +15,7 @@ Public names: ``main``.
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
 from pathlib import Path
 from typing import Any
@@ -74,6 +75,8 @@ def run_with_status(engine: Any, duration_s: float | None, out: str | None) -> A
     from clampcore.engine import status_line
 
     rate = float(engine.experiment.loop["rate_hz"])
+    # SIGTERM (e.g. `kill`) stops the run as cleanly as Ctrl-C does.
+    signal.signal(signal.SIGTERM, _interrupt)
     engine.start(duration_s=duration_s, out=out)
     tty = sys.stdout.isatty()
     try:
@@ -106,6 +109,10 @@ def run_with_status(engine: Any, duration_s: float | None, out: str | None) -> A
     if result.nwb_path:
         print(f"recording: {result.nwb_path}")
     return result
+
+
+def _interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt
 
 
 def _ports(args: argparse.Namespace) -> int:
