@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import Any
 
 from clampcore.experiment import ExperimentError, load_experiment
+from clampcore.realtime import LOOP_FIFO_PRIORITY
 
 
 def _check(args: argparse.Namespace) -> int:
@@ -106,9 +107,19 @@ def run_with_status(engine: Any, duration_s: float | None, out: str | None) -> A
                 t.get("turnaround_p99.9_us", float("nan")),
             )
         )
+    if result.samples and result.scheduling:
+        print(scheduling_text(result.scheduling))
     if result.nwb_path:
         print(f"recording: {result.nwb_path}")
     return result
+
+
+def scheduling_text(scheduling: dict[str, Any]) -> str:
+    """One line: what the loop process got of the real-time settings it asked for."""
+    prio = scheduling.get("fifo_priority", 0)
+    fifo = f"SCHED_FIFO {prio}" if prio else "ordinary scheduling"
+    dma = "held at 0" if scheduling.get("cpu_dma_latency_held") else "not held"
+    return f"loop process: {fifo}; /dev/cpu_dma_latency {dma} (see README, timing options)"
 
 
 def _interrupt(signum: int, frame: Any) -> None:
@@ -169,10 +180,18 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--watchdog-ms", type=float, default=20.0, help="board watchdog (default 20)")
     p.add_argument("--spin-us", type=float, default=30.0, help="spin before sleeping (µs)")
     p.add_argument(
-        "--realtime", type=int, default=0, metavar="PRIO", help="SCHED_FIFO priority (if permitted)"
+        "--realtime",
+        type=int,
+        default=LOOP_FIFO_PRIORITY,
+        metavar="PRIO",
+        help="SCHED_FIFO priority of the loop, where permitted; 0: ordinary scheduling "
+        f"(default {LOOP_FIFO_PRIORITY})",
     )
     p.add_argument(
-        "--low-latency", action="store_true", help="hold /dev/cpu_dma_latency at 0 while running"
+        "--low-latency",
+        action=argparse.BooleanOptionalAction,
+        default=True,
+        help="hold /dev/cpu_dma_latency at 0 while running, where permitted (default: on)",
     )
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
     p.add_argument("--rig-log", help="for 'sim': the rig's ground-truth log")

@@ -29,9 +29,7 @@ import contextlib
 import ctypes
 import ctypes.util
 import multiprocessing as mp
-import os
 import signal
-import struct
 import tempfile
 import time
 import traceback
@@ -62,6 +60,7 @@ from clampcore.hostloop import (
     record_turnaround,
 )
 from clampcore.program import MAIL_TARGETS, Program, build_program, check_live_change
+from clampcore.realtime import LOOP_FIFO_PRIORITY, fifo_scheduling, hold_cpu_dma_latency_zero
 from clampcore.recorder import Recorder, recording_meta
 from clampcore.shared import (
     CTRL_EXIT,
@@ -99,10 +98,13 @@ class RunOptions:
     spin_us: float = 30.0
     # The loop stops if the board sends nothing for this long (a vanished board).
     silent_ms: int = 1000
-    low_latency: bool = False  # hold /dev/cpu_dma_latency at 0 while running
+    # Hold /dev/cpu_dma_latency at 0 while running, where permitted (clampcore.realtime).
+    # On by default: it halved the late commands against the wall-clock rig (bench_loop.py).
+    low_latency: bool = True
     # Run the loop process under SCHED_FIFO at this priority (1-99; 0 = ordinary scheduling),
-    # where permitted: the standard Linux practice for real-time acquisition.
-    realtime_priority: int = 0
+    # where permitted: the standard Linux practice for real-time acquisition. The loop
+    # sleeps in poll() between samples, so it leaves the CPU to others.
+    realtime_priority: int = LOOP_FIFO_PRIORITY
     # Do the serial I/O with pyserial from Python (slower) instead of inside the compiled
     # loop: what ports without a file descriptor (some pyserial URLs) always get.
     python_io: bool = False
@@ -122,39 +124,12 @@ class RunResult:
     summary: dict[str, Any]
     board_status: dict[str, Any] | None
     error: str | None = None
+    # What the loop process got: SCHED_FIFO priority (0 = ordinary) and cpu_dma_latency.
+    scheduling: dict[str, Any] = field(default_factory=dict)
 
 
 def _neuron_rows(program: Program) -> np.ndarray:
     return np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], dtype=np.int64)
-
-
-@contextlib.contextmanager
-def _cpu_dma_latency_zero(enabled: bool):
-    """Hold /dev/cpu_dma_latency at 0 µs while running (standard Linux low-latency practice)."""
-    if not enabled:
-        yield False
-        return
-    try:
-        fd = os.open("/dev/cpu_dma_latency", os.O_WRONLY)
-    except OSError:
-        yield False
-        return
-    try:
-        os.write(fd, struct.pack("i", 0))
-        yield True
-    finally:
-        os.close(fd)
-
-
-def _realtime(priority: int) -> bool:
-    """Ask for SCHED_FIFO at ``priority``; False (and ordinary scheduling) if not permitted."""
-    if priority <= 0:
-        return False
-    try:
-        os.sched_setscheduler(0, os.SCHED_FIFO, os.sched_param(priority))
-    except (OSError, AttributeError):
-        return False
-    return True
 
 
 def _die_with_parent() -> None:
@@ -217,8 +192,8 @@ def _loop_process(
         loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
         loop_args += (shared.mailbox, shared.applied, shared.stats)
         _compile_before_start(arrays, loop_args)
-        report["realtime"] = _realtime(options.realtime_priority)
-        with _cpu_dma_latency_zero(options.low_latency) as held:
+        report["realtime"] = fifo_scheduling(options.realtime_priority)
+        with hold_cpu_dma_latency_zero(options.low_latency) as held:
             report["low_latency_held"] = held
             link.start()
             started = True
@@ -496,6 +471,10 @@ class Engine:
             "summary": status,
             "board": report.get("board"),
             "board_final_status": report.get("board_status"),
+            "scheduling": {
+                "fifo_priority": self.options.realtime_priority if report.get("realtime") else 0,
+                "cpu_dma_latency_held": bool(report.get("low_latency_held")),
+            },
         }
         nwb = None
         try:
@@ -513,6 +492,7 @@ class Engine:
             summary=status,
             board_status=report.get("board_status"),
             error=report.get("error"),
+            scheduling=final["scheduling"],
         )
         if self._tmpdir is not None:
             self._tmpdir.cleanup()

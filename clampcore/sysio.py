@@ -1,13 +1,13 @@
 """Operating-system calls usable inside compiled (numba) code without the GIL.
 
-libc's ``read``, ``write``, ``poll`` and ``clock_gettime`` are bound with
+libc's ``read``, ``write``, ``poll``, ``clock_gettime`` and ``clock_nanosleep`` are bound with
 ``numba.types.ExternalFunction``, which numba can cache (bindings through
 ctypes or cffi pointers recompile in every process). Buffers are passed as
 addresses (``array.ctypes.data``), which the C calling convention passes
 exactly as a pointer on the platforms numba supports.
 
 Public names: ``fd_read``, ``fd_write``, ``fd_wait_readable``, ``monotonic_us``,
-``monotonic_ns``.
+``monotonic_ns``, ``sleep_until_ns``.
 """
 
 from __future__ import annotations
@@ -28,9 +28,13 @@ _read = types.ExternalFunction("read", types.intp(types.intc, types.uintp, types
 _write = types.ExternalFunction("write", types.intp(types.intc, types.uintp, types.uintp))
 _poll = types.ExternalFunction("poll", types.intc(types.uintp, types.uintp, types.intc))
 _clock_gettime = types.ExternalFunction("clock_gettime", types.intc(types.intc, types.uintp))
+_clock_nanosleep = types.ExternalFunction(
+    "clock_nanosleep", types.intc(types.intc, types.intc, types.uintp, types.uintp)
+)
 
 _CLOCK_MONOTONIC = 1  # <time.h> on Linux
 _POLLIN = 0x001  # <poll.h> on Linux
+_TIMER_ABSTIME = 1  # <time.h> on Linux
 
 
 @kernel
@@ -69,6 +73,17 @@ def monotonic_us(timespec: np.ndarray) -> float:
     return monotonic_ns(timespec) * 1e-3
 
 
+@kernel
+def sleep_until_ns(deadline_ns: int, timespec: np.ndarray) -> None:
+    """Sleep until CLOCK_MONOTONIC reads ``deadline_ns`` (absolute, so no drift).
+
+    A signal may end the sleep early; callers check the clock again.
+    """
+    timespec[0] = deadline_ns // 1_000_000_000
+    timespec[1] = deadline_ns % 1_000_000_000
+    _clock_nanosleep(_CLOCK_MONOTONIC, _TIMER_ABSTIME, timespec.ctypes.data, 0)
+
+
 if numba_config.DISABLE_JIT:
     # Plain-Python equivalents, so the loop runs (slowly) under NUMBA_DISABLE_JIT=1.
     import os
@@ -104,3 +119,6 @@ if numba_config.DISABLE_JIT:
 
     def monotonic_us(timespec: np.ndarray) -> float:
         return time.monotonic_ns() * 1e-3
+
+    def sleep_until_ns(deadline_ns: int, timespec: np.ndarray) -> None:
+        time.sleep(max(0, deadline_ns - time.monotonic_ns()) * 1e-9)

@@ -2,7 +2,8 @@
 
     python -m simulated_rig [EXPERIMENT] [--rate HZ] [--clock wall|lockstep] [--log FILE]
                             [--seed N] [--lockstep-patience S] [--corrupt-rx F] [--drop-rx F]
-                            [--corrupt-tx F] [--drop-tx F] [--stall-ms N --stall-at K]
+                            [--wake-us US] [--realtime PRIO] [--corrupt-tx F] [--drop-tx F]
+                            [--stall-ms N --stall-at K]
 
 Opens a pseudo-terminal, prints its device path as the first line of standard
 output (flushed), and serves it as a board until SIGTERM or SIGINT, or until
@@ -25,7 +26,8 @@ import sys
 import threading
 from typing import Any
 
-from simulated_rig.board import LOCKSTEP_PATIENCE_S, MAX_RATE_HZ, Board, Faults, open_pty
+from clampcore.realtime import LOOP_FIFO_PRIORITY, RIG_FIFO_PRIORITY
+from simulated_rig.board import LOCKSTEP_PATIENCE_S, MAX_RATE_HZ, WAKE_US, Board, Faults, open_pty
 
 
 def _fraction(text: str) -> float:
@@ -65,6 +67,13 @@ def _positive_int(text: str) -> int:
     return value
 
 
+def _priority(text: str) -> int:
+    value = _non_negative_int(text)
+    if value > 99:
+        raise argparse.ArgumentTypeError("must be 0 .. 99")
+    return value
+
+
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """The rig's options (shared by ``python -m simulated_rig`` and ``clampcore rig``)."""
     parser.add_argument(
@@ -93,6 +102,22 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         metavar="S",
         help="lockstep: seconds a silent host may take before the watchdog trips (the "
         f"configured timeout if longer; default {LOCKSTEP_PATIENCE_S:g})",
+    )
+    parser.add_argument(
+        "--wake-us",
+        type=_non_negative_int,
+        default=WAKE_US,
+        metavar="US",
+        help="wall clock: sleep until this long before each sample, then watch the clock "
+        f"(at most half a period; default {WAKE_US})",
+    )
+    parser.add_argument(
+        "--realtime",
+        type=_priority,
+        default=RIG_FIFO_PRIORITY,
+        metavar="PRIO",
+        help="SCHED_FIFO priority, where permitted; 0: ordinary scheduling "
+        f"(default {RIG_FIFO_PRIORITY}, above the host loop's {LOOP_FIFO_PRIORITY})",
     )
     parser.add_argument("--log", metavar="FILE", help="write the ground-truth log here")
     parser.add_argument(
@@ -206,6 +231,8 @@ def run(args: argparse.Namespace) -> int:
             faults=faults,
             log_path=args.log,
             lockstep_patience_s=args.lockstep_patience,
+            wake_us=args.wake_us,
+            realtime_priority=args.realtime,
         )
     except (OSError, ValueError) as exc:
         print(f"simulated rig: {exc}", file=sys.stderr)
@@ -228,7 +255,8 @@ def run(args: argparse.Namespace) -> int:
         f"simulated rig ({args.clock}): {status.counter} samples in the last run, "
         f"{status.commands_applied} commands applied, late {status.late_commands}, "
         f"missing {status.missing_commands}, bad frames {status.bad_frames}, "
-        f"unknown {status.unknown_messages}, watchdog trips {status.watchdog_trips}",
+        f"unknown {status.unknown_messages}, watchdog trips {status.watchdog_trips}; "
+        + (f"SCHED_FIFO {args.realtime}" if board.realtime else "ordinary scheduling"),
         file=sys.stderr,
     )
     return 0

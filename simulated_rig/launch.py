@@ -106,14 +106,17 @@ def start_rig(
     stall_ms: int = 0,
     stall_at: int = 0,
     lockstep_patience_s: float | None = None,
+    wake_us: int | None = None,
+    realtime_priority: int | None = None,
     env: dict[str, str] | None = None,
     timeout_s: float = _START_TIMEOUT_S,
 ) -> RigProcess:
     """Start ``python -m simulated_rig`` and return once it has printed its device path.
 
     ``rate_hz`` is the highest rate the rig accepts (default 50 kHz); the rate itself
-    comes from the host's CONFIGURE.  The fault options and ``lockstep_patience_s`` are
-    those of the command line (``--lockstep-patience``).
+    comes from the host's CONFIGURE.  The fault options, ``lockstep_patience_s``,
+    ``wake_us`` and ``realtime_priority`` are those of the command line
+    (``--lockstep-patience``, ``--wake-us``, ``--realtime``; None: its default).
     Raises ``RigStartError`` with the rig's error output if it exits or stays silent.
     """
     cmd = [sys.executable, "-m", "simulated_rig"]
@@ -126,6 +129,10 @@ def start_rig(
         cmd += ["--log", os.fspath(log)]
     if lockstep_patience_s is not None:
         cmd += ["--lockstep-patience", repr(float(lockstep_patience_s))]
+    if wake_us is not None:
+        cmd += ["--wake-us", str(wake_us)]
+    if realtime_priority is not None:
+        cmd += ["--realtime", str(realtime_priority)]
     for name, value in (
         ("--corrupt-rx", corrupt_rx),
         ("--drop-rx", drop_rx),

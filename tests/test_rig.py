@@ -626,6 +626,10 @@ def test_bad_options_give_a_clear_error(tmp_path: Path) -> None:
     assert result.returncode == 2 and "between 0 and 1" in result.stderr
     result = run("--drop-tx", "0.6", "--corrupt-tx", "0.6")
     assert result.returncode == 2 and "more than 1" in result.stderr
+    result = run("--realtime", "100")
+    assert result.returncode == 2 and "0 .. 99" in result.stderr
+    result = run("--wake-us", "-5")
+    assert result.returncode == 2 and "--wake-us" in result.stderr
     assert not any(line.startswith("Traceback") for line in result.stderr.splitlines())
 
 
@@ -638,7 +642,8 @@ def test_clampcore_rig_subcommand_has_the_same_options() -> None:
         timeout=120,
     )
     assert result.returncode == 0
-    for option in ("--rate", "--clock", "--log", "--seed", "--corrupt-rx", "--stall-at"):
+    options = ("--rate", "--clock", "--log", "--seed", "--corrupt-rx", "--stall-at", "--wake-us")
+    for option in (*options, "--realtime"):
         assert option in result.stdout
 
 
