@@ -8,13 +8,15 @@
    Both against the rig in lockstep (it sends the next sample as soon as it has
    an answer), so each figure is a pure request-response chain.
 2. Wall clock: the rig samples on its own clock like hardware. For each rate,
-   a run of ``--seconds`` (60 by default) reports the share of samples taken
-   under a late command (the board's own count), commands the host never
-   sent, and the loop latency as a distribution (share of commands in force
-   1, 2, 3, ... samples after the sample they answer), and the share of samples
-   the rig itself took a period or more late (its ground-truth log). Also the
-   highest rate with under 0.1% late commands. With the engine's defaults
-   (SCHED_FIFO and /dev/cpu_dma_latency 0 where permitted) and, with
+   two runs of ``--seconds`` (60 by default): a minimal host (answers the newest
+   sample of each read with a constant COMMAND: no step, no ring, no recorder,
+   the same wait) as the baseline, then clampcore. Each reports the share of
+   samples taken under a late command (the board's own count), the loop latency
+   as a distribution (share of samples taken under a command that answered the
+   sample 1, 2, 3, ... before) and the share of samples the rig itself took a
+   period or more late, both from the rig's ground-truth log. Also the highest
+   rate at which clampcore had under 0.1% late commands. With the engine's
+   defaults (SCHED_FIFO and /dev/cpu_dma_latency 0 where permitted) and, with
    ``--ordinary``, also without them.
 0. Machine floor: the stalls a lone thread spinning on the clock sees on each
    core (the virtual machine's own preemptions), which no loop can avoid.
@@ -37,15 +39,18 @@ from pathlib import Path
 
 import numpy as np
 
-from clampcore.board_link import BoardLink
+from clampcore.board_link import BoardLink, board_converters
+from clampcore.calibration import conversion_array, pA_to_counts
 from clampcore.engine import Engine, RunOptions
+from clampcore.experiment import load_experiment
 from clampcore.jit import kernel
 from clampcore.nwb import read_nwb_summary
 from clampcore.realtime import LOOP_FIFO_PRIORITY, fifo_scheduling, hold_cpu_dma_latency_zero
 from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_ns, monotonic_us
 from firmware_protocol import codec
+from firmware_protocol.codec import SAMPLE_COUNTER, decode_sample, deframe_next, encode_command
 from simulated_rig import start_rig
-from simulated_rig.groundtruth import LOG_BEHIND, read_log
+from simulated_rig.groundtruth import LOG_BEHIND, NO_COMMAND, read_log
 
 ROOT = Path(__file__).resolve().parent.parent
 EXPERIMENT = ROOT / "examples" / "imposed_lif.toml"
@@ -129,7 +134,7 @@ def _pct(x: np.ndarray, q: float) -> float:
 
 
 def turnaround(tmp: Path) -> None:
-    rate = 20000
+    rate = round(load_experiment(EXPERIMENT).loop["rate_hz"])  # the engine run's length
     with start_rig(EXPERIMENT, clock="lockstep") as rig:
         echo = _echo_run(rig.path, rate)
         _, cols = _engine_run(rig.path, TRIPS / rate, tmp / "lockstep.nwb")
@@ -144,6 +149,95 @@ def turnaround(tmp: Path) -> None:
             f"| {name} | {x.size} | {_pct(x, 50):.1f} | {_pct(x, 99):.1f} | {_pct(x, 99.9):.1f} "
             f"| {_pct(x, 50) / e50:.2f}x |"
         )
+
+
+@kernel
+def _minimal_host_loop(
+    fd: int,
+    seconds: float,
+    spin_us: float,
+    counts: np.ndarray,
+    rx: np.ndarray,
+    frame: np.ndarray,
+    dstate: np.ndarray,
+    dbuf: np.ndarray,
+    adc: np.ndarray,
+    fields: np.ndarray,
+    tx: np.ndarray,
+    ts: np.ndarray,
+    pollfd: np.ndarray,
+) -> int:
+    """Answer the newest sample of every read with a constant COMMAND: no step, no ring,
+    no recorder. The same wait (spin, then poll) as the host loop. Returns commands sent."""
+    end = monotonic_ns(ts) + int(seconds * 1e9)
+    seq = 1
+    sent = 0
+    while monotonic_ns(ts) < end:
+        ready = fd_wait_readable(fd, 0, pollfd)
+        if ready == 0:
+            t0 = monotonic_us(ts)
+            while ready == 0 and monotonic_us(ts) - t0 < spin_us:
+                ready = fd_wait_readable(fd, 0, pollfd)
+        if ready == 0:
+            ready = fd_wait_readable(fd, 100, pollfd)
+        if ready < 0:
+            return -1
+        if ready == 0:
+            continue
+        n = fd_read(fd, rx, 0, rx.shape[0])
+        if n <= 0:
+            return -1
+        newest = -1
+        while True:
+            m = deframe_next(dstate, dbuf, rx, n, frame)
+            if m <= 0:
+                break
+            if decode_sample(frame, m, adc, fields) > 0:
+                newest = fields[SAMPLE_COUNTER]
+        if newest >= 0:
+            w = encode_command(seq, newest, counts, tx)
+            if fd_write(fd, tx, 0, w) != w:
+                return -1
+            sent += 1
+            seq = seq + 1 if seq < 0xFFFF else 1  # 0 means "no command" in a SAMPLE
+    return sent
+
+
+def _minimal_host_run(port: str, exp_path: Path, seconds: float, tuned: bool) -> codec.Status:
+    """Run the minimal host against a board for ``seconds``; the board's final status."""
+    exp = load_experiment(exp_path)
+    link = BoardLink(port)
+    try:
+        hello = link.handshake()
+        conv = conversion_array(*board_converters(hello), exp.amplifier)
+        zero = pA_to_counts(conv, 0.0)
+        watchdog_us = int(np.clip(RunOptions().watchdog_ms * 1000, hello.watchdog_min_us,
+                                  hello.watchdog_max_us))  # fmt: skip
+        link.configure(round(exp.loop["rate_hz"]), watchdog_us, zero)
+        fifo = fifo_scheduling(LOOP_FIFO_PRIORITY if tuned else 0)
+        try:
+            with hold_cpu_dma_latency_zero(tuned):
+                link.start()
+                link.take_unread()
+                dstate, dbuf = codec.new_deframer()
+                sent = _minimal_host_loop(
+                    link.blocking_fd(), seconds, SPIN_US, np.array([zero], dtype=np.int64),
+                    np.zeros(4096, np.uint8), np.zeros(codec.MAX_PAYLOAD, np.uint8), dstate,
+                    dbuf, np.zeros(codec.MAX_CHANNELS, np.int64),
+                    np.zeros(codec.SAMPLE_NFIELDS, np.int64), np.zeros(codec.MAX_WIRE, np.uint8),
+                    np.zeros(2, np.int64), np.zeros(2, np.int32),
+                )  # fmt: skip
+        finally:
+            if fifo:
+                os.sched_setscheduler(0, os.SCHED_OTHER, os.sched_param(0))
+        if sent < 0:
+            raise RuntimeError("minimal host: the port failed")
+        status = link.stop()
+        if status is None:
+            raise RuntimeError("minimal host: the board did not answer STOP")
+        return status
+    finally:
+        link.close()
 
 
 @kernel
@@ -191,59 +285,74 @@ def machine_floor(seconds: float) -> None:
         os.sched_setaffinity(0, mask)
 
 
-def _rig_late_share(log_path: Path, rate_hz: int) -> float:
-    """Share of samples the rig itself took a period or more late (its own log)."""
+def _log_figures(log_path: Path) -> dict[str, float]:
+    """Latency shares and the rig's own lateness, from the rig's ground-truth log (the
+    same source for every host, so rows compare like with like)."""
     records = read_log(log_path).records
-    return float(np.mean((records["flags"] & LOG_BEHIND) != 0)) if records.size else float("nan")
+    rows = records[records["cmd_answers"] != NO_COMMAND]
+    lat = rows["counter"] - rows["cmd_answers"]
+    out = {f"lat{k}": float(np.mean(lat == k)) for k in (1, 2, 3)}
+    out["lat4+"] = float(np.mean(lat >= 4))
+    out["within2"] = float(np.mean(lat <= 2))
+    out["rig_late"] = float(np.mean((records["flags"] & LOG_BEHIND) != 0))
+    return out
+
+
+def _set_rate(tmp: Path, rate: int) -> Path:
+    text = re.sub(r"(?m)^rate_hz = \d+", f"rate_hz = {rate}", EXPERIMENT.read_text())
+    if f"rate_hz = {rate}" not in text:
+        raise RuntimeError(f"{EXPERIMENT} has no rate_hz line to set")
+    path = tmp / f"exp_{rate}.toml"
+    path.write_text(text)
+    return path
 
 
 def wall_clock(tmp: Path, rates: list[int], seconds: float, tuned: bool) -> int | None:
-    """One run per rate; returns the highest rate with under 0.1% late commands."""
+    """Runs per rate, the minimal host beside clampcore; returns the highest rate at which
+    clampcore had under 0.1% late commands."""
     if tuned:
-        setting = "defaults: loop SCHED_FIFO, rig SCHED_FIFO, cpu_dma_latency 0 where permitted"
+        setting = "defaults: SCHED_FIFO for host and rig, cpu_dma_latency 0, where permitted"
         options = RunOptions()
         rig_priority = None  # the rig's own default
     else:
         setting = "ordinary scheduling, cpu_dma_latency not held"
         options = RunOptions(low_latency=False, realtime_priority=0)
         rig_priority = 0
-    print(f"\n## Wall-clock rig, {seconds:g} s per rate ({setting})")
+    print(f"\n## Wall-clock rig, {seconds:g} s per run ({setting})")
     print(
-        "\n| rate Hz | samples | late commands | unanswered | latency 1 | 2 | 3 | 4+ "
-        "| within 2 | rig itself late | p99.9 turnaround µs |"
+        "\n| rate Hz | host | samples | late commands | latency 1 | 2 | 3 | 4+ "
+        "| within 2 | rig itself late |"
     )
-    print("|---|---|---|---|---|---|---|---|---|---|---|")
+    print("|---|---|---|---|---|---|---|---|---|---|")
     best = None
     for rate in rates:
-        text = re.sub(r"(?m)^rate_hz = \d+", f"rate_hz = {rate}", EXPERIMENT.read_text())
-        if f"rate_hz = {rate}" not in text:
-            raise RuntimeError(f"{EXPERIMENT} has no rate_hz line to set")
-        exp_path = tmp / f"exp_{rate}.toml"
-        exp_path.write_text(text)
-        log = tmp / f"rig_{rate}_{int(tuned)}.log"
-        with start_rig(exp_path, clock="wall", log=log, realtime_priority=rig_priority) as rig:
-            engine = Engine(exp_path, rig.path, options)
-            engine.start(duration_s=seconds, out=tmp / f"wall_{rate}_{int(tuned)}.nwb")
-            engine.wait()
-            result = engine.finish()
-        if result.error:
-            print(f"| {rate} | run failed: {result.error} |")
-            continue
-        cols = read_nwb_summary(result.nwb_path)["columns"]
-        lat = cols["latency_samples"]
-        lat = lat[np.isfinite(lat)]
-        n = max(result.samples, 1)
-        late = (result.board_status or {}).get("late_commands", result.summary["late"]) / n
-        turn = cols["turnaround_us"]
-        shares = [np.mean(lat == k) for k in (1, 2, 3)] + [np.mean(lat >= 4), np.mean(lat <= 2)]
-        print(
-            f"| {rate} | {result.samples} | {late:.3%} | {result.summary['unanswered']} | "
-            + " | ".join(f"{s:.2%}" for s in shares)
-            + f" | {_rig_late_share(log, rate):.2%} | {_pct(turn[np.isfinite(turn)], 99.9):.0f} |"
-        )
-        if late < 0.001:
-            best = rate
-    print(f"\nHighest rate with under 0.1% late commands: {best or 'none of those tried'}")
+        exp_path = _set_rate(tmp, rate)
+        for host in ("minimal", "clampcore"):
+            log = tmp / f"rig_{rate}_{host}_{int(tuned)}.log"
+            with start_rig(exp_path, clock="wall", log=log, realtime_priority=rig_priority) as rig:
+                if host == "minimal":
+                    status = _minimal_host_run(rig.path, exp_path, seconds, tuned)
+                    samples, late = status.counter, status.late_commands
+                else:
+                    engine = Engine(exp_path, rig.path, options)
+                    engine.start(duration_s=seconds, out=tmp / f"wall_{rate}_{int(tuned)}.nwb")
+                    engine.wait()
+                    result = engine.finish()
+                    if result.error:
+                        print(f"| {rate} | {host} | run failed: {result.error} |")
+                        continue
+                    samples = result.samples
+                    late = (result.board_status or {}).get("late_commands", result.summary["late"])
+            f = _log_figures(log)
+            late_share = late / max(samples, 1)
+            print(
+                f"| {rate} | {host} | {samples} | {late_share:.3%} | "
+                + " | ".join(f"{f[k]:.2%}" for k in ("lat1", "lat2", "lat3", "lat4+", "within2"))
+                + f" | {f['rig_late']:.2%} |"
+            )
+            if host == "clampcore" and late_share < 0.001:
+                best = rate
+    print(f"\nHighest rate with under 0.1% late commands (clampcore): {best or 'none tried'}")
     return best
 
 

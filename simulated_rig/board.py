@@ -244,6 +244,7 @@ S_DAC_MAX = 46
 S_PATIENCE_NS = 47  # lockstep: wall time without an answer before the watchdog may trip
 S_EV_LOST = 48  # events that did not fit in the event buffer
 S_WAKE_NS = 49  # wall clock: sleep until this long before a tick, then watch the clock
+S_REALTIME = 50  # 1 under SCHED_FIFO: then never watch the clock more than half a period
 N_ST = 64
 
 # Float parameters (float64 array).
@@ -728,7 +729,10 @@ def rig_serve(
             if now < due:
                 if now >= budget_end:
                     return R_BUDGET
-                wake = due - min(st[S_WAKE_NS], _NS_PER_S // (2 * st[S_RATE_HZ]))
+                margin = st[S_WAKE_NS]
+                if st[S_REALTIME] != 0:  # a real-time thread must leave the core to others
+                    margin = min(margin, _NS_PER_S // (2 * st[S_RATE_HZ]))
+                wake = due - margin
                 if now < wake:
                     sleep_until_ns(min(wake, budget_end), ts)
                 else:
@@ -948,6 +952,7 @@ class Board:
         """
         fine_timer_slack()
         self.realtime = fifo_scheduling(self.realtime_priority)
+        self.st[S_REALTIME] = 1 if self.realtime else 0
         try:
             while not self._stop_requested and not (should_stop and should_stop()):
                 self._serve_once()
