@@ -15,16 +15,17 @@
    as a distribution (share of samples taken under a command that answered the
    sample 1, 2, 3, ... before) and the share of samples the rig itself took a
    period or more late, both from the rig's ground-truth log. Also the highest
-   rate at which clampcore had under 0.1% late commands. With the engine's
-   defaults (SCHED_FIFO and /dev/cpu_dma_latency 0 where permitted) and, with
-   ``--ordinary``, also without them.
+   rate at which clampcore had under 0.1% late commands. With clampcore's
+   defaults and, with ``--settings``, also with SCHED_FIFO for loop and rig
+   (``realtime``) or with no real-time setting at all (``ordinary``).
 0. Machine floor: the stalls a lone thread spinning on the clock sees on each
    core (the virtual machine's own preemptions), which no loop can avoid.
 
 Machines here are shared and noisy: figures are medians and percentiles, and
 each comparison is measured in the same run.
 
-    .venv/bin/python bench/bench_loop.py [--seconds 60] [--rates 5000,10000,20000] [--ordinary]
+    .venv/bin/python bench/bench_loop.py [--seconds 60] [--rates 5000,10000,20000]
+        [--settings defaults,realtime,ordinary]
 
 Public names: ``main``.
 """
@@ -41,11 +42,16 @@ import numpy as np
 
 from clampcore.board_link import BoardLink, board_converters
 from clampcore.calibration import conversion_array, pA_to_counts
-from clampcore.engine import Engine, RunOptions
+from clampcore.engine import SPIN_SHARE, Engine, RunOptions
 from clampcore.experiment import load_experiment
 from clampcore.jit import kernel
 from clampcore.nwb import read_nwb_summary
-from clampcore.realtime import LOOP_FIFO_PRIORITY, fifo_scheduling, hold_cpu_dma_latency_zero
+from clampcore.realtime import (
+    LOOP_FIFO_PRIORITY,
+    RIG_FIFO_PRIORITY,
+    fifo_scheduling,
+    hold_cpu_dma_latency_zero,
+)
 from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_ns, monotonic_us
 from firmware_protocol import codec
 from firmware_protocol.codec import SAMPLE_COUNTER, decode_sample, deframe_next, encode_command
@@ -103,9 +109,9 @@ def _echo_run(port: str, rate_hz: int) -> np.ndarray:
         if link.take_unread():  # the first sample came with START's reply: answer it
             link.serial.write(reply.tobytes())
         # The same real-time settings as the engine's loop process gets by default.
-        fifo = fifo_scheduling(LOOP_FIFO_PRIORITY)
+        fifo = fifo_scheduling(RunOptions().realtime_priority)
         try:
-            with hold_cpu_dma_latency_zero(True):
+            with hold_cpu_dma_latency_zero(RunOptions().low_latency):
                 n = _echo_loop(
                     fd, SPIN_US, reply, reply.size, np.zeros(4096, np.uint8), turn,
                     np.zeros(2, np.int64), np.zeros(2, np.int32),
@@ -203,7 +209,9 @@ def _minimal_host_loop(
     return sent
 
 
-def _minimal_host_run(port: str, exp_path: Path, seconds: float, tuned: bool) -> codec.Status:
+def _minimal_host_run(
+    port: str, exp_path: Path, seconds: float, options: RunOptions
+) -> codec.Status:
     """Run the minimal host against a board for ``seconds``; the board's final status."""
     exp = load_experiment(exp_path)
     link = BoardLink(port)
@@ -211,17 +219,19 @@ def _minimal_host_run(port: str, exp_path: Path, seconds: float, tuned: bool) ->
         hello = link.handshake()
         conv = conversion_array(*board_converters(hello), exp.amplifier)
         zero = pA_to_counts(conv, 0.0)
-        watchdog_us = int(np.clip(RunOptions().watchdog_ms * 1000, hello.watchdog_min_us,
+        watchdog_us = int(np.clip(options.watchdog_ms * 1000, hello.watchdog_min_us,
                                   hello.watchdog_max_us))  # fmt: skip
-        link.configure(round(exp.loop["rate_hz"]), watchdog_us, zero)
-        fifo = fifo_scheduling(LOOP_FIFO_PRIORITY if tuned else 0)
+        rate = round(exp.loop["rate_hz"])
+        link.configure(rate, watchdog_us, zero)
+        fifo = fifo_scheduling(options.realtime_priority)  # as the engine's loop would
         try:
-            with hold_cpu_dma_latency_zero(tuned):
+            with hold_cpu_dma_latency_zero(options.low_latency):
                 link.start()
                 link.take_unread()
                 dstate, dbuf = codec.new_deframer()
                 sent = _minimal_host_loop(
-                    link.blocking_fd(), seconds, SPIN_US, np.array([zero], dtype=np.int64),
+                    link.blocking_fd(), seconds, min(options.spin_us, SPIN_SHARE * 1e6 / rate),
+                    np.array([zero], dtype=np.int64),
                     np.zeros(4096, np.uint8), np.zeros(codec.MAX_PAYLOAD, np.uint8), dstate,
                     dbuf, np.zeros(codec.MAX_CHANNELS, np.int64),
                     np.zeros(codec.SAMPLE_NFIELDS, np.int64), np.zeros(codec.MAX_WIRE, np.uint8),
@@ -307,17 +317,26 @@ def _set_rate(tmp: Path, rate: int) -> Path:
     return path
 
 
-def wall_clock(tmp: Path, rates: list[int], seconds: float, tuned: bool) -> int | None:
+SETTINGS = {
+    # name: (description, engine options, rig priority or None for the rig's default)
+    "defaults": ("clampcore's defaults: cpu_dma_latency 0 where permitted", RunOptions(), None),
+    "realtime": (
+        f"defaults + SCHED_FIFO {LOOP_FIFO_PRIORITY} for the loop, {RIG_FIFO_PRIORITY} for the rig",
+        RunOptions(realtime_priority=LOOP_FIFO_PRIORITY),
+        RIG_FIFO_PRIORITY,
+    ),
+    "ordinary": (
+        "ordinary scheduling, cpu_dma_latency not held",
+        RunOptions(low_latency=False, realtime_priority=0),
+        0,
+    ),
+}
+
+
+def wall_clock(tmp: Path, rates: list[int], seconds: float, settings: str) -> int | None:
     """Runs per rate, the minimal host beside clampcore; returns the highest rate at which
     clampcore had under 0.1% late commands."""
-    if tuned:
-        setting = "defaults: SCHED_FIFO for host and rig, cpu_dma_latency 0, where permitted"
-        options = RunOptions()
-        rig_priority = None  # the rig's own default
-    else:
-        setting = "ordinary scheduling, cpu_dma_latency not held"
-        options = RunOptions(low_latency=False, realtime_priority=0)
-        rig_priority = 0
+    setting, options, rig_priority = SETTINGS[settings]
     print(f"\n## Wall-clock rig, {seconds:g} s per run ({setting})")
     print(
         "\n| rate Hz | host | samples | late commands | latency 1 | 2 | 3 | 4+ "
@@ -328,14 +347,14 @@ def wall_clock(tmp: Path, rates: list[int], seconds: float, tuned: bool) -> int 
     for rate in rates:
         exp_path = _set_rate(tmp, rate)
         for host in ("minimal", "clampcore"):
-            log = tmp / f"rig_{rate}_{host}_{int(tuned)}.log"
+            log = tmp / f"rig_{rate}_{host}_{settings}.log"
             with start_rig(exp_path, clock="wall", log=log, realtime_priority=rig_priority) as rig:
                 if host == "minimal":
-                    status = _minimal_host_run(rig.path, exp_path, seconds, tuned)
+                    status = _minimal_host_run(rig.path, exp_path, seconds, options)
                     samples, late = status.counter, status.late_commands
                 else:
                     engine = Engine(exp_path, rig.path, options)
-                    engine.start(duration_s=seconds, out=tmp / f"wall_{rate}_{int(tuned)}.nwb")
+                    engine.start(duration_s=seconds, out=tmp / f"wall_{rate}_{settings}.nwb")
                     engine.wait()
                     result = engine.finish()
                     if result.error:
@@ -359,19 +378,24 @@ def wall_clock(tmp: Path, rates: list[int], seconds: float, tuned: bool) -> int 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seconds", type=float, default=60.0)
-    parser.add_argument("--rates", default="2000,5000,10000,15000,20000")
+    parser.add_argument("--rates", default="1000,2000,5000,10000,15000,20000")
     parser.add_argument("--floor-seconds", type=float, default=10.0, help="per core")
     parser.add_argument(
-        "--ordinary", action="store_true", help="also with ordinary scheduling (no tuning)"
+        "--settings",
+        default="defaults",
+        help=f"comma-separated, of {', '.join(SETTINGS)} (default: defaults)",
     )
     args = parser.parse_args()
     rates = [int(r) for r in args.rates.split(",")]
+    settings = args.settings.split(",")
+    for name in settings:
+        if name not in SETTINGS:
+            parser.error(f"--settings: unknown {name!r}")
     with tempfile.TemporaryDirectory() as tmp:
         turnaround(Path(tmp))
         machine_floor(args.floor_seconds)
-        wall_clock(Path(tmp), rates, args.seconds, True)
-        if args.ordinary:
-            wall_clock(Path(tmp), rates, args.seconds, False)
+        for name in settings:
+            wall_clock(Path(tmp), rates, args.seconds, name)
 
 
 if __name__ == "__main__":

@@ -182,10 +182,10 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument(
         "--realtime",
         type=int,
-        default=LOOP_FIFO_PRIORITY,
+        default=0,
         metavar="PRIO",
-        help="SCHED_FIFO priority of the loop, where permitted; 0: ordinary scheduling "
-        f"(default {LOOP_FIFO_PRIORITY})",
+        help="SCHED_FIFO priority of the loop, where permitted (e.g. "
+        f"{LOOP_FIFO_PRIORITY}); 0: ordinary scheduling (default)",
     )
     p.add_argument(
         "--low-latency",

@@ -20,7 +20,8 @@ The loop process is started with multiprocessing's "spawn" method (no fork of a
 process that may hold GUI threads), so a script that uses ``Engine`` must keep its
 top-level code under ``if __name__ == "__main__":``.
 
-Public names: ``Engine``, ``RunOptions``, ``RunResult``, ``EngineError``, ``status_line``.
+Public names: ``Engine``, ``RunOptions``, ``RunResult``, ``EngineError``, ``status_line``,
+``SPIN_SHARE``.
 """
 
 from __future__ import annotations
@@ -60,7 +61,7 @@ from clampcore.hostloop import (
     record_turnaround,
 )
 from clampcore.program import MAIL_TARGETS, Program, build_program, check_live_change
-from clampcore.realtime import LOOP_FIFO_PRIORITY, fifo_scheduling, hold_cpu_dma_latency_zero
+from clampcore.realtime import fifo_scheduling, hold_cpu_dma_latency_zero
 from clampcore.recorder import Recorder, recording_meta
 from clampcore.shared import (
     CTRL_EXIT,
@@ -101,10 +102,12 @@ class RunOptions:
     # Hold /dev/cpu_dma_latency at 0 while running, where permitted (clampcore.realtime).
     # On by default: it halved the late commands against the wall-clock rig (bench_loop.py).
     low_latency: bool = True
-    # Run the loop process under SCHED_FIFO at this priority (1-99; 0 = ordinary scheduling),
-    # where permitted: the standard Linux practice for real-time acquisition. The loop
-    # sleeps in poll() between samples, so it leaves the CPU to others.
-    realtime_priority: int = LOOP_FIFO_PRIORITY
+    # Run the loop process under SCHED_FIFO at this priority (1-99, e.g. LOOP_FIFO_PRIORITY;
+    # 0 = ordinary scheduling), where permitted: standard Linux practice for real-time
+    # acquisition. Off by default: against the simulated rig it gained little once
+    # cpu_dma_latency was held, and with the rig also real-time it cut the window from
+    # 34 to 22 redraws/s at 20 kHz (bench_gui.py; README, Benchmarks).
+    realtime_priority: int = 0
     # Do the serial I/O with pyserial from Python (slower) instead of inside the compiled
     # loop: what ports without a file descriptor (some pyserial URLs) always get.
     python_io: bool = False
@@ -126,6 +129,13 @@ class RunResult:
     error: str | None = None
     # What the loop process got: SCHED_FIFO priority (0 = ordinary) and cpu_dma_latency.
     scheduling: dict[str, Any] = field(default_factory=dict)
+
+
+# The loop spins for input at most this share of a sample period before sleeping in
+# poll(): under SCHED_FIFO a loop that never sleeps would hold a whole core and starve the
+# recorder and the window (at 20 kHz a 30 µs spin left the window 11 redraws/s, against
+# 39/s before; bench/bench_gui.py).
+SPIN_SHARE = 0.25
 
 
 def _neuron_rows(program: Program) -> np.ndarray:
@@ -204,7 +214,7 @@ def _loop_process(
             if fd is not None:
                 code = fd_loop(
                     fd,
-                    options.spin_us,
+                    min(options.spin_us, SPIN_SHARE * 1e6 / rate),
                     options.silent_ms,
                     max_samples,
                     *arrays.arrays(),

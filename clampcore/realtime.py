@@ -27,7 +27,8 @@ from collections.abc import Iterator
 
 _PR_SET_TIMERSLACK = 29  # <linux/prctl.h>
 
-# Default SCHED_FIFO priorities (1-99): the host loop in the middle of the range, the
+# SCHED_FIFO priorities (1-99) to ask for when real-time scheduling is wanted (it is off by
+# default: see RunOptions.realtime_priority): the host loop in the middle of the range, the
 # simulated rig above it, since it stands in for hardware with its own clock.
 LOOP_FIFO_PRIORITY = 50
 RIG_FIFO_PRIORITY = 60

@@ -28,15 +28,18 @@ Two clocks:
   until a COMMAND comes again.
 - ``wall``: tick k is taken at start + k / rate on CLOCK_MONOTONIC, like hardware
   with its own clock.  Between ticks the rig sleeps (``clock_nanosleep`` to an
-  absolute time) until ``wake_us`` (50 µs, at most half a period) before the tick,
-  then watches the clock; at the tick it reads everything that has arrived, applies
+  absolute time) until ``wake_us`` before the tick (under SCHED_FIFO 50 µs, at most
+  a quarter period; otherwise 2 ms, as a sleeping ordinary thread wakes too late), then
+  watches the clock; at the tick it reads everything that has arrived, applies
   the newest valid COMMAND and takes the sample, as a board's sampling interrupt
-  would.  ``serve()`` asks for 1 ns timer slack and, where permitted,
-  SCHED_FIFO (``realtime_priority``; the command line asks for 60), so that those
-  sleeps end on time.  A late COMMAND is applied late; none for the watchdog
-  timeout trips the watchdog.  If the rig itself is
-  preempted it takes the overdue samples as soon as it can and flags them
-  (``LOG_BEHIND`` in the ground-truth log).
+  would.  ``serve()`` asks for 1 ns timer slack and, where permitted and asked
+  for, SCHED_FIFO (``realtime_priority``, e.g. 60; off by default), so that those
+  sleeps end on time.  By default, then, the rig watches the clock from 2 ms before
+  each tick, which above 500 Hz means it spins one core for the whole run; under
+  SCHED_FIFO it leaves most of the core to others (a real board takes no host
+  core).  A late COMMAND is applied late; none for the watchdog timeout trips the
+  watchdog.  If the rig itself is preempted it takes the overdue samples as soon
+  as it can and flags them (``LOG_BEHIND`` in the ground-truth log).
 
 Each START rebuilds the model cell at rest (cell seed ``[cell] seed + (seed << 20)``,
 as ``clampcore.simulate`` does), so every run starts from the same state.
@@ -59,6 +62,7 @@ which CRC-16 always detects (a CRC with a degree-16 generator catches every erro
 burst of at most 16 bits: Peterson & Brown 1961, Proc. IRE 49:228).
 
 Public names: ``Board``, ``Faults``, ``BOARD_IDENTITY``, ``MAX_RATE_HZ``, ``WAKE_US``,
+``WAKE_US_ORDINARY``,
 ``LOCKSTEP_PATIENCE_S``, ``WATCHDOG_MIN_US``, ``WATCHDOG_MAX_US``, ``board_hello``, ``open_pty``,
 ``encode_status``, ``rig_serve``, ``N_INPUTS``, ``N_OUTPUTS``; the layout of
 ``rig_serve``'s arrays (``S_*``, ``F_*``), its return codes ``R_*`` and event kinds
@@ -177,9 +181,13 @@ _BUDGET_NS = 250_000_000
 _IDLE_POLL_MS = 20
 # Wall clock: sleep until this long before each tick, then watch the clock. Waking from a
 # timed sleep took 4 µs median, 18 µs p99 here with /dev/cpu_dma_latency at 0 and SCHED_FIFO,
-# 20-40 µs median without (measured in a throw-away C test, not kept). Never more than half
-# a period, so that the rig sleeps at least half of every period whatever the rate.
+# 20-40 µs median without (measured in a throw-away C test, not kept). Under SCHED_FIFO
+# never more than a quarter period, so that the rig sleeps most of every period
+# whatever the rate (a real-time thread that never sleeps starves the others).
 WAKE_US = 50
+# Without SCHED_FIFO a sleeping thread wakes too late for a 100 µs period, so by default
+# the rig then watches the clock from 2 ms before each tick (it spins at high rates).
+WAKE_US_ORDINARY = 2000
 _STATUS_BODY = 46  # PROTOCOL.md §4.3: STATUS payload 51 bytes = 46 body + type, seq, CRC
 _LOG_ROWS = 16384  # ground-truth records per buffer: more than 0.25 s up to 50 kHz
 _LOG_SPARES = 3  # buffers being written or ready, beside the one being filled
@@ -244,7 +252,7 @@ S_DAC_MAX = 46
 S_PATIENCE_NS = 47  # lockstep: wall time without an answer before the watchdog may trip
 S_EV_LOST = 48  # events that did not fit in the event buffer
 S_WAKE_NS = 49  # wall clock: sleep until this long before a tick, then watch the clock
-S_REALTIME = 50  # 1 under SCHED_FIFO: then never watch the clock more than half a period
+S_REALTIME = 50  # 1 under SCHED_FIFO: then never watch the clock more than a quarter period
 N_ST = 64
 
 # Float parameters (float64 array).
@@ -731,7 +739,7 @@ def rig_serve(
                     return R_BUDGET
                 margin = st[S_WAKE_NS]
                 if st[S_REALTIME] != 0:  # a real-time thread must leave the core to others
-                    margin = min(margin, _NS_PER_S // (2 * st[S_RATE_HZ]))
+                    margin = min(margin, _NS_PER_S // (4 * st[S_RATE_HZ]))
                 wake = due - margin
                 if now < wake:
                     sleep_until_ns(min(wake, budget_end), ts)
@@ -848,12 +856,14 @@ class Board:
         faults: Faults | None = None,
         log_path: str | Path | None = None,
         lockstep_patience_s: float = LOCKSTEP_PATIENCE_S,
-        wake_us: int = WAKE_US,
+        wake_us: int | None = None,
         realtime_priority: int = 0,
     ) -> None:
         if not (isinstance(lockstep_patience_s, int | float) and lockstep_patience_s >= 0):
             raise ValueError(f"lockstep_patience_s must be >= 0, got {lockstep_patience_s!r}")
-        if isinstance(wake_us, bool) or not isinstance(wake_us, int) or wake_us < 0:
+        if wake_us is not None and (
+            isinstance(wake_us, bool) or not isinstance(wake_us, int) or wake_us < 0
+        ):
             raise ValueError(f"wake_us must be an integer >= 0, got {wake_us!r}")
         if isinstance(realtime_priority, bool) or not isinstance(realtime_priority, int):
             raise ValueError(f"realtime_priority must be an integer, got {realtime_priority!r}")
@@ -872,6 +882,7 @@ class Board:
         self.clock = clock
         self.seed = seed
         self.realtime_priority = realtime_priority
+        self.wake_us = wake_us  # None: WAKE_US under SCHED_FIFO, else WAKE_US_ORDINARY
         self.realtime = False  # SCHED_FIFO granted (set by serve())
         self.faults = faults or Faults()
         self.hello = board_hello(max_rate_hz)
@@ -891,7 +902,7 @@ class Board:
         st[S_PATIENCE_NS] = round(lockstep_patience_s * _NS_PER_S)
         st[S_RATE_HZ] = 1  # never divided by before CONFIGURE, but keep it non-zero
         st[S_LOG_ON] = 1 if log_path is not None else 0
-        st[S_WAKE_NS] = wake_us * _NS_PER_US
+        st[S_WAKE_NS] = (WAKE_US_ORDINARY if wake_us is None else wake_us) * _NS_PER_US  # serve()
         self.st = st
         ff = np.zeros(N_FF, dtype=np.float64)
         ff[F_CORRUPT_RX] = self.faults.corrupt_rx
@@ -953,6 +964,10 @@ class Board:
         fine_timer_slack()
         self.realtime = fifo_scheduling(self.realtime_priority)
         self.st[S_REALTIME] = 1 if self.realtime else 0
+        wake_us = self.wake_us
+        if wake_us is None:
+            wake_us = WAKE_US if self.realtime else WAKE_US_ORDINARY
+        self.st[S_WAKE_NS] = wake_us * _NS_PER_US
         try:
             while not self._stop_requested and not (should_stop and should_stop()):
                 self._serve_once()

@@ -27,7 +27,15 @@ import threading
 from typing import Any
 
 from clampcore.realtime import LOOP_FIFO_PRIORITY, RIG_FIFO_PRIORITY
-from simulated_rig.board import LOCKSTEP_PATIENCE_S, MAX_RATE_HZ, WAKE_US, Board, Faults, open_pty
+from simulated_rig.board import (
+    LOCKSTEP_PATIENCE_S,
+    MAX_RATE_HZ,
+    WAKE_US,
+    WAKE_US_ORDINARY,
+    Board,
+    Faults,
+    open_pty,
+)
 
 
 def _fraction(text: str) -> float:
@@ -106,18 +114,19 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument(
         "--wake-us",
         type=_non_negative_int,
-        default=WAKE_US,
+        default=None,
         metavar="US",
         help="wall clock: sleep until this long before each sample, then watch the clock "
-        f"(at most half a period; default {WAKE_US})",
+        f"(default {WAKE_US} under SCHED_FIFO, at most a quarter period; "
+        f"else {WAKE_US_ORDINARY})",
     )
     parser.add_argument(
         "--realtime",
         type=_priority,
-        default=RIG_FIFO_PRIORITY,
+        default=0,
         metavar="PRIO",
         help="SCHED_FIFO priority, where permitted; 0: ordinary scheduling "
-        f"(default {RIG_FIFO_PRIORITY}, above the host loop's {LOOP_FIFO_PRIORITY})",
+        f"(e.g. {RIG_FIFO_PRIORITY}, above the host loop's {LOOP_FIFO_PRIORITY}; default 0)",
     )
     parser.add_argument("--log", metavar="FILE", help="write the ground-truth log here")
     parser.add_argument(

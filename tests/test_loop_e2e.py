@@ -34,6 +34,7 @@ from clampcore.calibration import (
 from clampcore.engine import Engine, RunOptions
 from clampcore.experiment import load_experiment
 from clampcore.nwb import journal_to_nwb, read_nwb_summary, validate_nwb
+from clampcore.realtime import LOOP_FIFO_PRIORITY, fifo_scheduling
 from simulated_rig import start_rig
 from simulated_rig.groundtruth import NO_COMMAND, read_log
 
@@ -85,9 +86,8 @@ def _valid(path: Path) -> dict:
 def test_lockstep_run_equals_offline_simulation(tmp_path):
     """Same experiment and seed: the serial path equals clampcore.simulate sample for sample."""
     exp = EXAMPLES / "slice_background.toml"  # HH cell, noise, Poisson synapses: all seeded
-    result = _run(
-        Engine(exp, "sim", RunOptions(rig_clock="lockstep", seed=3)), 0.5, tmp_path / "run.nwb"
-    )
+    options = RunOptions(rig_clock="lockstep", seed=3, realtime_priority=LOOP_FIFO_PRIORITY)
+    result = _run(Engine(exp, "sim", options), 0.5, tmp_path / "run.nwb")
     assert result.error is None, result.error
     rec = _valid(result.nwb_path)
     offline = clampcore.simulate(exp, 0.5, seed=3)
@@ -100,6 +100,18 @@ def test_lockstep_run_equals_offline_simulation(tmp_path):
     # In lockstep every command is in force at the very next sample.
     lat = rec["columns"]["latency_samples"]
     assert np.all(lat[np.isfinite(lat)] == 1)
+    # The loop process got the real-time settings exactly where this system permits them.
+    assert result.scheduling["cpu_dma_latency_held"] == os.access("/dev/cpu_dma_latency", os.W_OK)
+    fifo_permitted = _in_thread(lambda: fifo_scheduling(1))
+    assert result.scheduling["fifo_priority"] == (LOOP_FIFO_PRIORITY if fifo_permitted else 0)
+
+
+def _in_thread(fn):  # per-thread scheduling: probe in a thread that then ends
+    box = {}
+    thread = threading.Thread(target=lambda: box.setdefault("r", fn()))
+    thread.start()
+    thread.join()
+    return box["r"]
 
 
 def test_passive_physics_through_the_serial_path(tmp_path):
@@ -293,7 +305,8 @@ def test_recover_after_the_host_process_is_killed(tmp_path):
     gt = read_log(log).for_run(1)
     answered = gt.cmd_answers[gt.cmd_seq != NO_COMMAND]
     host_samples = int(answered.max()) + 1  # the host had processed at least this many
-    assert rec["n_samples"] >= host_samples - 0.5 * 20000
+    rate_hz = load_experiment(exp).loop["rate_hz"]
+    assert rec["n_samples"] >= host_samples - 0.5 * rate_hz
     counters = rec["columns"]["sample_counter"]
     assert np.all(np.diff(counters) >= 1)
 
