@@ -65,6 +65,21 @@ SPIN_US = RunOptions().spin_us  # the engine's default spin before sleeping in p
 
 
 @kernel
+def _wait_input(
+    fd: int, spin_us: float, timeout_ms: int, timespec: np.ndarray, pollfd: np.ndarray
+) -> int:
+    """The host loop's wait: spin up to ``spin_us`` for input, then sleep in poll()."""
+    ready = fd_wait_readable(fd, 0, pollfd)
+    if ready == 0:
+        t0 = monotonic_us(timespec)
+        while ready == 0 and monotonic_us(timespec) - t0 < spin_us:
+            ready = fd_wait_readable(fd, 0, pollfd)
+    if ready == 0:
+        ready = fd_wait_readable(fd, timeout_ms, pollfd)
+    return ready
+
+
+@kernel
 def _echo_loop(
     fd: int,
     spin_us: float,
@@ -78,14 +93,7 @@ def _echo_loop(
     """Answer every read with ``reply``; the same wait (spin, then poll) as the host loop."""
     n = 0
     while n < turnaround_us.shape[0]:
-        ready = fd_wait_readable(fd, 0, pollfd)
-        if ready == 0:
-            t0 = monotonic_us(timespec)
-            while ready == 0 and monotonic_us(timespec) - t0 < spin_us:
-                ready = fd_wait_readable(fd, 0, pollfd)
-        if ready == 0:
-            ready = fd_wait_readable(fd, 1000, pollfd)
-        if ready <= 0:
+        if _wait_input(fd, spin_us, 1000, timespec, pollfd) <= 0:
             return n
         t_ready = monotonic_us(timespec)
         if fd_read(fd, rx, 0, rx.shape[0]) <= 0:
@@ -179,13 +187,7 @@ def _minimal_host_loop(
     seq = 1
     sent = 0
     while monotonic_ns(ts) < end:
-        ready = fd_wait_readable(fd, 0, pollfd)
-        if ready == 0:
-            t0 = monotonic_us(ts)
-            while ready == 0 and monotonic_us(ts) - t0 < spin_us:
-                ready = fd_wait_readable(fd, 0, pollfd)
-        if ready == 0:
-            ready = fd_wait_readable(fd, 100, pollfd)
+        ready = _wait_input(fd, spin_us, 100, ts, pollfd)
         if ready < 0:
             return -1
         if ready == 0:
@@ -351,7 +353,10 @@ def wall_clock(tmp: Path, rates: list[int], seconds: float, settings: str) -> in
             with start_rig(exp_path, clock="wall", log=log, realtime_priority=rig_priority) as rig:
                 if host == "minimal":
                     status = _minimal_host_run(rig.path, exp_path, seconds, options)
-                    samples, late = status.counter, status.late_commands
+                    # Samples of the run itself, not those the board took while STOP
+                    # was on its way (unanswered, so they add no late command).
+                    samples = min(status.counter, round(seconds * rate))
+                    late = status.late_commands
                 else:
                     engine = Engine(exp_path, rig.path, options)
                     engine.start(duration_s=seconds, out=tmp / f"wall_{rate}_{settings}.nwb")
