@@ -36,6 +36,7 @@ import argparse
 import os
 import re
 import tempfile
+import threading
 from pathlib import Path
 
 import numpy as np
@@ -271,30 +272,51 @@ def _stall_census(seconds: float, limits_ns: np.ndarray, counts: np.ndarray, ts:
     return lost
 
 
+def _census_on(cpu: int, seconds: float, limits_us: tuple[int, ...], out: dict) -> None:
+    """Pin the calling thread to ``cpu`` and count its stalls (the kernel releases the GIL)."""
+    os.sched_setaffinity(0, {cpu})  # 0: the calling thread, on Linux
+    counts = np.zeros(len(limits_us), dtype=np.int64)
+    limits = np.array(limits_us, dtype=np.int64) * 1000
+    lost = _stall_census(seconds, limits, counts, np.zeros(2, np.int64))
+    out[cpu] = (counts, lost)
+
+
 def machine_floor(seconds: float) -> None:
-    """What a lone thread spinning on one core sees of the machine: stalls it did not cause.
+    """What threads spinning on the clock see of the machine: stalls they did not cause.
 
     On a shared virtual machine the hypervisor takes cores away now and then; no host loop
     can answer a sample while its core is away, nor the rig take one, so these stalls set
-    a floor under the late-command figures below.
+    a floor under the late-command figures below. Measured with one core busy at a time,
+    then with every core busy at once, as during a wall-clock run (the rig keeps one core
+    busy, the loop, the recorder and the kernel's pty work the other).
     """
     limits_us = (100, 200, 1000)
-    print(
-        f"\n## Machine floor: stalls seen by one thread spinning on the clock, {seconds:g} s/core\n"
-    )
-    print("| core | stalls >= 100 µs per s | >= 200 µs per s | >= 1 ms per s | time lost |")
-    print("|---|---|---|---|---|")
-    mask = os.sched_getaffinity(0)
-    try:
-        for cpu in sorted(mask):
-            os.sched_setaffinity(0, {cpu})
-            counts = np.zeros(len(limits_us), dtype=np.int64)
-            limits = np.array(limits_us, dtype=np.int64) * 1000
-            lost = _stall_census(seconds, limits, counts, np.zeros(2, np.int64))
+    print(f"\n## Machine floor: stalls seen by threads spinning on the clock, {seconds:g} s\n")
+    print("| cores busy | core | stalls >= 100 µs per s | >= 200 µs per s | >= 1 ms per s "
+          "| time lost |")  # fmt: skip
+    print("|---|---|---|---|---|---|")
+    cpus = sorted(os.sched_getaffinity(0))
+    for together in (False, True):
+        results: dict = {}
+        if together:
+            threads = [
+                threading.Thread(target=_census_on, args=(cpu, seconds, limits_us, results))
+                for cpu in cpus
+            ]
+            for t in threads:
+                t.start()
+            for t in threads:
+                t.join()
+        else:
+            for cpu in cpus:
+                t = threading.Thread(target=_census_on, args=(cpu, seconds, limits_us, results))
+                t.start()
+                t.join()
+        for cpu in cpus:
+            counts, lost = results[cpu]
             rates = " | ".join(f"{c / seconds:.1f}" for c in counts)
-            print(f"| {cpu} | {rates} | {lost / (seconds * 1e9):.2%} |")
-    finally:
-        os.sched_setaffinity(0, mask)
+            busy = "all" if together else "one"
+            print(f"| {busy} | {cpu} | {rates} | {lost / (seconds * 1e9):.2%} |")
 
 
 def _log_figures(log_path: Path) -> dict[str, float]:
