@@ -18,8 +18,9 @@ refreshes and repaints per second, and the median cost of one refresh (ms).
 Medians over the repeated phases are compared: open vs closed, same run.
 
 Usage: ``QT_QPA_PLATFORM=offscreen .venv/bin/python bench/bench_gui.py [--phase-s S]
-[--repeats N]``. Timing on a 2-core virtual machine varies from run to run
-(REALTIME-NOTES): read the ratios, not the absolute figures.
+[--repeats N] [--realtime PRIO] [--rig-realtime PRIO] [--no-low-latency]``. Timing on a
+2-core virtual machine varies from run to run (REALTIME-NOTES): read the ratios, not the
+absolute figures.
 """
 
 from __future__ import annotations
@@ -53,6 +54,12 @@ def main() -> int:
     parser.add_argument("--phase-s", type=float, default=5.0, help="seconds per phase")
     parser.add_argument("--repeats", type=int, default=3, help="closed/open pairs")
     parser.add_argument("--warmup-s", type=float, default=11.0, help="fills the 10 s window")
+    parser.add_argument("--realtime", type=int, default=0, help="loop SCHED_FIFO priority")
+    parser.add_argument("--rig-realtime", type=int, default=0, help="rig SCHED_FIFO priority")
+    parser.add_argument(
+        "--low-latency", action=argparse.BooleanOptionalAction, default=True,
+        help="hold /dev/cpu_dma_latency at 0 (the engine's default)",
+    )  # fmt: skip
     args = parser.parse_args()
 
     from PySide6 import QtCore, QtWidgets
@@ -65,7 +72,12 @@ def main() -> int:
     window = TuningWindow(
         ROOT / "examples" / "slice_background.toml",
         port="sim",
-        options=RunOptions(rig_clock="wall"),
+        options=RunOptions(
+            rig_clock="wall",
+            low_latency=args.low_latency,
+            realtime_priority=args.realtime,
+            rig_realtime_priority=args.rig_realtime,
+        ),
         record_dir=Path(tmp.name),
     )
     window.resize(1500, 920)

@@ -53,7 +53,7 @@ from clampcore.realtime import (
     fifo_scheduling,
     hold_cpu_dma_latency_zero,
 )
-from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_ns, monotonic_us
+from clampcore.sysio import fd_read, fd_write, monotonic_ns, monotonic_us, wait_readable
 from firmware_protocol import codec
 from firmware_protocol.codec import SAMPLE_COUNTER, decode_sample, deframe_next, encode_command
 from simulated_rig import start_rig
@@ -63,21 +63,6 @@ ROOT = Path(__file__).resolve().parent.parent
 EXPERIMENT = ROOT / "examples" / "imposed_lif.toml"
 TRIPS = 20_000  # round trips per turnaround measurement (as in REALTIME-NOTES)
 SPIN_US = RunOptions().spin_us  # the engine's default spin before sleeping in poll()
-
-
-@kernel
-def _wait_input(
-    fd: int, spin_us: float, timeout_ms: int, timespec: np.ndarray, pollfd: np.ndarray
-) -> int:
-    """The host loop's wait: spin up to ``spin_us`` for input, then sleep in poll()."""
-    ready = fd_wait_readable(fd, 0, pollfd)
-    if ready == 0:
-        t0 = monotonic_us(timespec)
-        while ready == 0 and monotonic_us(timespec) - t0 < spin_us:
-            ready = fd_wait_readable(fd, 0, pollfd)
-    if ready == 0:
-        ready = fd_wait_readable(fd, timeout_ms, pollfd)
-    return ready
 
 
 @kernel
@@ -94,7 +79,7 @@ def _echo_loop(
     """Answer every read with ``reply``; the same wait (spin, then poll) as the host loop."""
     n = 0
     while n < turnaround_us.shape[0]:
-        if _wait_input(fd, spin_us, 1000, timespec, pollfd) <= 0:
+        if wait_readable(fd, spin_us, 1000, timespec, pollfd) <= 0:
             return n
         t_ready = monotonic_us(timespec)
         if fd_read(fd, rx, 0, rx.shape[0]) <= 0:
@@ -188,7 +173,7 @@ def _minimal_host_loop(
     seq = 1
     sent = 0
     while monotonic_ns(ts) < end:
-        ready = _wait_input(fd, spin_us, 100, ts, pollfd)
+        ready = wait_readable(fd, spin_us, 100, ts, pollfd)
         if ready < 0:
             return -1
         if ready == 0:

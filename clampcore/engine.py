@@ -107,13 +107,14 @@ class RunOptions:
     # 0 = ordinary scheduling), where permitted: standard Linux practice for real-time
     # acquisition. Off by default: against the simulated rig it gained little once
     # cpu_dma_latency was held, and with the rig also real-time it cut the window from
-    # 34 to 22 redraws/s at 20 kHz (bench_gui.py; README, Benchmarks).
+    # about 35 to 23 redraws/s at 20 kHz (bench_gui.py; README, Benchmarks).
     realtime_priority: int = 0
     # Do the serial I/O with pyserial from Python (slower) instead of inside the compiled
     # loop: what ports without a file descriptor (some pyserial URLs) always get.
     python_io: bool = False
     rig_clock: str = "wall"  # for port "sim": the simulated rig's clock
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
+    rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
     rig_faults: dict[str, Any] = field(default_factory=dict)
 
 
@@ -134,8 +135,9 @@ class RunResult:
 
 # The loop spins for input at most this share of a sample period before sleeping in
 # poll(): under SCHED_FIFO a loop that never sleeps would hold a whole core and starve the
-# recorder and the window (at 20 kHz a 30 µs spin left the window 11 redraws/s, against
-# 39/s before; bench/bench_gui.py).
+# recorder and the window (with SCHED_FIFO for loop and rig at 20 kHz, an uncapped 30 µs
+# spin left the window 11 redraws/s, capped about 22; bench_gui.py --realtime 50
+# --rig-realtime 60).
 SPIN_SHARE = 0.25
 
 
@@ -369,6 +371,7 @@ class Engine:
                 clock=self.options.rig_clock,
                 seed=self.options.seed,
                 log=self.options.rig_log,
+                realtime_priority=self.options.rig_realtime_priority,
                 **self.options.rig_faults,
             )
             port = self._rig.path

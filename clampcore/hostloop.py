@@ -74,7 +74,7 @@ from clampcore.step import (
     LS_FLAGS,
     step,
 )
-from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_us
+from clampcore.sysio import fd_read, fd_write, monotonic_us, wait_readable
 from firmware_protocol.codec import (
     DEFRAMER_BAD,
     MAX_CHANNELS,
@@ -384,15 +384,7 @@ def fd_loop(
             return EXIT_STOP_REQUEST
         if max_samples > 0 and lk[LK_SAMPLES] >= max_samples:
             return EXIT_DURATION
-        # Wait for input: spin first (a sleeping reader wakes 50-90 µs late on these
-        # machines, REALTIME-NOTES), then sleep in poll().
-        ready = fd_wait_readable(fd, 0, pollfd)
-        if ready == 0 and spin_us > 0:
-            t0 = monotonic_us(timespec)
-            while ready == 0 and monotonic_us(timespec) - t0 < spin_us:
-                ready = fd_wait_readable(fd, 0, pollfd)
-        if ready == 0:
-            ready = fd_wait_readable(fd, _POLL_SLICE_MS, pollfd)
+        ready = wait_readable(fd, spin_us, _POLL_SLICE_MS, timespec, pollfd)
         if ready < 0:
             return EXIT_PORT_ERROR
         if ready == 0:

@@ -7,7 +7,7 @@ addresses (``array.ctypes.data``), which the C calling convention passes
 exactly as a pointer on the platforms numba supports.
 
 Public names: ``fd_read``, ``fd_write``, ``fd_wait_readable``, ``monotonic_us``,
-``monotonic_ns``, ``sleep_until_ns``.
+``monotonic_ns``, ``sleep_until_ns``, ``wait_readable``.
 """
 
 from __future__ import annotations
@@ -71,6 +71,23 @@ def monotonic_ns(timespec: np.ndarray) -> int:
 def monotonic_us(timespec: np.ndarray) -> float:
     """CLOCK_MONOTONIC in µs (float); ``timespec`` is an int64 array of 2 used as scratch."""
     return monotonic_ns(timespec) * 1e-3
+
+
+@kernel
+def wait_readable(
+    fd: int, spin_us: float, timeout_ms: int, timespec: np.ndarray, pollfd: np.ndarray
+) -> int:
+    """Wait for input as the host loop does: spin up to ``spin_us`` (a sleeping reader wakes
+    50-90 µs late on these machines, REALTIME-NOTES), then sleep in poll() for up to
+    ``timeout_ms``. Returns as ``fd_wait_readable``."""
+    ready = fd_wait_readable(fd, 0, pollfd)
+    if ready == 0 and spin_us > 0:
+        t0 = monotonic_us(timespec)
+        while ready == 0 and monotonic_us(timespec) - t0 < spin_us:
+            ready = fd_wait_readable(fd, 0, pollfd)
+    if ready == 0:
+        ready = fd_wait_readable(fd, timeout_ms, pollfd)
+    return ready
 
 
 @kernel

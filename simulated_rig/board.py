@@ -752,7 +752,7 @@ def rig_serve(
             _event(st, ev, EV_STALL, st[S_STALL_MS], 0)
             end = now + st[S_STALL_MS] * _NS_PER_MS
             while monotonic_ns(ts) < end:  # frozen: no reading, no ticking
-                fd_wait_readable(-1, 1, pollfd)
+                sleep_until_ns(end, ts)
             continue
         _tick(
             fd,
@@ -883,7 +883,6 @@ class Board:
         self.seed = seed
         self.realtime_priority = realtime_priority
         self.wake_us = wake_us  # None: WAKE_US under SCHED_FIFO, else WAKE_US_ORDINARY
-        self.realtime = False  # SCHED_FIFO granted (set by serve())
         self.faults = faults or Faults()
         self.hello = board_hello(max_rate_hz)
         self.conv = conversion_array(
@@ -902,8 +901,8 @@ class Board:
         st[S_PATIENCE_NS] = round(lockstep_patience_s * _NS_PER_S)
         st[S_RATE_HZ] = 1  # never divided by before CONFIGURE, but keep it non-zero
         st[S_LOG_ON] = 1 if log_path is not None else 0
-        st[S_WAKE_NS] = (WAKE_US_ORDINARY if wake_us is None else wake_us) * _NS_PER_US  # serve()
         self.st = st
+        self._apply_scheduling(realtime=False)  # serve() applies what it is granted
         ff = np.zeros(N_FF, dtype=np.float64)
         ff[F_CORRUPT_RX] = self.faults.corrupt_rx
         ff[F_DROP_RX] = self.faults.drop_rx
@@ -962,12 +961,7 @@ class Board:
         SCHED_FIFO (``realtime_priority``), so that its timed sleeps end on time.
         """
         fine_timer_slack()
-        self.realtime = fifo_scheduling(self.realtime_priority)
-        self.st[S_REALTIME] = 1 if self.realtime else 0
-        wake_us = self.wake_us
-        if wake_us is None:
-            wake_us = WAKE_US if self.realtime else WAKE_US_ORDINARY
-        self.st[S_WAKE_NS] = wake_us * _NS_PER_US
+        self._apply_scheduling(fifo_scheduling(self.realtime_priority))
         try:
             while not self._stop_requested and not (should_stop and should_stop()):
                 self._serve_once()
@@ -976,6 +970,15 @@ class Board:
             if self.st[S_STATE] == STATE_RUNNING:
                 self._log_events([self._stop_event("rig shut down")])
             self.close()
+
+    def _apply_scheduling(self, realtime: bool) -> None:
+        """Record whether SCHED_FIFO was granted and choose the wall clock's wake margin."""
+        self.realtime = realtime
+        self.st[S_REALTIME] = 1 if realtime else 0
+        wake_us = self.wake_us
+        if wake_us is None:
+            wake_us = WAKE_US if realtime else WAKE_US_ORDINARY
+        self.st[S_WAKE_NS] = wake_us * _NS_PER_US
 
     def _serve_once(self) -> None:
         reason = rig_serve(

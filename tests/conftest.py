@@ -5,12 +5,17 @@ where brian2 is missing (or cannot be imported) the test is skipped with the
 reason, unless ``CLAMPCORE_REQUIRE_BRIAN2=1`` is set (``tasks.py test`` sets it
 in the reference environment), in which case the test fails instead.
 The ``brian2`` fixture does the same for a test that takes it as an argument.
+The ``in_thread`` fixture runs a function in a fresh thread and returns its result
+(scheduling settings are per thread; the probe must not change the test's own).
 """
 
 from __future__ import annotations
 
 import os
+import threading
+from collections.abc import Callable
 from types import ModuleType
+from typing import Any
 
 import pytest
 
@@ -36,3 +41,17 @@ def brian2() -> ModuleType:
     module = require_brian2()
     module.prefs.codegen.target = "numpy"
     return module
+
+
+@pytest.fixture
+def in_thread() -> Callable[[Callable[[], Any]], Any]:
+    """Run ``fn()`` in a fresh thread that then ends; return what it returned."""
+
+    def run(fn: Callable[[], Any]) -> Any:
+        box: dict[str, Any] = {}
+        thread = threading.Thread(target=lambda: box.setdefault("result", fn()))
+        thread.start()
+        thread.join()
+        return box["result"]
+
+    return run

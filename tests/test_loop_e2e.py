@@ -83,7 +83,7 @@ def _valid(path: Path) -> dict:
     return read_nwb_summary(path)
 
 
-def test_lockstep_run_equals_offline_simulation(tmp_path):
+def test_lockstep_run_equals_offline_simulation(tmp_path, in_thread):
     """Same experiment and seed: the serial path equals clampcore.simulate sample for sample."""
     exp = EXAMPLES / "slice_background.toml"  # HH cell, noise, Poisson synapses: all seeded
     options = RunOptions(rig_clock="lockstep", seed=3, realtime_priority=LOOP_FIFO_PRIORITY)
@@ -102,16 +102,8 @@ def test_lockstep_run_equals_offline_simulation(tmp_path):
     assert np.all(lat[np.isfinite(lat)] == 1)
     # The loop process got the real-time settings exactly where this system permits them.
     assert result.scheduling["cpu_dma_latency_held"] == os.access("/dev/cpu_dma_latency", os.W_OK)
-    fifo_permitted = _in_thread(lambda: fifo_scheduling(1))
+    fifo_permitted = in_thread(lambda: fifo_scheduling(1))
     assert result.scheduling["fifo_priority"] == (LOOP_FIFO_PRIORITY if fifo_permitted else 0)
-
-
-def _in_thread(fn):  # per-thread scheduling: probe in a thread that then ends
-    box = {}
-    thread = threading.Thread(target=lambda: box.setdefault("r", fn()))
-    thread.start()
-    thread.join()
-    return box["r"]
 
 
 def test_passive_physics_through_the_serial_path(tmp_path):
