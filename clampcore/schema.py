@@ -74,6 +74,14 @@ ELEMENT_FIELDS: dict[str, tuple[Field, ...]] = {
         _f("tau_rec_ms", 0.0, "nonnegative", doc="depression recovery; 0 = no depression"),
         _f("tau_facil_ms", 0.0, "nonnegative", doc="facilitation decay; 0 = no facilitation"),
         _f("source", "poisson", "ref", live=False, doc="poisson | train | cell | <neuron name>"),
+        _f(
+            "delay_ms",
+            0.0,
+            "nonnegative",
+            live=False,
+            doc="cell source: synaptic delay, rounded to whole samples; 0 = the same sample "
+            "(current mode only: a board-evaluated law needs at least the look-ahead + 1 sample)",
+        ),
         _f("rate_hz", 10.0, "positive", doc="poisson source"),
         _f("times_ms", [], "times", live=False, doc="train source"),
         _f("seed", 0, "int", live=False),
