@@ -19,11 +19,12 @@ import os
 import time
 from typing import Any
 
+import numpy as np
 import serial
 from serial.tools import list_ports as _list_ports
 
 from clampcore.calibration import Converter
-from firmware_protocol import codec, lawmsg
+from firmware_protocol import boardlaw, codec, lawmsg
 
 _CONTROL_SEQ_START = 0x8000  # control frames count from here; commands use their own numbers
 _REPLY_TIMEOUT_S = 2.0  # a board answers a control message within a few ms; 2 s is generous
@@ -192,9 +193,29 @@ class BoardLink:
                 raise BoardError(self.port, "block table refused", f"result {reply.result}")
         return True
 
-    def zero_now(self) -> None:
-        """Ask a law-evaluating board for 0 pA at once, ahead of any queued law."""
+    def zero_now(self, confirm_s: float = 0.2) -> bool:
+        """Ask a law-evaluating board for 0 pA at once, ahead of any queued law, and wait
+        (at most ``confirm_s``) for a sample that shows it applied; True when one did."""
         self.send((lawmsg.MSG_ZERO, lawmsg.ZERO_ON))
+        fields = np.zeros(lawmsg.N_FIELDS, dtype=np.int64)
+        adc, dac, flags = (np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64) for _ in range(3))
+        deadline = time.monotonic() + confirm_s
+        while time.monotonic() < deadline:
+            try:
+                data = self.serial.read(max(1, self.serial.in_waiting))
+            except (serial.SerialException, OSError) as exc:
+                raise BoardError(self.port, "reading", str(exc)) from exc
+            self._pending += data
+            while b"\x00" in self._pending:
+                wire, self._pending = self._pending.split(b"\x00", 1)
+                try:
+                    payload = np.frombuffer(codec.decode_wire(wire), dtype=np.uint8)
+                except codec.FrameError:
+                    continue
+                n = lawmsg.decode_samples(payload, payload.size, fields, adc, dac, flags)
+                if n > 0 and np.any(flags[:n] & boardlaw.BF_FLAG_ZERO):
+                    return True
+        return False
 
     def take_unread(self) -> bytes:
         """Bytes read while waiting for a reply but not yet used (e.g. the first sample)."""

@@ -132,6 +132,8 @@ class RunOptions:
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
     rig_faults: dict[str, Any] = field(default_factory=dict)
+    # "current" or "law" (PROTOCOL.md §10) instead of the experiment's [loop] mode; None: as set.
+    mode: str | None = None
 
 
 @dataclass
@@ -147,6 +149,8 @@ class RunResult:
     error: str | None = None
     # What the loop process got: SCHED_FIFO priority (0 = ordinary) and cpu_dma_latency.
     scheduling: dict[str, Any] = field(default_factory=dict)
+    mode: str = "current"  # how the current was computed: "current" or "law" (PROTOCOL.md §10)
+    notice: str | None = None  # e.g. why law mode fell back to current mode
 
 
 # The loop spins for input at most this share of a sample period before sleeping in
@@ -225,7 +229,8 @@ def _loop_process(
         loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
         loop_args += (shared.mailbox, shared.applied, shared.stats)
         law = None
-        if exp.loop["mode"] == LAW_MODE:
+        report["mode"] = CURRENT_MODE
+        if (options.mode or exp.loop["mode"]) == LAW_MODE:
             law = _law_setup(link, program, conv, loop_args, options)
             report["mode"] = LAW_MODE if law is not None else CURRENT_MODE
             if law is None:
@@ -591,6 +596,8 @@ class Engine:
             "summary": status,
             "board": report.get("board"),
             "board_final_status": report.get("board_status"),
+            "mode": report.get("mode", CURRENT_MODE),
+            "notice": report.get("notice"),
             "scheduling": {
                 "fifo_priority": self.options.realtime_priority if report.get("realtime") else 0,
                 "cpu_dma_latency_held": bool(report.get("low_latency_held")),
@@ -613,6 +620,8 @@ class Engine:
             board_status=report.get("board_status"),
             error=report.get("error"),
             scheduling=final["scheduling"],
+            mode=final["mode"],
+            notice=final["notice"],
         )
         if self._tmpdir is not None:
             self._tmpdir.cleanup()

@@ -18,7 +18,7 @@ Real-time rules as in ``clampcore.hostloop``: compiled, preallocated, no I/O but
 read and one write per pass.
 
 Public names: ``LawLinkArrays``, ``new_law_link``, ``top_up_laws``, ``process_rx_law``,
-``law_fd_loop``, the ``LW_*`` indices.
+``law_fd_loop``, the ``LW_*`` indices, ``FLAG_STALE``.
 """
 
 from __future__ import annotations
@@ -29,6 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from clampcore.calibration import counts_to_mV, counts_to_pA
+from clampcore.elements import KIND_THRESHOLD_RESET
+from clampcore.elements import threshold_reset as _tr
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.hostloop import (
     _POLL_SLICE_MS,
@@ -107,6 +109,8 @@ LW_BLOCKED = 6  # 1: laws carry the Mg-blocked part
 LW_ZERO_SENT = 7  # the zero-current state last sent to the board
 N_LW = 8
 
+FLAG_STALE = 16  # ring flags bit: the board had no law young enough and output 0 pA
+
 _TX_BYTES = 8192  # LAWS frames of one pass: a 1 ms burst of samples at 50 kHz and more
 
 
@@ -182,6 +186,24 @@ def new_law_link(lead: int, blocked: bool, n_elements: int, n_neurons: int) -> L
         timespec=np.zeros(2, dtype=np.int64),
         pollfd=np.zeros(2, dtype=np.int32),
     )
+
+
+@kernel
+def _board_reset_current(
+    v_mV: float,
+    on: bool,
+    kind: np.ndarray,
+    params: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+) -> None:
+    """The threshold_reset element's conductance and current, which the board applied."""
+    for r in range(kind.shape[0]):
+        if kind[r] != KIND_THRESHOLD_RESET:
+            continue
+        g = params[r, _tr.P_G] if on else 0.0
+        g_out[r] = g
+        i_out[r] = -g * (v_mV - params[r, _tr.P_RESET])
 
 
 @kernel
@@ -345,11 +367,14 @@ def process_rx_law(
                 g_out[r] = ghist[h, r]
                 i_out[r] = ghist[h, n_el + r]
             cell_currents(v_mV, kind, params, g_out, i_out)
+            _board_reset_current(v_mV, (bflags & bl.BF_FLAG_RESET) != 0, kind, params, g_out, i_out)
             flags = 0
-            if bflags & (bl.BF_FLAG_BAD_V | bl.BF_FLAG_STALE):
-                flags |= FAULT_BAD_V if bflags & bl.BF_FLAG_BAD_V else 0
+            if bflags & bl.BF_FLAG_BAD_V:
+                flags |= FAULT_BAD_V
             if bflags & bl.BF_FLAG_NONFINITE:
                 flags |= FAULT_NONFINITE
+            if bflags & bl.BF_FLAG_STALE:
+                flags |= FLAG_STALE
             if bflags & bl.BF_FLAG_LIMITED:
                 flags |= FLAG_LIMITED
             if bflags & bl.BF_FLAG_ZERO:
@@ -382,7 +407,7 @@ def process_rx_law(
                 stats[ST_LATE] += 1.0
             if status & STATUS_WATCHDOG:
                 stats[ST_WATCHDOG] += 1.0
-            if flags & (FAULT_BAD_V | FAULT_NONFINITE):
+            if flags & (FAULT_BAD_V | FAULT_NONFINITE | FLAG_STALE):
                 stats[ST_FAULTS] += 1.0
             if flags & FLAG_LIMITED:
                 stats[ST_LIMITED] += 1.0
