@@ -132,6 +132,7 @@ class RunOptions:
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
     rig_faults: dict[str, Any] = field(default_factory=dict)
+    rig_link: str | None = None  # for port "sim": a link model (clampcore.links), wall clock only
     # "current" or "law" (PROTOCOL.md §10) instead of the experiment's [loop] mode; None: as set.
     mode: str | None = None
 
@@ -483,6 +484,7 @@ class Engine:
                 seed=self.options.seed,
                 log=self.options.rig_log,
                 realtime_priority=self.options.rig_realtime_priority,
+                link=self.options.rig_link,
                 **self.options.rig_faults,
             )
             port = self._rig.path

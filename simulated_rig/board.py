@@ -92,6 +92,7 @@ from clampcore.calibration import (
 )
 from clampcore.experiment import Experiment, load_experiment
 from clampcore.jit import kernel
+from clampcore.links import LINKS
 from clampcore.realtime import fifo_scheduling, fine_timer_slack
 from clampcore.rng import seed_state, uniform
 from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_ns, sleep_until_ns
@@ -286,6 +287,151 @@ _EVENT_NAMES = {
 # ---------------------------------------------------------------------------
 # Compiled per-sample path
 # ---------------------------------------------------------------------------
+# ---------------------------------------------------------------------------
+# Link models on the wall clock (clampcore.links): bytes are held until the link
+# would have delivered them.
+# ---------------------------------------------------------------------------
+_LINK_BYTES = 1 << 18  # bytes in flight each way: far more than 20 ms at 50 kHz
+_LINK_CHUNKS = 1 << 14  # writes (or reads) in flight each way
+LN_ON, LN_FRAME_NS, LN_TRANSIT_NS, LN_JITTER_NS = 0, 1, 2, 3
+# ends[i, 0]: ring position after chunk i; ends[i, 1]: when it is delivered (ns).
+Q_HEAD, Q_TAIL, Q_BYTES_IN, Q_BYTES_OUT, Q_LAST_NS = 0, 1, 2, 3, 4
+
+
+class LinkShape(NamedTuple):
+    """A link model's timing and the bytes it holds, each way (out: to the host)."""
+
+    p: np.ndarray  # int64[4]: LN_*
+    rng: np.ndarray  # uint64[1]: jitter stream
+    obuf: np.ndarray  # uint8[_LINK_BYTES]
+    oends: np.ndarray  # int64[_LINK_CHUNKS, 2]
+    oq: np.ndarray  # int64[5]: Q_*
+    ibuf: np.ndarray
+    iends: np.ndarray
+    iq: np.ndarray
+
+
+def new_link_shape(link_name: str | None, seed: int) -> LinkShape:
+    """The rig's link model ``link_name`` (a ``clampcore.links.LINKS`` name; None: direct pty)."""
+    p = np.zeros(4, dtype=np.int64)
+    if link_name is not None:
+        if link_name not in LINKS:
+            raise ValueError(f"link {link_name!r}: one of {', '.join(LINKS)}")
+        link = LINKS[link_name]
+        if link.baud > 0:
+            raise ValueError(f"link {link_name!r}: the wall-clock rig models USB links only")
+        p[LN_ON] = 1
+        p[LN_FRAME_NS] = round(link.frame_us * _NS_PER_US)
+        p[LN_TRANSIT_NS] = round(link.transit_us * _NS_PER_US)
+        p[LN_JITTER_NS] = round(link.jitter_us * _NS_PER_US)
+    return LinkShape(
+        p,
+        np.array([seed_state(seed, stream=0xF2)], dtype=np.uint64),
+        np.zeros(_LINK_BYTES, dtype=np.uint8),
+        np.zeros((_LINK_CHUNKS, 2), dtype=np.int64),
+        np.zeros(5, dtype=np.int64),
+        np.zeros(_LINK_BYTES, dtype=np.uint8),
+        np.zeros((_LINK_CHUNKS, 2), dtype=np.int64),
+        np.zeros(5, dtype=np.int64),
+    )
+
+
+@kernel
+def _link_due(ln: LinkShape, q: np.ndarray, now: int) -> int:
+    """When bytes handed to the link now are delivered: after the transit, at the next
+    (micro)frame boundary, plus jitter, and never before what went in earlier."""
+    t = now + ln.p[LN_TRANSIT_NS]
+    frame = ln.p[LN_FRAME_NS]
+    if frame > 0:
+        t = (t // frame + 1) * frame
+    if ln.p[LN_JITTER_NS] > 0:
+        t += int(uniform(ln.rng, 0) * ln.p[LN_JITTER_NS])
+    t = max(t, q[Q_LAST_NS])
+    q[Q_LAST_NS] = t
+    return t
+
+
+@kernel
+def _link_put(
+    ln: LinkShape,
+    buf: np.ndarray,
+    ends: np.ndarray,
+    q: np.ndarray,
+    src: np.ndarray,
+    n: int,
+    now: int,
+) -> bool:
+    """Queue src[:n]; False when the link is full (the bytes are lost, as on an overrun)."""
+    full = q[Q_TAIL] - q[Q_HEAD] >= ends.shape[0]
+    if full or q[Q_BYTES_IN] - q[Q_BYTES_OUT] + n > buf.shape[0]:
+        return False
+    mask = buf.shape[0] - 1
+    for i in range(n):
+        buf[(q[Q_BYTES_IN] + i) & mask] = src[i]
+    q[Q_BYTES_IN] += n
+    slot = q[Q_TAIL] & (ends.shape[0] - 1)
+    ends[slot, 0] = q[Q_BYTES_IN]
+    ends[slot, 1] = _link_due(ln, q, now)
+    q[Q_TAIL] += 1
+    return True
+
+
+@kernel
+def _link_send(fd: int, ln: LinkShape, tx: np.ndarray, n: int, now: int) -> int:
+    """Write tx[:n] to the host now, or hand it to the link model; bytes taken (or -1)."""
+    if ln.p[LN_ON] == 0:
+        return fd_write(fd, tx, 0, n)
+    return n if _link_put(ln, ln.obuf, ln.oends, ln.oq, tx, n, now) else -1
+
+
+@kernel
+def _link_flush(fd: int, ln: LinkShape, now: int) -> None:
+    """Deliver to the host every byte the link model has due by ``now``."""
+    q = ln.oq
+    mask = ln.obuf.shape[0] - 1
+    while q[Q_HEAD] < q[Q_TAIL]:
+        slot = q[Q_HEAD] & (ln.oends.shape[0] - 1)
+        if ln.oends[slot, 1] > now:
+            return
+        end = ln.oends[slot, 0]
+        while q[Q_BYTES_OUT] < end:
+            start = q[Q_BYTES_OUT] & mask
+            run = min(end - q[Q_BYTES_OUT], ln.obuf.shape[0] - start)
+            w = fd_write(fd, ln.obuf, start, run)
+            if w <= 0:
+                q[Q_BYTES_OUT] = end  # the host is not reading: lost, as on a serial line
+                break
+            q[Q_BYTES_OUT] += w
+        q[Q_HEAD] += 1
+
+
+@kernel
+def _link_read(fd: int, ln: LinkShape, chunk: np.ndarray, now: int) -> int:
+    """Bytes from the host: read now, or what the link model has delivered by ``now``."""
+    if ln.p[LN_ON] == 0:
+        return fd_read(fd, chunk, 0, chunk.shape[0])
+    got = fd_read(fd, chunk, 0, chunk.shape[0])
+    if got > 0:
+        _link_put(ln, ln.ibuf, ln.iends, ln.iq, chunk, got, now)
+    q = ln.iq
+    mask = ln.ibuf.shape[0] - 1
+    n = 0
+    while q[Q_HEAD] < q[Q_TAIL] and n < chunk.shape[0]:
+        slot = q[Q_HEAD] & (ln.iends.shape[0] - 1)
+        if ln.iends[slot, 1] > now:
+            break
+        end = ln.iends[slot, 0]
+        while q[Q_BYTES_OUT] < end and n < chunk.shape[0]:
+            chunk[n] = ln.ibuf[q[Q_BYTES_OUT] & mask]
+            q[Q_BYTES_OUT] += 1
+            n += 1
+        if q[Q_BYTES_OUT] == end:
+            q[Q_HEAD] += 1
+    if n > 0:
+        return n
+    return got if got < 0 else 0
+
+
 # The board's law queue: a power of two above any look-ahead the host asks for (the host's
 # default 10 ms is 500 samples at 50 kHz).
 LAW_QUEUE = 1024
@@ -597,13 +743,14 @@ def _pump(
     ev: np.ndarray,
     ts: np.ndarray,
     lb: LawBoard,
+    ln: LinkShape,
 ) -> bool:
     """Read and handle everything that has arrived; True when a message waits for Python."""
     while True:
         pos = st[S_CHUNK_POS]
         n = st[S_CHUNK_N]
         if pos >= n:
-            got = fd_read(fd, chunk, 0, chunk.shape[0])
+            got = _link_read(fd, ln, chunk, monotonic_ns(ts))
             if got <= 0:
                 st[S_CHUNK_POS] = 0
                 st[S_CHUNK_N] = 0
@@ -658,6 +805,7 @@ def _tick(
     log: np.ndarray,
     ev: np.ndarray,
     lb: LawBoard,
+    ln: LinkShape,
 ) -> None:
     """Take sample st[S_COUNTER]: watchdog, cell, ADC, SAMPLE, ground truth.
 
@@ -675,7 +823,7 @@ def _tick(
             st, ev, EV_WATCHDOG_TRIP, (st[S_LAST_RX_NS] - st[S_EPOCH_NS]) // _NS_PER_US, clock_us
         )
         nw = encode_status(st, 0, RESULT_REPORT, body, tx)
-        if fd_write(fd, tx, 0, nw) != nw:
+        if _link_send(fd, ln, tx, nw, now) != nw:
             st[S_TX_FAILED] += 1
         if st[S_LOCKSTEP] != 0:
             st[S_BASE_NS] = now  # no answers: sample on the wall clock from here
@@ -730,7 +878,7 @@ def _tick(
             _flip_data_byte(tx, n - 1, frng, 1)
             flags |= LOG_TX_CORRUPTED
             st[S_TX_CORRUPTED] += 1
-    if send and fd_write(fd, tx, 0, n) != n:
+    if send and _link_send(fd, ln, tx, n, now) != n:
         flags |= LOG_TX_FAILED
         st[S_TX_FAILED] += 1
     period_ns = _NS_PER_S // st[S_RATE_HZ]
@@ -797,6 +945,7 @@ def rig_serve(
     log: np.ndarray,
     ev: np.ndarray,
     lb: LawBoard,
+    ln: LinkShape,
 ) -> int:
     """Serve the port until Python is needed; returns an ``R_*`` reason.
 
@@ -807,6 +956,7 @@ def rig_serve(
     while True:
         if st[S_STOP] != 0:
             return R_STOP
+        _link_flush(fd, ln, monotonic_ns(ts))
         if _pump(
             fd,
             st,
@@ -824,6 +974,7 @@ def rig_serve(
             ev,
             ts,
             lb,
+            ln,
         ):
             return R_CONTROL
         now = monotonic_ns(ts)
@@ -888,6 +1039,7 @@ def rig_serve(
             log,
             ev,
             lb,
+            ln,
         )
         if now >= budget_end:
             return R_BUDGET
@@ -975,6 +1127,7 @@ class Board:
         lockstep_patience_s: float = LOCKSTEP_PATIENCE_S,
         wake_us: int | None = None,
         realtime_priority: int = 0,
+        link: str | None = None,
     ) -> None:
         if not (isinstance(lockstep_patience_s, int | float) and lockstep_patience_s >= 0):
             raise ValueError(f"lockstep_patience_s must be >= 0, got {lockstep_patience_s!r}")
@@ -1051,6 +1204,10 @@ class Board:
             self._spare_logs.put(np.zeros(_LOG_ROWS, dtype=LOG_DTYPE))
         self._ev = np.zeros((_EVENTS, _EV_COLS), dtype=np.int64)
         self.law_board = new_law_board()
+        if link is not None and clock != "wall":
+            raise ValueError("a link model needs the wall clock (lockstep time is virtual)")
+        self.link_name = link
+        self.link = new_link_shape(link, seed)
         self._stop_requested = False
         self._writer: LogWriter | None = None
         if log_path is not None:
@@ -1126,6 +1283,7 @@ class Board:
             self._log,
             self._ev,
             self.law_board,
+            self.link,
         )
         self._drain()
         if reason == R_CONTROL:
