@@ -22,7 +22,7 @@ from clampcore.calibration import (
     conversion_array,
     pA_to_counts,
 )
-from clampcore.engine import Engine, RunOptions, law_lead_samples
+from clampcore.engine import Engine, EngineError, RunOptions, law_lead_samples
 from clampcore.experiment import load_experiment
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.program import build_program
@@ -172,3 +172,32 @@ def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
     assert result.error is None, result.error
     assert result.samples >= 1000
     assert "current mode" in (result.notice or "")
+
+
+def test_live_changes_in_law_mode_reach_the_law_or_are_refused(tmp_path):
+    """A conductance change is part of the law: applied from the sample the host is making
+    laws for, and logged with it. A rule the board applies itself (the current limit) cannot
+    change behind the board's back, so it is refused with the reason."""
+    engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall"))
+    engine.start(duration_s=None, out=tmp_path / "live.nwb")
+    deadline = time.monotonic() + 60
+    while engine.status().get("samples", 0) < 2000:
+        assert time.monotonic() < deadline and engine.running
+        time.sleep(0.02)
+    try:
+        engine.change("loop", "max_current_pA", 300.0)
+    except EngineError as exc:
+        assert "law mode" in str(exc)
+    else:
+        raise AssertionError("a board-owned rule changed while running")
+    engine.change("extra_leak", "g_nS", 12.0)
+    time.sleep(0.3)
+    result = engine.finish()
+    assert result.error is None, result.error
+    rec = read_nwb_summary(result.nwb_path)
+    (change,) = [c for c in rec["param_changes"] if c.get("field") == "g_nS"]
+    g = rec["columns"]["g_nS/extra_leak"]
+    counters = rec["columns"]["sample_counter"].astype(np.int64)
+    first = int(np.flatnonzero(g == 12.0)[0])
+    assert np.all(g[:first] == 5.0) and np.all(g[first:] == 12.0)
+    assert counters[first] == change["sample"]
