@@ -15,6 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
+import clampcore
 from clampcore import linksim
 from clampcore.calibration import (
     DEFAULT_BOARD_ADC,
@@ -72,6 +73,10 @@ def test_lockstep_law_mode_equals_the_ideal_clamp(tmp_path):
     ideal = linksim.run(SUBTHRESHOLD, 0.3, mode="ideal")
     np.testing.assert_array_equal(rec["i_pA"], ideal.i_pA)
     np.testing.assert_array_equal(rec["columns"]["g_nS/nmda"], ideal.g_nS[:, 2])
+    offline = clampcore.simulate(SUBTHRESHOLD, 0.3)  # [loop] mode = "law": the same split
+    np.testing.assert_array_equal(rec["v_mV"], offline.v_mV)
+    np.testing.assert_array_equal(rec["i_pA"], offline.i_pA)
+    np.testing.assert_array_equal(rec["columns"]["i_pA/nmda"], offline.i_element_pA["nmda"])
     # Each element's current at the V the cell had: I = -g B(V) (V - E) with the host's V.
     i_exc = rec["columns"]["i_pA/exc"]
     np.testing.assert_allclose(i_exc, -rec["columns"]["g_nS/exc"] * rec["v_mV"], atol=1e-9)
