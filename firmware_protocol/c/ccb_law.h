@@ -10,6 +10,10 @@
  *   x = alpha - beta*adc + B(adc)*(alpha_b - beta_b*adc) [+ tr_alpha - tr_beta*adc]
  *   counts = clip(floor(clip(x, limit_lo, limit_hi) + 0.5), 0, dac_top)
  *
+ * counts = floor(x + 1/2) exactly (PROTOCOL.md section 6), not floorf(x + 0.5f), which
+ * rounds 0.49999997f up. An ADC count outside [adc_ok_lo, adc_ok_hi] advances neither
+ * the spike detector nor threshold-and-reset (as the host's step).
+ *
  * B is a table of the Mg2+ block that the host computes over the ADC range
  * (points 2^block_shift counts apart); the board interpolates it linearly.
  */
