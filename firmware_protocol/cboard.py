@@ -10,7 +10,7 @@ Public names:
 * ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
 * ``build_core_library(tmpdir) -> Path`` - shared library of the core plus the in-memory
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
-* ``build_law_library(tmpdir, opt="-O2") -> Path`` - shared library of the board's
+* ``build_law_library(tmpdir, opt="-O2", extra=()) -> Path`` - shared library of the board's
   per-sample arithmetic (``ccb_law.c``) for ctypes (see ``firmware_protocol.claw``).
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
 * ``build_pty_board(tmpdir) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
@@ -72,11 +72,18 @@ def build_core_library(tmpdir: str | os.PathLike[str]) -> Path:
 LAW_FLAGS = ("-ffp-contract=off",)
 
 
-def build_law_library(tmpdir: str | os.PathLike[str], opt: str = "-O2") -> Path:
-    """Compile ``ccb_law.c`` into ``tmpdir/libccb_law<opt>.so`` (``opt``: -O0, -O2, -Os ...)."""
-    out = Path(tmpdir) / f"libccb_law{opt}.so"
+def build_law_library(
+    tmpdir: str | os.PathLike[str], opt: str = "-O2", extra: tuple[str, ...] = ()
+) -> Path:
+    """Compile ``ccb_law.c`` into a shared library in ``tmpdir`` and return its path.
+
+    ``opt`` is the optimisation level (-O0, -O2, -Os ...), ``extra`` more flags (e.g.
+    ``-march=native``, which offers fused multiply-add where the machine has it).
+    """
+    out = Path(tmpdir) / f"libccb_law{opt}{''.join(extra)}.so"
     src = str(C_SOURCE_DIR / "ccb_law.c")
-    args = [*STRICT_FLAGS, opt, *LAW_FLAGS, "-fPIC", "-shared", src, "-o", str(out), "-lm"]
+    args = [*STRICT_FLAGS, opt, *extra, *LAW_FLAGS, "-fPIC", "-shared", src, "-o", str(out)]
+    args.append("-lm")
     _compile(args, "libccb_law")
     return out
 
