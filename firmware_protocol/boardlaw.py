@@ -84,12 +84,15 @@ BF_FLAG_NONFINITE = 0x80  # the law gave a non-finite value
 
 
 def new_board_arrays(table_points: int = 0) -> tuple[np.ndarray, ...]:
-    """Zeroed ``(bf, bi, bs, law, table)``: no law, detector armed, block off."""
+    """Zeroed ``(bf, bi, bs, law, table)``: no law, block off, detector disarmed.
+
+    The detector arms once V falls below the re-arm count, as the host's step (a run
+    that starts above threshold does not count a spike at its first sample).
+    """
     bf = np.zeros(N_BF, dtype=np.float32)
     bi = np.zeros(N_BI, dtype=np.int64)
     bi[BI_BLOCK_SHIFT] = -1
     bs = np.zeros(N_BS, dtype=np.int64)
-    bs[BS_ARMED] = 1
     bs[BS_LAW_SAMPLE] = -1
     return bf, bi, bs, np.zeros(N_LAW, dtype=np.float32), np.ones(table_points, np.float32)
 

@@ -101,7 +101,7 @@ class LawLibrary:
         self._lib = lib
 
     def reset(self, state: LawState) -> None:
-        """``ccb_law_reset``: no law, detector armed, zero request off."""
+        """``ccb_law_reset``: no law, detector disarmed, zero request off."""
         self._lib.ccb_law_reset(ctypes.byref(state))
 
     def set(self, state: LawState, law: Law, sample: int) -> None:

@@ -8,7 +8,7 @@
 
 void ccb_law_reset(ccb_law_state *s)
 {
-    s->armed = 1;
+    s->armed = 0; /* arms below rearm_adc, as the host's step: no spike at a first sample */
     s->tr_remain = 0;
     s->law_sample = -1;
     s->hold_zero = 0;

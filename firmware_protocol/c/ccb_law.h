@@ -61,7 +61,7 @@ typedef struct {
     ccb_law law;        /* the law in force */
 } ccb_law_state;
 
-/* No law, detector armed, zero request off. */
+/* No law, detector disarmed (it arms once adc < rearm_adc), zero request off. */
 void ccb_law_reset(ccb_law_state *s);
 /* Put a law made for sample `sample` in force (call at that sample). */
 void ccb_law_set(ccb_law_state *s, const ccb_law *law, int64_t sample);

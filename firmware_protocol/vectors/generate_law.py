@@ -223,6 +223,13 @@ def _cases() -> list[dict[str, Any]]:
     laws = {0: _law(-350.0, 5.0), 20: _law(100.0, 2.0)}
     cases.append(_case("threshold_reset", "reset law and spike flags", arr, _steps(adcs, laws)))
 
+    # 3b. A run that starts above the detector's threshold (-20 mV, re-arm below -30 mV):
+    # no spike until V has been below the re-arm level (the host's step does the same).
+    arr = _experiment(leak, lifetime=100)
+    adcs = [_adc(v) for v in (-10.0, -10.0, -25.0, -10.0, -35.0, -10.0, -10.0, -31.0, -19.0)]
+    steps = _steps(adcs, {0: _law(0.0, 1.0)})
+    cases.append(_case("starts_above_threshold", "detector disarmed at start", arr, steps))
+
     # 4. A short lifetime: a law set at s is in force through s + 3, stale at s + 4.
     arr = _experiment(leak, lifetime=3)
     adcs = [_adc(-70.0)] * 16
