@@ -38,7 +38,7 @@ from clampcore.law import LAW_MODE, block_table, board_arrays, law_scale, law_to
 from clampcore.program import build_program
 from clampcore.step import LS_CELL_SPIKED, step
 from firmware_protocol import boardlaw as bl
-from firmware_protocol.cboard import build_law_library, find_c_compiler
+from firmware_protocol.cboard import C_SOURCE_DIR, STRICT_FLAGS, build_law_library, find_c_compiler
 from firmware_protocol.claw import Law, LawLibrary, LawParams, LawState
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -197,6 +197,25 @@ def test_c_core_reproduces_every_vector(c_libs: dict[str, LawLibrary], variant: 
         assert _run_case(CBoard(c_libs[variant], bf, bi, table), case) == _expected(case), case[
             "name"
         ]
+
+
+def test_the_vectors_catch_a_board_built_with_fused_multiply_add(tmp_path: Path) -> None:
+    # A fused multiply-add rounds once where two roundings are specified (IEEE 754-2008
+    # fusedMultiplyAdd); case no_fused_multiply_add lands exactly on n + 1/2 only with two.
+    cc = find_c_compiler()
+    cpu = Path("/proc/cpuinfo")
+    if cc is None or not cpu.exists() or " fma" not in cpu.read_text():
+        pytest.skip("needs a C compiler and a processor with fused multiply-add")
+    out = tmp_path / "libccb_law_fma.so"
+    src = str(C_SOURCE_DIR / "ccb_law.c")
+    flags = ["-O2", "-march=native", "-ffp-contract=fast", "-fPIC", "-shared"]
+    proc = subprocess.run([cc, *STRICT_FLAGS, *flags, src, "-o", str(out), "-lm"], check=False)
+    if proc.returncode != 0:
+        pytest.skip("the compiler does not build -march=native")
+    (case,) = [c for c in VECTORS["cases"] if c["name"] == "no_fused_multiply_add"]
+    bf, bi, _, _, table = GEN.case_arrays(case)
+    got = _run_case(CBoard(LawLibrary(out), bf, bi, table), case)
+    assert all(g != e for g, e in zip(got, _expected(case), strict=True))
 
 
 # ------------------------------------------------- independent evaluation ---

@@ -294,6 +294,26 @@ def _cases() -> list[dict[str, Any]]:
         for alpha in ((a + 1) // 2, (a - 1) // 2, (a - 3) // 2, 40000):
             steps.append((len(steps), a, _raw(alpha, 0.5), False))
     cases.append(_case("exact_halves", "rounding x = n + 1/2", arr, steps))
+
+    # 10. Laws whose x is exactly n + 1/2 when every product is rounded on its own, and
+    # falls below it when a product is fused into the next sum (a multiply-add): a
+    # board compiled with contraction gives n instead of n + 1. Found by a random search
+    # (numpy float32 against exact fractions); the last four go through the block term.
+    bf, bi, bs, law, table = _experiment([*leak, nmda], lifetime=1000)
+    bf[bl.BF_LIMIT_LO], bf[bl.BF_LIMIT_HI] = -4.0, 65539.0
+    arr = (bf, bi, bs, law, table)
+    fused = [
+        (32416, _raw(120930.8828125, 2.702782154083252)),
+        (31815, _raw(8126.904296875, 0.17153558135032654)),
+        (34307, _raw(-83575.703125, -2.957448959350586)),
+        (38836, _raw(126921.3125, 2.9293134212493896)),
+        (37661, _raw(-63496.7890625, 0.0, -18520.564453125, -2.5106842517852783)),
+        (34307, _raw(53861.30078125, 0.0, 8743.25390625, 1.3194563388824463)),
+        (35367, _raw(100603.625, 0.0, -16086.0068359375, 2.047368049621582)),
+        (38836, _raw(-35011.60546875, 0.0, 15498.3515625, -0.8412784337997437)),
+    ]
+    steps = [(k, adc, law, False) for k, (adc, law) in enumerate(fused)]
+    cases.append(_case("no_fused_multiply_add", "rounding per operation", arr, steps))
     return cases
 
 
