@@ -24,8 +24,8 @@ a link never reorders. Host stalls (the host computes nothing for ``stall_ms``, 
 a second at a random phase) defer whatever the host would do during them.
 
 Byte counts use protocol v2's message sizes (PROTOCOL.md §10): a batch of n
-samples going up is 16 + 5n bytes on the wire, m laws going down 12 + 8m (16m with
-a blocked law), at most 30 laws a message; a current-mode command is 13 bytes.
+samples going up is 17 + 5n bytes on the wire, m laws going down 17 + 8m (16m with
+a blocked law), at most 29 laws a message; a current-mode command is 13 bytes.
 
 Public names: ``Link``, ``LINKS``, ``Schedule``, ``schedule``, ``up_bytes``, ``law_bytes``.
 """
@@ -40,10 +40,10 @@ import numpy as np
 _US_PER_S = 1_000_000.0
 _BITS_PER_UART_BYTE = 10  # start + 8 data + stop bits (8N1)
 _BRIDGE_PACKET_BYTES = 62  # a full-speed bridge's 64-byte packet less its 2 status bytes
-_UP_FIXED_BYTES = 16  # SAMPLES: type, seq, first counter, clock, count, CRC, COBS, 0x00
+_UP_FIXED_BYTES = 17  # SAMPLES: type, seq, first, clock, status, count, CRC, COBS, 0x00
 _UP_PER_SAMPLE = 5  # ADC count, DAC count, flags
-_LAW_FIXED_BYTES = 12  # LAWS: type, seq, first sample, count, CRC, COBS, 0x00
-_LAWS_PER_MESSAGE = 30  # (254 - 10) // 8: the payload limit of one frame
+_LAW_FIXED_BYTES = 17  # LAWS: type, seq, seen, first, count, blocked, CRC, COBS, 0x00
+_LAWS_PER_MESSAGE = 29  # firmware_protocol.lawmsg.MAX_LAWS: the payload limit of one frame
 _COMMAND_BYTES = 13  # a current-mode COMMAND on the wire
 
 

@@ -54,6 +54,7 @@ from clampcore.law import (
 from clampcore.links import LINKS, Link, schedule
 from clampcore.program import build_program
 from clampcore.step import (
+    LS_CELL_SPIKED,
     LS_LAW_A_PA,
     LS_LAW_AB_PA,
     LS_LAW_G_NS,
@@ -166,6 +167,11 @@ def link_loop(
                     cmd_pA[w] = step(
                         v_host, m, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s
                     )
+                    # In current mode the host detects the cell's spikes (and runs
+                    # threshold_reset): its decision replaces the board's.
+                    out_flags[m] &= ~BF_FLAG_SPIKE
+                    if loop_s[LS_CELL_SPIKED] != 0.0:
+                        out_flags[m] |= BF_FLAG_SPIKE
                     _put_row(out_g, m, g_out)
                     _put_row(out_i_el, m, i_out)
             seen = max(seen, newest)
@@ -197,7 +203,8 @@ def link_loop(
                 current_to_law(scale, cmd_pA[newest_cmd], new_law)
                 board_set_law(bs, law, new_law, k)
             packed = board_eval(adc, k, bf, bi, bs, law, table)
-            out_flags[k] = packed >> 16
+            # The host's spike decision for sample k may already be in (see above).
+            out_flags[k] = ((packed >> 16) & ~BF_FLAG_SPIKE) | (out_flags[k] & BF_FLAG_SPIKE)
             i_applied = counts_to_pA(conv, packed & 0xFFFF)
         out_i[k] = i_applied
     if law_mode:

@@ -147,6 +147,21 @@ SECTION_FIELDS: dict[str, tuple[Field, ...]] = {
         # membrane stays within about +-150 mV (common practice).
         _f("v_fault_mV", 200.0, "positive", live=False),
         _f("extra_delay_samples", 0, "int", live=False, doc="offline simulation only"),
+        _f(
+            "mode",
+            "current",
+            "choice",
+            live=False,
+            choices=("current", "law"),
+            doc="current: the host computes each current from the newest V it has; law: the "
+            "board evaluates the current law, sent ahead, at its own V (PROTOCOL.md §10)",
+        ),
+        # Law mode's look-ahead: a jitter buffer well above a USB link's 1-2 ms round trip
+        # (full-speed USB's 1 ms frames both ways; common practice).
+        _f("lead_ms", 10.0, "positive", live=False, doc="law mode: laws computed this far ahead"),
+        # How long the board may hold the newest law past its own sample: short, because a
+        # negative leak or a pure current is not self-limiting (PROTOCOL.md §10.3).
+        _f("lifetime_ms", 2.0, "positive", live=False, doc="law mode: then 0 pA"),
     ),
     "cell": (
         _f("model", "passive", "choice", live=False, choices=("passive", "hh")),
