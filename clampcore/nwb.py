@@ -377,13 +377,13 @@ class _Writer:
     def build(self) -> Any:
         self.response = self.stimulus = None
         spikes = {}
-        for name, values in self.data.columns.items():
+        # The counter first: the timing module's description says how to rebuild it.
+        order = sorted(self.data.columns.items(), key=lambda kv: kv[0] != "sample_counter")
+        for name, values in order:
             if _column_kind(name)[0] == "spike":
                 spikes[name] = values
             else:
                 self.add_column(name, values)
-        if self.first_counter is not None and _TIMING_MODULE in self.modules:
-            self.modules[_TIMING_MODULE].description = _timing_description(self.first_counter)
         nwbfile = self.nwbfile
         if self.response is not None:
             nwbfile.add_acquisition(self.response)
