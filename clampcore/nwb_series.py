@@ -41,6 +41,7 @@ from typing import Any
 import numpy as np
 
 from clampcore.calibration import DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, Converter
+from clampcore.jit import kernel
 
 # Filter chosen by measurement (bench/bench_recording.py prints gzip levels and lzf side by
 # side): gzip level 1 with HDF5's byte shuffle gave nearly the size of level 4 to 9 on
@@ -249,31 +250,51 @@ def rebuild_counter(first: int, n: int, rows: np.ndarray, missing: np.ndarray) -
     return (first + np.arange(n, dtype=np.int64) + np.cumsum(extra)).astype(np.float64)
 
 
-def e_schedule(e_mV: float, changes: list[tuple[int, float]], n: int) -> np.ndarray:
-    """Reversal potential per row: ``e_mV``, then each ``(row, value)`` change from its row on."""
+def e_schedule(e_mV: float, changes: list[tuple[int, float]], n: int) -> float | np.ndarray:
+    """Reversal potential per row: ``e_mV``, then each ``(row, value)`` change from its row
+    on; a plain number when it never changed."""
+    if not changes:
+        return float(e_mV)
     e = np.full(n, float(e_mV))
     for row, value in sorted(changes, key=lambda rv: rv[0]):
         e[max(int(row), 0) :] = float(value)
     return e
 
 
-def derive_current(g_nS: np.ndarray, v_mV: np.ndarray, e_mV: np.ndarray) -> np.ndarray:
+def derive_current(g_nS: np.ndarray, v_mV: np.ndarray, e_mV: float | np.ndarray) -> np.ndarray:
     """``I = -g (V - E)`` in pA (nS x mV = pA; positive current depolarises)."""
-    return -np.asarray(g_nS, dtype=np.float64) * (np.asarray(v_mV, dtype=np.float64) - e_mV)
+    out = np.subtract(v_mV, e_mV, dtype=np.float64)
+    np.multiply(out, g_nS, out=out)
+    return np.negative(out, out=out)
+
+
+@kernel
+def _within_float32(i_pA: np.ndarray, g32: np.ndarray, v_mV: np.ndarray, e_mV: np.ndarray) -> bool:
+    # |-g (V - E) - I| <= 2^-22 |g (V - E)|: float32 rounding of g is 2^-24 relative, with a
+    # margin of 4x for the float64 products; one pass, no temporaries.
+    scalar = e_mV.shape[0] == 1
+    for k in range(i_pA.shape[0]):
+        e = e_mV[0] if scalar else e_mV[k]
+        derived = -np.float64(g32[k]) * (v_mV[k] - e)
+        if not abs(derived - i_pA[k]) <= 2.0**-22 * abs(derived) + 1e-300:
+            return False  # also for NaN
+    return True
 
 
 def current_is_derivable(
-    i_pA: np.ndarray, g32: np.ndarray, v_mV: np.ndarray, e_mV: np.ndarray
+    i_pA: np.ndarray, g32: np.ndarray, v_mV: np.ndarray, e_mV: float | np.ndarray
 ) -> bool:
     """True when ``-g (V - E)`` from the float32 conductance equals the journal's current to
-    float32 precision: |difference| <= 2^-22 |g (V - E)| (float32 rounding of g is 2^-24
-    relative; a margin of 4x for the float64 products), elementwise."""
-    i = np.asarray(i_pA, dtype=np.float64)
-    if not np.all(np.isfinite(i)):
-        return False
-    derived = derive_current(g32, v_mV, e_mV)
-    bound = 2.0**-22 * np.abs(derived) + 1e-300
-    return bool(np.all(np.abs(derived - i) <= bound))
+    float32 precision, sample by sample."""
+    e = np.atleast_1d(np.asarray(e_mV, dtype=np.float64))
+    return bool(
+        _within_float32(
+            np.asarray(i_pA, dtype=np.float64),  # views of the journal's table: no copy
+            np.asarray(g32, dtype=np.float32),
+            np.asarray(v_mV, dtype=np.float64),
+            e,
+        )
+    )
 
 
 def dataset(array: np.ndarray, compression: tuple[str, int | None] | None = COMPRESSION) -> Any:
