@@ -43,9 +43,11 @@ import numpy as np
 from clampcore.calibration import DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, Converter
 from clampcore.jit import kernel
 
-# Filter chosen by measurement (bench/bench_recording.py prints gzip levels and lzf side by
-# side): gzip level 1 with HDF5's byte shuffle gave nearly the size of level 4 to 9 on
-# recordings at well under half their time; lzf was faster still but about 1.5x larger.
+# Filter chosen by measurement (bench/bench_recording.py, README): with HDF5's byte shuffle,
+# gzip level 1 came within 3% of levels 4 and 9 in size (10.9x, 11.2x, 11.4x smaller than
+# the first layout) at the least time of the three (level 9 took twice as long); lzf was
+# about a quarter faster but 10% larger, and h5py itself warns that lzf "may not be
+# available on all installations of HDF5" (other NWB readers could not open the file).
 COMPRESSION: tuple[str, int | None] = ("gzip", 1)
 # Rows per HDF5 chunk: 2^16 samples (3.3 s at 20 kHz) keeps chunks of a few hundred kB for
 # the widest types, within HDF5's advice of 10 kB - 1 MB per chunk (HDF5 documentation,
