@@ -20,11 +20,10 @@ def _trace(ax: Any, t: np.ndarray, y: np.ndarray, **kw: Any) -> None:
     if y.size <= 2 * _ENVELOPE_BINS:
         ax.plot(t, y, lw=0.6, **kw)
         return
-    width = y.size // _ENVELOPE_BINS
-    n = width * _ENVELOPE_BINS
-    blocks = y[:n].reshape(_ENVELOPE_BINS, width)
-    tb = t[:n:width]
-    ax.fill_between(tb, blocks.min(axis=1), blocks.max(axis=1), lw=0.4, **kw)
+    width = -(-y.size // _ENVELOPE_BINS)  # ceil: the last bin may be shorter, none is lost
+    starts = np.arange(0, y.size, width)
+    lo, hi = np.minimum.reduceat(y, starts), np.maximum.reduceat(y, starts)
+    ax.fill_between(t[starts], lo, hi, lw=0.4, **kw)
 
 
 def plot_recording(

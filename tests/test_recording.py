@@ -206,3 +206,22 @@ def test_show_a_slice_of_a_new_recording(tmp_path, capsys):
     assert (tmp_path / "new.png").exists()
     assert main(["show", str(path), "--from", "2", "--to", "3"]) == 1  # outside: one-line error
     assert "outside the recording" in capsys.readouterr().err
+
+
+def test_long_traces_keep_every_sample_in_their_envelope():
+    """The figure draws long traces as min/max per bin: every sample, up to the last, is
+    inside (reference: the trace's own extremes and its last time)."""
+    from clampcore.plot import _trace
+
+    class Axis:
+        def fill_between(self, t, lo, hi, **kw):
+            self.t, self.lo, self.hi = t, lo, hi
+
+    rate = 10_000.0
+    y = np.random.default_rng(0).normal(size=10_001)  # 1 s + 1 sample: bins do not divide it
+    y[-1] = 50.0  # a spike on the very last sample
+    t = np.arange(y.size) / rate
+    ax = Axis()
+    _trace(ax, t, y)
+    assert ax.hi.max() == 50.0 and ax.lo.min() == y.min()
+    assert ax.t[-1] <= t[-1] and t[-1] - ax.t[-1] < y.size / 4000 / rate
