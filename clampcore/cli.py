@@ -188,7 +188,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("experiment")
     p.add_argument("--port", required=True, help="device path, pyserial URL, or 'sim'")
     p.add_argument("--duration", type=float, default=None, help="seconds (default: until Ctrl-C)")
-    p.add_argument("--out", help="recording path (.nwb; a .journal folder is kept beside it)")
+    p.add_argument("--out", help="recording path (.nwb; its journal goes once the file is checked)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--watchdog-ms", type=float, default=20.0, help="board watchdog (default 20)")
     p.add_argument("--spin-us", type=float, default=30.0, help="spin before sleeping (µs)")

@@ -240,7 +240,7 @@ class _Writer:
                 kw["resolution"] = conversion  # one ADC count
                 how = (
                     "Stored as the board's ADC counts: volts = data x conversion + offset "
-                    "(lossless)."
+                    f"(lossless; converters: {self.cal.origin})."
                 )
                 spec = {"encoding": "adc_counts"}
                 self.calibration_used = True
@@ -268,7 +268,7 @@ class _Writer:
                 how = (
                     "Stored as the DAC counts sent to the board: amperes = data x conversion + "
                     "offset, the current commanded (the value the step computed, rounded to "
-                    "the nearest DAC count)."
+                    f"the nearest DAC count; converters: {self.cal.origin})."
                 )
                 spec = {"encoding": "dac_counts"}
                 self.calibration_used = True

@@ -35,6 +35,7 @@ Public names: ``Calibration``, ``calibration_from_meta``, ``adc_to_mV``, ``dac_t
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -204,21 +205,35 @@ def dac_nwb_scale(cal: Calibration) -> tuple[float, float]:
     return pA_per_count * 1e-12, offset_pA * 1e-12  # pA -> A
 
 
+@kernel
+def _integer_survey(v: np.ndarray) -> tuple:
+    """One pass: (all whole numbers >= 0 or NaN, any NaN, largest whole number)."""
+    top = 0.0
+    has_nan = False
+    for k in range(v.shape[0]):
+        x = v[k]
+        if x != x:
+            has_nan = True
+        elif not (x >= 0.0 and x == math.floor(x) and x < 4294967296.0):
+            return False, has_nan, top
+        elif x > top:
+            top = x
+    return True, has_nan, top
+
+
 def smallest_uint(values: np.ndarray) -> tuple[np.ndarray, int | None] | None:
     """``(array, unknown)``: whole numbers >= 0 in the smallest unsigned type; NaN becomes the
     type's largest value ``unknown`` (None when there is no NaN). None if not whole numbers."""
     v = np.asarray(values, dtype=np.float64)
-    known = np.isfinite(v)
-    finite = v[known]
-    if np.any(np.isinf(v)) or np.any(finite < 0) or np.any(finite != np.floor(finite)):
+    whole, has_unknown, top = _integer_survey(v)
+    if not whole:
         return None
-    top = float(finite.max()) if finite.size else 0.0
-    has_unknown = not bool(known.all())
     for dtype in (np.uint8, np.uint16, np.uint32):
         limit = np.iinfo(dtype).max
         if top < limit or (top == limit and not has_unknown):
-            out = np.where(known, v, limit if has_unknown else 0).astype(dtype)
-            return out, (int(limit) if has_unknown else None)
+            if not has_unknown:
+                return v.astype(dtype), None
+            return np.where(np.isnan(v), limit, v).astype(dtype), int(limit)
     return None
 
 

@@ -65,6 +65,12 @@ def test_counts_equal_the_rigs_ground_truth(lockstep_run):
         assert v.dtype == np.uint16 and i.dtype == np.uint16  # counts, as integers
         assert v.compression == "gzip" and v.shuffle and v.chunks is not None
         v_counts, i_counts = v[:], i[:]
+        timing = f["processing/loop_timing"]
+        for name in ("flags", "board_status", "latency_samples"):  # smallest integer type
+            assert timing[name]["data"].dtype == np.uint8, name
+        assert "sample_counter" not in timing  # no gaps in lockstep: nothing stored
+        assert "sample_counter_gaps" not in timing
+        assert "current_background_exc" not in f["processing/virtual_conductances"]  # derived
     back = read_nwb_summary(result.nwb_path)
     counter = back["columns"]["sample_counter"].astype(np.int64)
     # Reference: the rig's ground-truth log, the ADC count it sent for each sample counter.
@@ -225,3 +231,38 @@ def test_long_traces_keep_every_sample_in_their_envelope():
     _trace(ax, t, y)
     assert ax.hi.max() == 50.0 and ax.lo.min() == y.min()
     assert ax.t[-1] <= t[-1] and t[-1] - ax.t[-1] < y.size / 4000 / rate
+
+
+def test_compact_bytes_per_row_bounds_the_file(tmp_path):
+    """compact_bytes_per_row is an upper bound of what a second of recording adds to the file
+    (reference: the files' sizes on disk, at the margin between 1 s and 2 s)."""
+    from clampcore.nwb import compact_bytes_per_row
+
+    rec = clampcore.simulate(EXAMPLES / "slice_background.toml", 2.0, seed=1)
+    sizes = []
+    for seconds in (1.0, 2.0):
+        part = clampcore.simulate(EXAMPLES / "slice_background.toml", seconds, seed=1)
+        sizes.append(part.save(tmp_path / f"{seconds}.nwb").stat().st_size)
+    rows = rec.v_mV.size // 2
+    bound = compact_bytes_per_row(list(rec.columns()))
+    assert bound == 2 + 2 + 4 * 5 + 4 * 5  # V, I counts; 5 conductances, 5 currents float32
+    assert (sizes[1] - sizes[0]) / rows <= bound
+
+
+def test_counter_gaps_and_small_integers_worked_examples():
+    from clampcore.nwb_series import counter_gaps, from_uint, rebuild_counter, smallest_uint
+
+    # Worked example: counter 10, 11, 14, 15, 20 lost 2 samples before row 2, 4 before row 4.
+    counter = np.array([10, 11, 14, 15, 20], dtype=np.float64)
+    first, rows, missing = counter_gaps(counter)
+    assert (first, rows.tolist(), missing.tolist()) == (10, [2, 4], [2, 4])
+    np.testing.assert_array_equal(rebuild_counter(first, 5, rows, missing), counter)
+    assert counter_gaps(np.array([3.0, 3.0])) is None  # not increasing: stored as a series
+    # Reference for the limits: numpy's iinfo (uint8 holds 0..255).
+    latency = np.array([1, 2, np.nan, 254])
+    data, unknown = smallest_uint(latency)
+    assert data.dtype == np.uint8 and unknown == np.iinfo(np.uint8).max
+    np.testing.assert_array_equal(from_uint(data, unknown), latency)
+    data, unknown = smallest_uint(np.array([0, 255, np.nan]))  # 255 taken: the next type
+    assert data.dtype == np.uint16 and unknown == np.iinfo(np.uint16).max
+    assert smallest_uint(np.array([0.5])) is None and smallest_uint(np.array([-1.0])) is None
