@@ -95,6 +95,25 @@ _VC_MODULE = (
     "(see data_collection, 'columns').",
 )
 _TIMING_MODULE = "loop_timing"
+_V_SERIES, _I_SERIES = "membrane_potential", "command_current"
+# Per clamp series: description, journal unit, its size in SI, how counts are stored.
+_CLAMP_TEXT = {
+    "v": (
+        "Membrane potential measured by the amplifier, one value per loop sample (after "
+        "clampcore's calibration and liquid-junction correction). ",
+        "mV",
+        _MV_IN_V,
+        "Stored as the board's ADC counts, lossless: volts = data x conversion + offset",
+    ),
+    "i": (
+        "Total command current computed from each sample (positive depolarises); in force "
+        "from the next sample on (plus any extra delay). ",
+        "pA",
+        _PA_IN_A,
+        "Stored as the DAC counts sent to the board: amperes = data x conversion + offset, "
+        "the current commanded (the value the step computed, rounded to the nearest count)",
+    ),
+}
 
 
 class NwbError(ValueError):
@@ -225,93 +244,70 @@ class _Writer:
                 return array, {"encoding": "uint", "unknown": unknown}, note
         return np.asarray(values, dtype=np.float64), {"encoding": "float64"}, ""
 
-    def add_column(self, name: str, values: np.ndarray) -> None:
+    def _clamp(self, kind: str, column: str, values: np.ndarray) -> Any:
+        """The membrane potential (``kind`` "v") or the command ("i") as a current-clamp
+        series on the electrode: converter counts when the calibration allows, else float64."""
         from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
 
+        if kind == "v":
+            counts = ns.mV_to_adc_exact(values, self.cal) if self.cal else None
+            scale, cls, group = ns.adc_nwb_scale, CurrentClampSeries, "acquisition"
+            name = _V_SERIES
+        else:
+            known = self.cal is not None and self.cal.dac_known
+            counts = ns.pA_to_dac(values, self.cal) if known else None
+            scale, cls, group = ns.dac_nwb_scale, CurrentClampStimulusSeries, "stimulus"
+            name = _I_SERIES
+        what, unit, unit_in_si, counts_text = _CLAMP_TEXT[kind]
+        if counts is not None:
+            conversion, offset = scale(self.cal)
+            # resolution: one count
+            kw = {"data": counts, "conversion": conversion, "offset": offset}
+            kw["resolution"] = conversion
+            how = f"{counts_text} (converters: {self.cal.origin})."
+            encoding = "adc_counts" if kind == "v" else "dac_counts"
+            self.calibration_used = True
+        else:
+            kw = {"data": values, "conversion": unit_in_si}
+            how, encoding = f"Stored in {unit} (float64).", "float64"
+        kw["data"] = ns.dataset(kw["data"], self.compression)
+        self.columns[column] = {"path": f"{group}/{name}", "encoding": encoding}
+        return cls(
+            name=name,
+            electrode=self.electrode,
+            description=what + how,
+            comments=f"clampcore journal column '{column}'",
+            stimulus_description="dynamic clamp (see stimulus_notes)",
+            **kw,
+            **self.common,
+        )
+
+    def add_column(self, name: str, values: np.ndarray) -> None:
         kind, element = _column_kind(name)
         values = np.asarray(values, dtype=np.float64)
         comment = f"clampcore journal column '{name}'"
         f32 = "float32" if self.compact else "float64"
         if kind == "v":
-            counts = ns.mV_to_adc_exact(values, self.cal) if self.cal else None
-            if counts is not None:
-                conversion, offset = ns.adc_nwb_scale(self.cal)
-                kw = {"data": counts, "conversion": conversion, "offset": offset}
-                kw["resolution"] = conversion  # one ADC count
-                how = (
-                    "Stored as the board's ADC counts: volts = data x conversion + offset "
-                    f"(lossless; converters: {self.cal.origin})."
-                )
-                spec = {"encoding": "adc_counts"}
-                self.calibration_used = True
-            else:
-                kw = {"data": values, "conversion": _MV_IN_V}
-                how = "Stored in mV (float64)."
-                spec = {"encoding": "float64"}
-            kw["data"] = ns.dataset(kw["data"], self.compression)
-            self.response = CurrentClampSeries(
-                name="membrane_potential",
-                electrode=self.electrode,
-                description="Membrane potential measured by the amplifier, one value per loop "
-                "sample (after clampcore's calibration and liquid-junction correction). " + how,
-                comments=comment,
-                stimulus_description="dynamic clamp (see stimulus_notes)",
-                **kw,
-                **self.common,
-            )
-            self.columns[name] = {"path": "acquisition/membrane_potential", **spec}
+            self.response = self._clamp(kind, name, values)
         elif kind == "i":
-            if self.cal is not None and self.cal.dac_known:
-                conversion, offset = ns.dac_nwb_scale(self.cal)
-                kw = {"data": ns.pA_to_dac(values, self.cal), "conversion": conversion}
-                kw.update(offset=offset, resolution=conversion)
-                how = (
-                    "Stored as the DAC counts sent to the board: amperes = data x conversion + "
-                    "offset, the current commanded (the value the step computed, rounded to "
-                    f"the nearest DAC count; converters: {self.cal.origin})."
-                )
-                spec = {"encoding": "dac_counts"}
-                self.calibration_used = True
-            else:
-                kw = {"data": values, "conversion": _PA_IN_A}
-                how = "Stored in pA (float64) as computed."
-                spec = {"encoding": "float64"}
-            kw["data"] = ns.dataset(kw["data"], self.compression)
-            self.stimulus = CurrentClampStimulusSeries(
-                name="command_current",
-                electrode=self.electrode,
-                description="Total command current computed from each sample (positive "
-                "depolarises); in force from the next sample on (plus any extra delay). " + how,
-                comments=comment,
-                stimulus_description="dynamic clamp (see stimulus_notes)",
-                **kw,
-                **self.common,
-            )
-            self.columns[name] = {"path": "stimulus/command_current", **spec}
-        elif kind == "g":
-            path = self._series(
-                _VC_MODULE,
-                f"conductance_{nwb_name(element)}",
-                values.astype(f32),
-                unit="siemens",
-                conversion=_NS_IN_S,  # data in nS
-                description=f"Conductance of virtual element '{element}' ({f32} nS).",
-                comments=comment,
-                **self.common,
-            )
-            self.columns[name] = {"path": path, "encoding": f32}
-        elif kind == "ie":
-            derived = self._derivable(element, values)
+            self.stimulus = self._clamp(kind, name, values)
+        elif kind in ("g", "ie"):
+            derived = self._derivable(element, values) if kind == "ie" else None
             if derived is not None:
                 self.columns[name] = derived
                 return
+            stem, unit, unit_in_si, short = (
+                ("conductance", "siemens", _NS_IN_S, "nS")
+                if kind == "g"
+                else ("current", "amperes", _PA_IN_A, "pA")
+            )
             path = self._series(
                 _VC_MODULE,
-                f"current_{nwb_name(element)}",
+                f"{stem}_{nwb_name(element)}",
                 values.astype(f32),
-                unit="amperes",
-                conversion=_PA_IN_A,  # data in pA
-                description=f"Current of virtual element '{element}' ({f32} pA).",
+                unit=unit,
+                conversion=unit_in_si,  # data in the journal's nS or pA
+                description=f"{stem.capitalize()} of virtual element '{element}' ({f32} {short}).",
                 comments=comment,
                 **self.common,
             )

@@ -49,22 +49,23 @@ def summary_text(summary: dict[str, Any], lo: float, hi: float) -> str:
         n = int(np.count_nonzero((times >= lo) & (times < hi)))
         lines.append(f"spikes {name}: {n} ({n / span:.2f} Hz)")
     columns = summary["columns"]
-    lat = columns.get("latency_samples")
-    if lat is not None:
-        lat = lat[rows][np.isfinite(lat[rows])]
-        if lat.size:
-            lines.append(
-                f"latency: p50 {np.percentile(lat, 50):.0f}, p99 {np.percentile(lat, 99):.0f}, "
-                f"max {lat.max():.0f} samples; within 1 sample {np.mean(lat <= 1):.2%}"
-            )
-    turn = columns.get("turnaround_us")
-    if turn is not None:
-        turn = turn[rows][np.isfinite(turn[rows])]
-        if turn.size:
-            lines.append(
-                f"host turnaround: p50 {np.percentile(turn, 50):.1f}, "
-                f"p99.9 {np.percentile(turn, 99.9):.1f}, max {turn.max():.1f} µs"
-            )
+
+    def known(name: str) -> np.ndarray:  # the slice's known values of a column
+        values = columns.get(name, np.zeros(0))[rows]
+        return values[np.isfinite(values)]
+
+    lat = known("latency_samples")
+    if lat.size:
+        lines.append(
+            f"latency: p50 {np.percentile(lat, 50):.0f}, p99 {np.percentile(lat, 99):.0f}, "
+            f"max {lat.max():.0f} samples; within 1 sample {np.mean(lat <= 1):.2%}"
+        )
+    turn = known("turnaround_us")
+    if turn.size:
+        lines.append(
+            f"host turnaround: p50 {np.percentile(turn, 50):.1f}, "
+            f"p99.9 {np.percentile(turn, 99.9):.1f}, max {turn.max():.1f} µs"
+        )
     counter = columns.get("sample_counter")
     if counter is not None and counter[rows].size > 1:
         missing = int(np.sum(np.diff(counter[rows]) - 1))
