@@ -128,6 +128,8 @@ class RunOptions:
     # Do the serial I/O with pyserial from Python (slower) instead of inside the compiled
     # loop: what ports without a file descriptor (some pyserial URLs) always get.
     python_io: bool = False
+    # Keep the journal after the NWB file was written and checked (default: removed).
+    keep_journal: bool = False
     rig_clock: str = "wall"  # for port "sim": the simulated rig's clock
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
@@ -629,7 +631,7 @@ class Engine:
         }
         nwb = None
         try:
-            nwb = self.recorder.stop(final, self.nwb_path)
+            nwb = self.recorder.stop(final, self.nwb_path, self.options.keep_journal)
         finally:
             self.shared.close()
         timing = self.recorder.final_meta.get("timing", {})
