@@ -15,7 +15,7 @@ applies. All four are compiled and read one float64 array ``conv`` built by
 
 Public names: ``Converter``, ``DEFAULT_BOARD_ADC``, ``DEFAULT_BOARD_DAC``,
 ``conversion_array``, ``counts_to_mV``, ``pA_to_counts``, ``mV_to_counts``,
-``counts_to_pA``, ``current_range_pA``.
+``counts_to_pA``, ``current_range_pA``, ``limit_refusal``.
 """
 
 from __future__ import annotations
@@ -97,3 +97,19 @@ def current_range_pA(conv: np.ndarray) -> tuple[float, float]:
     """The lowest and highest current the DAC and amplifier can command, pA."""
     ends = (counts_to_pA(conv, 0.0), counts_to_pA(conv, conv[C_DAC_TOP]))
     return min(ends), max(ends)
+
+
+def limit_refusal(range_pA: tuple[float, float], limit_pA: float) -> str | None:
+    """Why a current limit of ±``limit_pA`` cannot be used, or None when it can.
+
+    ``range_pA`` is what board and amplifier can command (``current_range_pA``). The
+    one rule for both Start and a live change of ``max_current_pA``: a clipped command
+    must be a current the cell can really receive, so the recording never shows more.
+    """
+    lo, hi = range_pA
+    if lo > -limit_pA or hi < limit_pA:
+        return (
+            f"the board and amplifier can command {lo:.0f}..{hi:.0f} pA, "
+            f"which cannot represent max_current_pA = ±{limit_pA:g}"
+        )
+    return None

@@ -1,11 +1,14 @@
 """The parameter editor: every section and element of an experiment, field by field.
 
 Each field shows its value, its unit and whether it can change while the loop
-runs. A value typed in is parsed by ``parse_value`` and handed to the window's
-``submit`` callback, which validates it with the experiment loader's rules and
-either sends it to the running loop or keeps it for the next run; a refused
-value stays on screen marked invalid, with the reason, and nothing is sent.
-Elements can be switched on and off, removed, and added from the list of kinds.
+runs. A value typed in counts only when Enter is pressed: it is parsed by
+``parse_value`` and handed to the window's ``submit`` callback, which validates
+it with the experiment loader's rules and either sends it to the running loop or
+keeps it for the next run. A refused value is not sent: the field goes back to
+the value in force and is marked, with the reason beside it. Leaving a field
+without Enter applies nothing and also puts back the value in force, so the form
+always shows what the loop holds. Elements can be switched on and off, removed,
+and added from the list of kinds.
 
 Public names: ``ParameterEditor``, ``parse_value``, ``format_value``, ``unit_of``,
 ``Target``, ``SECTIONS``.
@@ -18,7 +21,7 @@ import re
 from collections.abc import Callable
 from typing import Any
 
-from PySide6 import QtCore, QtWidgets
+from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.experiment import Experiment
 from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, KINDS, SECTION_FIELDS, Field
@@ -107,6 +110,17 @@ def format_value(field: Field, value: Any) -> str:
 
 # submit(target, field, value) -> None when accepted, else the reason it was refused.
 SubmitFn = Callable[[Target, str, Any], str | None]
+
+
+class _FieldEdit(QtWidgets.QLineEdit):
+    """A text field that reports losing focus (other than to its own context menu)."""
+
+    left = QtCore.Signal()
+
+    def focusOutEvent(self, event: QtGui.QFocusEvent) -> None:
+        super().focusOutEvent(event)
+        if event.reason() != QtCore.Qt.FocusReason.PopupFocusReason:
+            self.left.emit()
 
 
 class _FieldRow:
@@ -301,11 +315,13 @@ class ParameterEditor(QtWidgets.QWidget):
                 lambda _i, t=target, n=f.name, box=w: self._send(t, n, box.currentText(), None)
             )
         else:
-            w = QtWidgets.QLineEdit(format_value(f, value))
+            w = _FieldEdit(format_value(f, value))
             w.setReadOnly(not editable)
             if not editable:
                 w.setStyleSheet("color: #8a9099;")
-            w.editingFinished.connect(lambda t=target, n=f.name, e=w: self._on_text(t, n, e))
+            # Only Enter applies; leaving the field puts back the value in force.
+            w.returnPressed.connect(lambda t=target, n=f.name, e=w: self._on_text(t, n, e))
+            w.left.connect(lambda t=target, n=f.name, e=w: self._on_leave(t, n, e))
         w.setObjectName(key)
         w.setToolTip(_describe(f))
         return w
@@ -343,22 +359,35 @@ class ParameterEditor(QtWidgets.QWidget):
         if row is None or edit.isReadOnly():
             return
         text = edit.text()
-        if text == row.shown_text and row.invalid_reason is None:
-            return  # nothing changed (editingFinished also fires on losing focus)
+        if text == row.shown_text:
+            return  # nothing changed
         try:
             value = parse_value(row.field, text)
         except ValueError as exc:
-            self._mark(target, field_name, str(exc))
+            self._mark(target, field_name, str(exc), text)
+            self._restore(target, field_name)
             return
         self._send(target, field_name, value, text)
+
+    def _on_leave(self, target: Target, field_name: str, edit: QtWidgets.QLineEdit) -> None:
+        """Focus left a field: whatever was typed without Enter is dropped, not applied."""
+        row = self._rows.get((target, field_name))
+        if row is None or edit.isReadOnly() or edit.text() == row.shown_text:
+            return
+        dropped = edit.text()
+        self._restore(target, field_name)
+        self.message.setStyleSheet(_NEXT_RUN_STYLE)
+        self.message.setText(
+            f"Not applied: {target[1]}.{field_name} '{dropped}' (press Enter to apply); "
+            f"it stays {row.shown_text}"
+        )
 
     def _send(self, target: Target, field_name: str, value: Any, text: str | None) -> None:
         reason = self._submit(target, field_name, value)
         row = self._rows.get((target, field_name))
         if reason is not None:
-            self._mark(target, field_name, reason)
-            if row is not None and not isinstance(row.widget, QtWidgets.QLineEdit):
-                self._restore(target, field_name)  # a box or a check cannot show a bad value
+            self._mark(target, field_name, reason, text)
+            self._restore(target, field_name)  # the form shows what is in force
             return
         if row is not None:
             row.shown_text = text if text is not None else format_value(row.field, value)
@@ -369,21 +398,27 @@ class ParameterEditor(QtWidgets.QWidget):
         )
 
     def _restore(self, target: Target, field_name: str) -> None:
+        """Show the value in force again (what the loop holds, or will start with)."""
         row = self._rows[(target, field_name)]
         exp = self.experiment
         if exp is None:
             return
         values = getattr(exp, target[1]) if target[0] == "section" else exp.element(target[1])
-        value = values.get(field_name)
+        value = values.get(field_name, row.field.default)
         w = row.widget
         w.blockSignals(True)
         if isinstance(w, QtWidgets.QCheckBox):
             w.setChecked(bool(value))
         elif isinstance(w, QtWidgets.QComboBox):
             w.setCurrentText(str(value))
+        elif isinstance(w, QtWidgets.QLineEdit):
+            row.shown_text = format_value(row.field, value)
+            w.setText(row.shown_text)
         w.blockSignals(False)
 
-    def _mark(self, target: Target, field_name: str, reason: str | None) -> None:
+    def _mark(
+        self, target: Target, field_name: str, reason: str | None, text: str | None = None
+    ) -> None:
         row = self._rows.get((target, field_name))
         if row is None:
             return
@@ -401,12 +436,17 @@ class ParameterEditor(QtWidgets.QWidget):
             if row.note.text().startswith("refused"):
                 row.note.setText("live" if self._running else "")
         else:
+            typed = f" '{text}'" if text is not None else ""
             w.setStyleSheet(_INVALID_STYLE)
-            w.setToolTip(f"refused, not sent: {reason}")
+            w.setToolTip(f"refused{typed}, not sent: {reason}")
             row.note.setText("refused")
+            row.note.setToolTip(reason)
             row.note.setStyleSheet("color: #ff5a5a; font-weight: bold;")
             self.message.setStyleSheet("color: #ff7f7f;")
-            self.message.setText(f"Refused, not sent: {target[1]}.{field_name}: {reason}")
+            self.message.setText(
+                f"Refused, not sent: {target[1]}.{field_name}{typed}: {reason} "
+                "(the field shows the value in force)"
+            )
 
     def _suggest_name(self) -> None:
         if self.experiment is None:
@@ -421,15 +461,35 @@ class ParameterEditor(QtWidgets.QWidget):
     def _on_add(self) -> None:
         if self.add_requested is None:
             return
-        reason = self.add_requested(self.add_kind.currentText(), self.add_name.text().strip())
-        self._report(reason, f"added {self.add_name.text().strip()}")
+        name = self.add_name.text().strip()  # before the rebuilt form suggests the next name
+        reason = self.add_requested(self.add_kind.currentText(), name)
+        self.report(reason, f"added {name}")
+        if reason is None:
+            self.focus_element(name)
 
     def _on_remove(self, name: str) -> None:
-        if self.remove_requested is None:
-            return
-        self._report(self.remove_requested(name), f"removed {name}")
+        if self.remove_requested is not None:
+            self.remove_requested(name)  # the window asks first during a run, then reports
 
-    def _report(self, reason: str | None, done: str) -> None:
+    def focus_element(self, name: str) -> None:
+        """Scroll to element ``name`` and put the cursor in its first editable field."""
+        if self._body is None:
+            return
+        box = self._body.findChild(QtWidgets.QGroupBox, f"element:{name}")
+        if box is None:
+            return
+        self._body.adjustSize()
+        self.scroll.ensureWidgetVisible(box, 0, 0)
+        for (target, _field), row in self._rows.items():
+            w = row.widget
+            mine = target == ("element", name)
+            if mine and isinstance(w, QtWidgets.QLineEdit) and not w.isReadOnly():
+                w.setFocus(QtCore.Qt.FocusReason.OtherFocusReason)
+                w.selectAll()
+                return
+
+    def report(self, reason: str | None, done: str) -> None:
+        """Say below the form that ``done`` happened, or why not (``reason``)."""
         if reason:
             self.message.setStyleSheet("color: #ff7f7f;")
             self.message.setText(f"Refused: {reason}")

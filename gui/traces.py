@@ -345,6 +345,17 @@ class TracePanel(QtWidgets.QWidget):
         """Stop reading the ring (before the run's shared memory closes)."""
         self.shared = None
 
+    def clear(self) -> None:
+        """Forget the last run's traces (another experiment is shown)."""
+        self.detach()
+        self._dec = None
+        self._spikes = None
+        for curve in (self.v_curve, self.i_curve, *self._g_curves.values(), *self._rate_curves):
+            curve.setData([], [])
+        self.spike_marks.setData([], [])
+        for item in self._raster_items:
+            item.setData([], [])
+
     def _build_run_items(self) -> None:
         for check in self._g_checks.values():
             self._g_box.removeWidget(check)

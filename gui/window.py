@@ -11,6 +11,12 @@ Layout, top to bottom: the run bar (state, port, Connect, Start, Stop, where
 recordings go, the zero-current control), the alarm banner, then the traces on
 the left and tabs on the right (Parameters, Loop health, Log).
 
+Safety controls stay in reach whatever else is open: Esc is caught by an
+application-wide event filter (modal dialogs, menus and text fields cannot keep
+it from holding 0 pA), and the window's own dialogs are not modal, so the
+zero-current button can always be clicked. Quitting, opening another experiment
+or removing an element during a run first asks, saying what will happen.
+
 Public names: ``TuningWindow``, ``REFRESH_HZ``, ``ZERO_SHORTCUT``.
 """
 
@@ -77,6 +83,26 @@ class _Job:
         return self.done
 
 
+class _ZeroKeyFilter(QtCore.QObject):
+    """Esc anywhere in the application holds 0 pA (an application-wide event filter).
+
+    It sees the key before any widget, dialog or menu does; it lets the key go on
+    (Esc still closes the dialog or menu it was pressed in).
+    """
+
+    def __init__(self, window: TuningWindow) -> None:
+        super().__init__(window)
+        self._window = window
+
+    def eventFilter(self, obj: QtCore.QObject, event: QtCore.QEvent) -> bool:
+        kind = event.type()
+        if kind in (QtCore.QEvent.Type.KeyPress, QtCore.QEvent.Type.ShortcutOverride):
+            key_event = event  # a QKeyEvent
+            if key_event.key() == QtCore.Qt.Key.Key_Escape and not key_event.isAutoRepeat():
+                self._window.set_zero_current(True)
+        return False
+
+
 def _copy_experiment(exp: Experiment) -> Experiment:
     """An independent experiment equal to ``exp`` (the loader's own round trip)."""
     out = load_experiment(exp.to_dict())
@@ -134,6 +160,11 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._slot_names: dict[tuple[float, int, int], tuple[str, str]] | None = None
         self._ticks = 0
         self._state = ""
+        self._saved = self.experiment.to_dict()  # what the file holds: unsaved edits differ
+        self._pending_open: Path | None = None  # opened once the stopping run is written
+        self._close_confirmed = False
+        self.question: QtWidgets.QMessageBox | None = None  # the open question, if any
+        self.dialog: QtWidgets.QFileDialog | None = None  # the open file dialog, if any
         self.setWindowTitle("clampcore — tuning")
         self.resize(1500, 920)
 
@@ -142,7 +173,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.traces = TracePanel()
         self.editor = ParameterEditor(self._submit)
         self.editor.add_requested = self.add_element
-        self.editor.remove_requested = self.remove_element
+        self.editor.remove_requested = self.request_remove
         self.editor.fileAction.connect(self._file_action)
         self.health = HealthPanel()
         self.log = QtWidgets.QPlainTextEdit()
@@ -168,11 +199,11 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.setCentralWidget(central)
         self._build_menu()
 
-        self.zero_action = QtGui.QAction("Zero current", self)
-        self.zero_action.setShortcut(QtGui.QKeySequence(ZERO_SHORTCUT))
-        self.zero_action.setShortcutContext(QtCore.Qt.ShortcutContext.ApplicationShortcut)
-        self.zero_action.triggered.connect(lambda: self.set_zero_current(True))
-        self.addAction(self.zero_action)
+        # Esc: caught before any widget, dialog or menu can take it (see _ZeroKeyFilter).
+        self._zero_filter = _ZeroKeyFilter(self)
+        app = QtWidgets.QApplication.instance()
+        if app is not None:
+            app.installEventFilter(self._zero_filter)
 
         self.timer = QtCore.QTimer(self)
         self.timer.setTimerType(QtCore.Qt.TimerType.PreciseTimer)
@@ -256,7 +287,7 @@ class TuningWindow(QtWidgets.QMainWindow):
             action.setShortcut(QtGui.QKeySequence(key))
             action.triggered.connect(slot)
         menu.addSeparator()
-        menu.addAction("&Quit", QtGui.QKeySequence.StandardKey.Quit, self.close)
+        menu.addAction("&Quit", QtGui.QKeySequence.StandardKey.Quit, self.request_quit)
 
     # ------------------------------------------------------------------ state
     @property
@@ -390,12 +421,19 @@ class TuningWindow(QtWidgets.QMainWindow):
         return self.result
 
     def set_zero_current(self, on: bool = True) -> None:
-        """Hold the injected current at 0 pA (True) or give it back to the elements."""
+        """Hold the injected current at 0 pA (True) or give it back to the elements.
+
+        The loop sees it at once (a shared control word it reads every sample).
+        """
+        changed = self._zero_held != bool(on)
         self._zero_held = bool(on)
         if self.engine is not None and self._finishing is None:
             self.engine.set_zero_current(self._zero_held)
-        self._style_zero()
-        self._note("current held at 0 pA" if on else "current released to the elements")
+        if changed:
+            self._style_zero()
+            self._note("current held at 0 pA" if on else "current released to the elements")
+        elif self.zero_button.isChecked() != on:
+            self._style_zero()
 
     def _style_zero(self) -> None:
         held = self._zero_held
@@ -490,6 +528,9 @@ class TuningWindow(QtWidgets.QMainWindow):
                 self._set_state("stopped", f"{result.exit_reason} · {where}")
         self.editor.set_experiment(self.experiment)
         self.traces.show_experiment(self.experiment)
+        if self._pending_open is not None:
+            path, self._pending_open = self._pending_open, None
+            self._show_file_result(self.load_file(path))
 
     # ------------------------------------------------------------------ edits
     def _submit(self, target: Target, field: str, value: Any) -> str | None:
@@ -537,6 +578,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         if not checked.amplifier_given:
             checked.amplifier = dict(old.amplifier)
         self.experiment = checked
+        self.editor.experiment = checked  # what a refused or dropped value snaps back to
 
     def add_element(self, kind: str, name: str) -> str | None:
         """Add an element with default values; None when added, else why not."""
@@ -552,6 +594,38 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._refresh_editor()
         self._note(f"added {kind} '{name}'" + (" (next run)" if self.running else ""))
         return None
+
+    def request_remove(self, name: str) -> None:
+        """The form's Remove: during a run, ask first (the element is switched off now)."""
+        runs_now = (
+            self.running
+            and self.engine is not None
+            and any(e["name"] == name for e in self.engine.experiment.elements)
+        )
+        if not runs_now:
+            self.editor.report(self.remove_element(name), f"removed {name}")
+            return
+        engine = self.engine
+
+        def remove() -> None:
+            if self.engine is not engine or not self.running:
+                self.editor.report(self.remove_element(name), f"removed {name}")
+                return
+            try:  # it would go on injecting until the next start: off now, at a sample boundary
+                engine.change(name, "enabled", False)
+            except (ExperimentError, KeyError, RuntimeError) as exc:
+                self.editor.report(f"cannot switch {name!r} off: {exc}", "")
+                return
+            self._note(f"switched '{name}' off (removed from the next run)")
+            self.editor.report(self.remove_element(name), f"removed {name}; switched off now")
+
+        self._ask(
+            f"Remove {name}?",
+            f"'{name}' is running. It is switched off now (it injects nothing from the next "
+            "sample on) and is left out of the next run. The recording goes on.",
+            "Switch off and remove",
+            remove,
+        )
 
     def remove_element(self, name: str) -> str | None:
         """Remove an element; None when removed, else why not."""
@@ -579,8 +653,38 @@ class TuningWindow(QtWidgets.QMainWindow):
             self.traces.show_experiment(self.experiment)
 
     # ------------------------------------------------------------------ files
+    @property
+    def unsaved(self) -> bool:
+        """The experiment differs from the file it came from (or was saved to)."""
+        return self.experiment.to_dict() != self._saved
+
+    def request_open(self, path: Path | str) -> None:
+        """Open ``path`` as the form's Open does: first asks when a run or edits would be lost."""
+        path = Path(path)
+        consequences = []
+        if self.running:
+            assert self.engine is not None
+            consequences.append(
+                f"The run is stopped (0 pA, board stopped) and its recording is written to "
+                f"{self.engine.nwb_path}."
+            )
+        if self.unsaved:
+            consequences.append("Unsaved edits to the current experiment are discarded.")
+        if not consequences:
+            self._show_file_result(self.load_file(path))
+            return
+
+        def go() -> None:
+            if self.running:
+                self._pending_open = path
+                self.stop_run()
+            else:
+                self._show_file_result(self.load_file(path))
+
+        self._ask(f"Open {path.name}?", " ".join(consequences), "Open", go)
+
     def load_file(self, path: Path | str) -> str | None:
-        """Open an experiment file; None when loaded, else why not."""
+        """Open an experiment file; None when loaded, else why not (no question asked)."""
         if self.running:
             return "stop the run before opening another experiment"
         try:
@@ -589,8 +693,11 @@ class TuningWindow(QtWidgets.QMainWindow):
             return str(exc)
         self.experiment = exp
         self.experiment_path = Path(path)
+        self._saved = exp.to_dict()
         self.editor.set_experiment(exp)
+        self.traces.clear()  # the last run's traces do not belong to this experiment
         self.traces.show_experiment(exp)
+        self.banner.reset()
         self._update_title()
         self._note(f"opened {path}")
         return None
@@ -611,24 +718,77 @@ class TuningWindow(QtWidgets.QMainWindow):
             return f"not saved: {exc}"
         self.experiment.path = path
         self.experiment_path = path
+        self._saved = self.experiment.to_dict()
         self._update_title()
         self._note(f"saved {path}")
         return None
 
     def _file_action(self, what: str) -> None:
+        """Open or save through a file dialog that does not block the rest of the window."""
         start = str(self.experiment_path or Path.cwd())
         if what == "load":
-            path, _ = QtWidgets.QFileDialog.getOpenFileName(
-                self, "Open experiment", start, "Experiment (*.toml)"
-            )
-            if path:
-                self._show_file_result(self.load_file(path))
+            self._file_dialog("Open experiment", start, False, self.request_open)
         else:
-            path, _ = QtWidgets.QFileDialog.getSaveFileName(
-                self, "Save experiment", start, "Experiment (*.toml)"
+            self._file_dialog(
+                "Save experiment", start, True, lambda p: self._show_file_result(self.save_file(p))
             )
-            if path:
-                self._show_file_result(self.save_file(path))
+
+    def _file_dialog(self, title: str, start: str, save: bool, chosen: Any) -> None:
+        _close_quietly(self.dialog)
+        dialog = QtWidgets.QFileDialog(self, title, start, "Experiment (*.toml)")
+        dialog.setAcceptMode(
+            QtWidgets.QFileDialog.AcceptMode.AcceptSave
+            if save
+            else QtWidgets.QFileDialog.AcceptMode.AcceptOpen
+        )
+        dialog.setFileMode(
+            QtWidgets.QFileDialog.FileMode.AnyFile
+            if save
+            else QtWidgets.QFileDialog.FileMode.ExistingFile
+        )
+        if save:
+            dialog.setDefaultSuffix("toml")
+        self._show_modeless(dialog)
+        dialog.fileSelected.connect(chosen)
+        self.dialog = dialog
+
+    @staticmethod
+    def _show_modeless(dialog: QtWidgets.QDialog) -> None:
+        """Show ``dialog`` without blocking the window: the zero-current button stays usable."""
+        dialog.setWindowModality(QtCore.Qt.WindowModality.NonModal)
+        dialog.setAttribute(QtCore.Qt.WidgetAttribute.WA_DeleteOnClose)
+        dialog.show()
+
+    def _ask(self, title: str, text: str, yes: str, on_yes: Any) -> None:
+        """Ask a yes/no question without blocking the window; ``on_yes()`` if confirmed."""
+        _close_quietly(self.question)
+        box = QtWidgets.QMessageBox(self)
+        box.setWindowTitle(title)
+        box.setIcon(QtWidgets.QMessageBox.Icon.Question)
+        box.setText(title)
+        box.setInformativeText(text)
+        yes_button = box.addButton(yes, QtWidgets.QMessageBox.ButtonRole.AcceptRole)
+        box.addButton(QtWidgets.QMessageBox.StandardButton.Cancel)
+        box.setDefaultButton(QtWidgets.QMessageBox.StandardButton.Cancel)
+
+        def answered(button: QtWidgets.QAbstractButton) -> None:
+            self.question = None
+            if button is yes_button:
+                on_yes()
+
+        box.buttonClicked.connect(answered)
+        self._show_modeless(box)
+        self.question = box
+
+    def answer(self, yes: bool) -> None:
+        """Answer the open question (for scripts and tests)."""
+        box = self.question
+        if box is None:
+            raise RuntimeError("no question is open")
+        buttons = box.buttons()
+        role = QtWidgets.QMessageBox.ButtonRole.AcceptRole
+        chosen = next(b for b in buttons if (box.buttonRole(b) == role) == yes)
+        chosen.click()
 
     def _save_here(self) -> None:
         if self.experiment_path is None:
@@ -643,15 +803,52 @@ class TuningWindow(QtWidgets.QMainWindow):
             self._note(reason)
 
     def _choose_record_dir(self) -> None:
-        path = QtWidgets.QFileDialog.getExistingDirectory(
-            self, "Record into", self.record_dir.text()
-        )
-        if path:
-            self.record_dir.setText(path)
+        _close_quietly(self.dialog)
+        dialog = QtWidgets.QFileDialog(self, "Record into", self.record_dir.text())
+        dialog.setFileMode(QtWidgets.QFileDialog.FileMode.Directory)
+        dialog.setOption(QtWidgets.QFileDialog.Option.ShowDirsOnly, True)
+        self._show_modeless(dialog)
+        dialog.fileSelected.connect(self.record_dir.setText)
+        self.dialog = dialog
 
     # ------------------------------------------------------------------ closing
+    def request_quit(self) -> None:
+        """Quit (Ctrl+Q, the window's close button): asks first if a run or edits would go."""
+        consequences = []
+        if self.running:
+            assert self.engine is not None
+            consequences.append(
+                "The run is stopped (0 pA, board stopped) and its recording is written to "
+                f"{self.engine.nwb_path} before the window closes."
+            )
+        if self.unsaved:
+            consequences.append("Unsaved edits to the experiment are discarded.")
+        if not consequences:
+            self._close_confirmed = True
+            self.close()
+            return
+
+        def go() -> None:
+            self._close_confirmed = True
+            self.close()
+
+        self._ask("Quit clampcore?", " ".join(consequences), "Quit", go)
+
     def closeEvent(self, event: QtGui.QCloseEvent) -> None:
-        """Closing the window stops a run cleanly (0 pA, board stopped, NWB written)."""
+        """Closing the window stops a run cleanly (0 pA, board stopped, NWB written).
+
+        Closed by the user (the title bar's button) during a run or with unsaved
+        edits, it asks first; closed by a program (``close()``), it does not.
+        """
+        if event.spontaneous() and not self._close_confirmed and (self.running or self.unsaved):
+            event.ignore()
+            self.request_quit()
+            return
+        app = QtWidgets.QApplication.instance()
+        if app is not None:
+            app.removeEventFilter(self._zero_filter)
+        _close_quietly(self.question)
+        _close_quietly(self.dialog)
         self.timer.stop()
         if self.engine is not None:
             if self._finishing is None:
@@ -660,6 +857,13 @@ class TuningWindow(QtWidgets.QMainWindow):
             self._finishing.wait(30.0)
             self._tick()
         super().closeEvent(event)
+
+
+def _close_quietly(widget: QtWidgets.QWidget | None) -> None:
+    """Close a dialog that may already be closed (and deleted by Qt)."""
+    if widget is not None:
+        with contextlib.suppress(RuntimeError):
+            widget.close()
 
 
 def _hello_text(link: Any, where: str) -> str:
