@@ -60,8 +60,14 @@ class AlarmBanner(QtWidgets.QFrame):
         self.level = ""
         self.hide()
 
-    def update_from(self, health: dict[str, Any]) -> None:
-        """Raise (or escalate) the banner when a counter has grown since acknowledged."""
+    def update_from(
+        self, health: dict[str, Any], limit_episodes: int = 0, beyond_pA: float = 0.0
+    ) -> None:
+        """Raise (or escalate) the banner when a counter has grown since acknowledged.
+
+        ``limit_episodes`` and ``beyond_pA`` (how often the limit was reached and the
+        most the elements asked beyond it) say how often and by how much.
+        """
         latest = Alarm(health["faults"], health["watchdog"], health["limited"])
         self._latest = latest
         new_faults = latest.faults - self.seen.faults
@@ -73,7 +79,13 @@ class AlarmBanner(QtWidgets.QFrame):
         if new_watchdog > 0:
             parts.append(f"WATCHDOG: the board held its fault output for {new_watchdog} samples")
         if new_limited > 0:
-            parts.append(f"CURRENT LIMIT: {new_limited} samples clipped to ±max_current_pA")
+            share = latest.limited / max(health["samples"], 1)
+            often = f" in {limit_episodes} episodes" if limit_episodes > 1 else ""
+            much = f", asked up to {beyond_pA:.0f} pA beyond it" if beyond_pA > 0 else ""
+            parts.append(
+                f"CURRENT LIMIT: {new_limited:,} samples clipped to ±max_current_pA "
+                f"({share:.1%} of the run{often}{much})"
+            )
         if not parts:
             return
         level = "fault" if (new_faults > 0 or new_watchdog > 0) else "limit"

@@ -408,7 +408,9 @@ class TuningWindow(QtWidgets.QMainWindow):
         engine = self.engine
         if engine is None or self._finishing is not None:
             return
-        self.traces.detach()  # before the shared memory closes
+        self._log_changes()
+        self.traces.detach()  # before the shared memory closes (takes the last rows)
+        self._log_events()
         self._finishing = _Job("clampcore-finish", engine.finish)
         self._set_state("stopping", "0 pA, stopping the board, writing the recording…")
 
@@ -477,8 +479,9 @@ class TuningWindow(QtWidgets.QMainWindow):
             health = loop_health(stats, engine.experiment.loop["rate_hz"])
             if self._ticks % _HEALTH_EVERY == 0 or self.tabs.currentWidget() is self.health:
                 self.health.update_from(health)
-            self.banner.update_from(health)
+            self.banner.update_from(health, *self.traces.limit_summary())
             self._log_changes()
+            self._log_events()
             elapsed = health["samples"] / engine.experiment.loop["rate_hz"]
             zero = "  ·  0 pA HELD" if self._zero_held else ""
             self._set_state("running", f"{elapsed:.1f} s  ·  {engine.nwb_path.name}{zero}")
@@ -488,6 +491,11 @@ class TuningWindow(QtWidgets.QMainWindow):
         elif state in (STATE_STOPPED, STATE_FAILED) or not engine.running:
             self._log_changes()
             self.stop_run()
+
+    def _log_events(self) -> None:
+        """Events found on the traces, timed, into the Log."""
+        for ev in self.traces.take_events():
+            self._note(ev.text)
 
     def _log_changes(self) -> None:
         engine = self.engine
@@ -501,9 +509,10 @@ class TuningWindow(QtWidgets.QMainWindow):
             key = (ch["array"], ch["row"], ch["col"])
             element, field = (self._slot_names or {}).get(key, ("?", "?"))
             self._note(
-                f"applied {element}.{field} = {ch['value']:g} at sample {ch['sample']} "
-                f"(t = {ch['sample'] / rate:.4f} s)"
+                f"t = {ch['sample'] / rate:.3f} s: applied {element}.{field} = {ch['value']:g} "
+                f"(sample {ch['sample']})"
             )
+            self.traces.add_marker(ch["sample"], "param", f"{field} {ch['value']:g}")
             self._changes_logged = ch["number"] + 1
 
     def _finished(self) -> None:
