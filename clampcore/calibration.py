@@ -15,7 +15,8 @@ applies. All four are compiled and read one float64 array ``conv`` built by
 
 Public names: ``Converter``, ``DEFAULT_BOARD_ADC``, ``DEFAULT_BOARD_DAC``,
 ``conversion_array``, ``counts_to_mV``, ``pA_to_counts``, ``mV_to_counts``,
-``counts_to_pA``, ``current_range_pA``, ``limit_refusal``.
+``counts_to_pA``, ``current_range_pA``, ``current_limit_problem``,
+``range_limit_problem``.
 """
 
 from __future__ import annotations
@@ -99,17 +100,25 @@ def current_range_pA(conv: np.ndarray) -> tuple[float, float]:
     return min(ends), max(ends)
 
 
-def limit_refusal(range_pA: tuple[float, float], limit_pA: float) -> str | None:
-    """Why a current limit of ±``limit_pA`` cannot be used, or None when it can.
+def current_limit_problem(conv: np.ndarray, max_current_pA: float) -> str | None:
+    """Why ``max_current_pA`` cannot be honoured through these converters, or None.
 
-    ``range_pA`` is what board and amplifier can command (``current_range_pA``). The
-    one rule for both Start and a live change of ``max_current_pA``: a clipped command
-    must be a current the cell can really receive, so the recording never shows more.
+    The rule for every run, live or offline: the DAC and amplifier must reach ±limit, or a
+    command inside the limit would be clipped silently at the converter.
+    """
+    return range_limit_problem(current_range_pA(conv), max_current_pA)
+
+
+def range_limit_problem(range_pA: tuple[float, float], max_current_pA: float) -> str | None:
+    """``current_limit_problem`` for a known range (lo, hi) of commandable current, pA.
+
+    A running loop publishes its board's range; a live change of the limit passes this
+    same rule as Start, so the recording never shows a current the cell did not receive.
     """
     lo, hi = range_pA
-    if lo > -limit_pA or hi < limit_pA:
+    if lo > -max_current_pA or hi < max_current_pA:
         return (
             f"the board and amplifier can command {lo:.0f}..{hi:.0f} pA, "
-            f"which cannot represent max_current_pA = ±{limit_pA:g}"
+            f"which cannot represent max_current_pA = ±{max_current_pA:g}"
         )
     return None

@@ -43,8 +43,8 @@ import numpy as np
 from clampcore.board_link import BoardError, BoardLink, board_converters
 from clampcore.calibration import (
     conversion_array,
+    current_limit_problem,
     current_range_pA,
-    limit_refusal,
     pA_to_counts,
 )
 from clampcore.elements import KIND_NEURON
@@ -189,11 +189,10 @@ def _loop_process(
             )
         adc, dac = board_converters(hello)
         conv = conversion_array(adc, dac, exp.amplifier)
-        current_range = current_range_pA(conv)
-        refusal = limit_refusal(current_range, exp.loop["max_current_pA"])
-        if refusal:
-            raise EngineError(f"refusing to start: {refusal}")
-        shared.publish_current_range(*current_range)  # live limit changes obey the same rule
+        problem = current_limit_problem(conv, exp.loop["max_current_pA"])
+        if problem:
+            raise EngineError(f"refusing to start: {problem}")
+        shared.publish_current_range(*current_range_pA(conv))  # live changes: the same rule
         rate = round(exp.loop["rate_hz"])
         if rate > hello.max_rate_hz:
             raise EngineError(

@@ -18,7 +18,7 @@ import numpy as np
 
 from clampcore import elements as el_mod
 from clampcore import step as step_mod
-from clampcore.calibration import limit_refusal
+from clampcore.calibration import range_limit_problem
 from clampcore.elements import current, neuron, synapse
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.rng import seed_state
@@ -203,7 +203,7 @@ def check_live_change(
 
     ``board_range_pA``: what board and amplifier can command, when a board runs; a
     new ``max_current_pA`` must then pass the same rule as at Start
-    (``calibration.limit_refusal``). Raises ``ExperimentError`` (naming element,
+    (``calibration.range_limit_problem``). Raises ``ExperimentError`` (naming element,
     field and value, and why) or ``KeyError``.
     """
     exp = program.experiment
@@ -212,7 +212,7 @@ def check_live_change(
         f = {x.name: x for x in SECTION_FIELDS["loop"]}[field]
         reason = check_value(f, value)
         if not reason and field == "max_current_pA" and board_range_pA is not None:
-            reason = limit_refusal(board_range_pA, float(value))
+            reason = range_limit_problem(board_range_pA, float(value))
         if reason:
             raise ExperimentError("section [loop]", field, value, reason)
         return program.encode_value(value)

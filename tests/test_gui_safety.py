@@ -40,7 +40,7 @@ def test_live_limit_obeys_the_start_rule():
     # Without a running board (offline programs) only the field's own rule applies...
     program = build_program(LEAK_EXPERIMENT)
     assert check_live_change(program, "loop", "max_current_pA", 1e5) == 1e5
-    # ...with one, the same rule as Start (clampcore.calibration.limit_refusal).
+    # ...with one, the same rule as Start (clampcore.calibration.range_limit_problem).
     board = (-BOARD_LIMIT_PA, BOARD_LIMIT_PA)
     assert check_live_change(program, "loop", "max_current_pA", 3999.0, board) == 3999.0
     with pytest.raises(ExperimentError, match=r"-4000\.\.4000 pA.*cannot represent"):
