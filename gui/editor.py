@@ -24,7 +24,14 @@ from typing import Any
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.experiment import Experiment
-from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, KINDS, SECTION_FIELDS, Field
+from clampcore.schema import (
+    COMMON_FIELDS,
+    ELEMENT_FIELDS,
+    KINDS,
+    SECTION_FIELDS,
+    Field,
+    field_applies,
+)
 
 # Sections shown in the editor (session/subject/electrode are kept as loaded).
 SECTIONS = ("loop", "cell", "amplifier")
@@ -59,6 +66,16 @@ def unit_of(field_name: str) -> str:
         if field_name.endswith("_" + suffix):
             return _UNITS[suffix]
     return ""
+
+
+def unit_label(field: Field) -> str:
+    """The unit shown beside a field: its unit, or what a number without one is."""
+    unit = unit_of(field.name)
+    if unit or field.rule in ("choice", "bool", "text", "ref"):
+        return unit
+    return {"fraction": "fraction", "int": "count" if field.name != "seed" else "—"}.get(
+        field.rule, "—"
+    )
 
 
 def parse_value(field: Field, text: str) -> Any:
@@ -126,10 +143,13 @@ class _FieldEdit(QtWidgets.QLineEdit):
 class _FieldRow:
     """The widgets of one field."""
 
-    def __init__(self, field: Field, widget: QtWidgets.QWidget, note: QtWidgets.QLabel) -> None:
+    def __init__(
+        self, field: Field, widget: QtWidgets.QWidget, note: QtWidgets.QLabel, others: tuple
+    ) -> None:
         self.field = field
         self.widget = widget
         self.note = note
+        self.others = others  # the name and unit labels: shown and hidden with the field
         self.invalid_reason: str | None = None
         self.shown_text = ""
 
@@ -277,7 +297,9 @@ class ParameterEditor(QtWidgets.QWidget):
             name = QtWidgets.QLabel(f.name)
             name.setToolTip(_describe(f))
             widget = self._field_widget(target, f, values.get(f.name, f.default), editable)
-            unit = QtWidgets.QLabel(unit_of(f.name))
+            unit = QtWidgets.QLabel(unit_label(f))
+            if not unit_of(f.name):
+                unit.setToolTip("no unit")
             note = QtWidgets.QLabel("")
             if self._running and not new_element:
                 note.setText("live" if editable else "fixed")
@@ -291,11 +313,28 @@ class ParameterEditor(QtWidgets.QWidget):
             grid.addWidget(widget, row, 1)
             grid.addWidget(unit, row, 2)
             grid.addWidget(note, row, 3)
-            self._rows[(target, f.name)] = _FieldRow(f, widget, note)
+            self._rows[(target, f.name)] = _FieldRow(f, widget, note, (name, unit))
             self._rows[(target, f.name)].shown_text = format_value(f, values.get(f.name, f.default))
             row += 1
         grid.setColumnStretch(1, 1)
+        self._show_applicable(target, values)
         return box
+
+    def _show_applicable(self, target: Target, values: dict[str, Any], keep: str = "") -> None:
+        """Show only the fields that apply to the chosen kinetics/source/waveform/model.
+
+        ``keep``: a field just edited stays in view (it is about to apply).
+        """
+        for (t, name), row in self._rows.items():
+            if t == target:
+                kept = name == keep and not row.widget.isHidden()
+                on = kept or field_applies(row.field, values)
+                for w in (row.widget, row.note, *row.others):
+                    w.setHidden(not on)
+
+    def is_shown(self, target: Target | str, field_name: str) -> bool:
+        """Whether the field is on the form (it applies to the element's current choices)."""
+        return not self._row(target, field_name).widget.isHidden()
 
     def _field_widget(
         self, target: Target, f: Field, value: Any, editable: bool
@@ -388,10 +427,20 @@ class ParameterEditor(QtWidgets.QWidget):
         if reason is not None:
             self._mark(target, field_name, reason, text)
             self._restore(target, field_name)  # the form shows what is in force
+            # A refusal that names another field (a train source needs its times): show it.
+            for other in re.findall(r"field '(\w+)'", reason):
+                needed = self._rows.get((target, other))
+                if needed is not None and other != field_name:
+                    for w in (needed.widget, needed.note, *needed.others):
+                        w.setHidden(False)
             return
         if row is not None:
             row.shown_text = text if text is not None else format_value(row.field, value)
         self._mark(target, field_name, None)
+        if self.experiment is not None:
+            exp = self.experiment
+            values = getattr(exp, target[1]) if target[0] == "section" else exp.element(target[1])
+            self._show_applicable(target, values, keep=field_name)
         self.message.setStyleSheet("")
         self.message.setText(
             f"{target[1]}.{field_name} = {format_value(row.field, value) if row else value}"

@@ -11,7 +11,7 @@ are created once per run (``attach``); ``refresh`` only copies new ring rows and
 calls ``setData``; the window calls it from its timer.
 
 Public names: ``PeakDecimator``, ``SpikeTimes``, ``TracePanel``,
-``CONDUCTANCE_KINDS``, ``TARGET_BINS``, ``RATE_WINDOW_S``.
+``CONDUCTANCE_KINDS``, ``TARGET_BINS``, ``RATE_WINDOW_S``, ``WINDOW_CHOICES_S``, ``Readout``.
 """
 
 from __future__ import annotations
@@ -42,6 +42,9 @@ RATE_WINDOW_S = 1.0
 # The firing-rate legend (each source's current rate) is rewritten every 15th redraw:
 # twice a second, as often as a number can be read.
 _LEGEND_EVERY = 15
+# Time shown: from a few spikes to the 10 s the first issue asked for; the ring holds
+# 20 s (clampcore.shared.RING_SECONDS), so each can be refilled from it.
+WINDOW_CHOICES_S = (0.5, 1.0, 2.0, 5.0, 10.0)
 # Markers kept at most (older ones go first): a screen's worth of readable labels.
 _MAX_MARKERS = 60
 # Labels of close markers stack downwards, this many deep, from the top of the plot.
@@ -280,21 +283,21 @@ class TracePanel(QtWidgets.QWidget):
         self.redraws = 0  # refreshes that drew something (for the benchmark)
         self._ticks = 0
         self._shown_g: set[str] = set()
+        self._known_g: set[str] = set()
 
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
         bar = QtWidgets.QHBoxLayout()
         bar.addWidget(QtWidgets.QLabel("Time shown"))
-        self.window_box = QtWidgets.QDoubleSpinBox()
-        # 0.1-10 s: from a few spikes to the 10 s the issue asks for; the ring holds
-        # 20 s (clampcore.shared.RING_SECONDS), so a longer window can be refilled from it.
-        self.window_box.setRange(0.1, 10.0)
-        self.window_box.setDecimals(1)
-        self.window_box.setSingleStep(0.5)
-        self.window_box.setSuffix(" s")
-        self.window_box.setValue(self.window_s)
-        self.window_box.setKeyboardTracking(False)
-        self.window_box.valueChanged.connect(self.set_window_s)
+        # A list, not a typed number: nothing typed can be silently changed into another value.
+        self.window_box = QtWidgets.QComboBox()
+        for seconds in WINDOW_CHOICES_S:
+            self.window_box.addItem(f"{seconds:g} s", seconds)
+        self.window_box.setCurrentIndex(WINDOW_CHOICES_S.index(self.window_s))
+        self.window_box.setToolTip("how many seconds the traces show")
+        self.window_box.activated.connect(
+            lambda k: self.set_window_s(float(self.window_box.itemData(k)))
+        )
         bar.addWidget(self.window_box)
         bar.addSpacing(16)
         bar.addWidget(QtWidgets.QLabel("Conductance of:"))
@@ -486,6 +489,9 @@ class TracePanel(QtWidgets.QWidget):
             swatch = QtGui.QPixmap(12, 12)
             swatch.fill(QtGui.QColor(colour))
             check.setIcon(QtGui.QIcon(swatch))  # the checkbox is the legend
+            if name not in self._known_g:  # a new conductance is drawn until unticked
+                self._known_g.add(name)
+                self._shown_g.add(name)
             check.setChecked(name in self._shown_g)
             check.toggled.connect(lambda on, n=name: self.show_conductance(n, on))
             self._g_box.addWidget(check)
@@ -592,8 +598,11 @@ class TracePanel(QtWidgets.QWidget):
     def set_window_s(self, window_s: float) -> None:
         """Show the last ``window_s`` seconds (refilled from the ring)."""
         self.window_s = float(window_s)
-        if abs(self.window_box.value() - self.window_s) > 1e-9:
-            self.window_box.setValue(self.window_s)
+        k = self.window_box.findData(self.window_s)
+        if k < 0:
+            self.window_box.addItem(f"{self.window_s:g} s", self.window_s)
+            k = self.window_box.count() - 1
+        self.window_box.setCurrentIndex(k)
         if self.shared is not None:
             self._restart(from_ring=True)
 

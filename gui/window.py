@@ -36,6 +36,7 @@ from clampcore.health import loop_health
 from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
 from gui.editor import ParameterEditor, Target
 from gui.health import AlarmBanner, HealthPanel
+from gui.savefile import experiment_toml
 from gui.traces import TracePanel
 
 # The issue asks for at least 30 redraws a second (smooth to the eye: film runs at 24). Timer
@@ -50,6 +51,7 @@ ZERO_SHORTCUT = "Esc"
 
 _STATE_COLOURS = {
     "idle": "#3a3f47",
+    "connected": "#3a5f8a",
     "checking": "#3a5f8a",
     "starting": "#3a5f8a",
     "running": "#1f7a3a",
@@ -161,6 +163,8 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._ticks = 0
         self._state = ""
         self._saved = self.experiment.to_dict()  # what the file holds: unsaved edits differ
+        # The file's own text: saving edits it in place (comments kept, see gui.savefile).
+        self._source_text = self.experiment.text if self.experiment.path else None
         self._pending_open: Path | None = None  # opened once the stopping run is written
         self._close_confirmed = False
         self.question: QtWidgets.QMessageBox | None = None  # the open question, if any
@@ -314,7 +318,7 @@ class TuningWindow(QtWidgets.QMainWindow):
 
     @property
     def state(self) -> str:
-        """idle, checking, starting, running, stopping, stopped or failed."""
+        """idle, checking, connected, starting, running, stopping, stopped or failed."""
         return self._state
 
     def _update_title(self) -> None:
@@ -463,7 +467,7 @@ class TuningWindow(QtWidgets.QMainWindow):
                 self._set_state("failed", f"no board: {job.error}")
             else:
                 self._note(f"connect: {job.result}")
-                self._set_state("idle", job.result)
+                self._set_state("connected", job.result)
         if self._finishing is not None:
             if self._finishing.done:
                 self._finished()
@@ -703,6 +707,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.experiment = exp
         self.experiment_path = Path(path)
         self._saved = exp.to_dict()
+        self._source_text = exp.text
         self.editor.set_experiment(exp)
         self.traces.clear()  # the last run's traces do not belong to this experiment
         self.traces.show_experiment(exp)
@@ -714,7 +719,7 @@ class TuningWindow(QtWidgets.QMainWindow):
     def save_file(self, path: Path | str) -> str | None:
         """Write the experiment (as edited) to ``path``; None when saved, else why not."""
         path = Path(path)
-        text = self.experiment.to_toml()
+        text = experiment_toml(self.experiment, self._source_text)
         try:
             back = load_experiment(text)  # what is saved must load back to the same
         except ExperimentError as exc:
@@ -728,6 +733,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.experiment.path = path
         self.experiment_path = path
         self._saved = self.experiment.to_dict()
+        self._source_text = text
         self._update_title()
         self._note(f"saved {path}")
         return None

@@ -322,7 +322,7 @@ def test_connect_asks_the_board_who_it_is(qtbot, tmp_path):
     qtbot.mouseClick(window.connect_button, QtCore.Qt.MouseButton.LeftButton)
     assert window.state == "checking"
     qtbot.waitUntil(lambda: window.state != "checking", timeout=60_000)
-    assert window.state == "idle"
+    assert window.state == "connected" and window.state_label.text() == "CONNECTED"
     # The identity the simulated rig reports in its HELLO (simulated_rig/board.py).
     assert "clampcore-simrig" in window.state_detail.text()
 
