@@ -155,6 +155,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.result: Any = None  # RunResult of the last run
         self.last_error: str | None = None
         self._finishing: _Job | None = None
+        self._finish_t0 = 0.0
         self._checking: _Job | None = None
         self._zero_held = False
         self._run_count = 0
@@ -222,20 +223,23 @@ class TuningWindow(QtWidgets.QMainWindow):
 
     # ------------------------------------------------------------------ building
     def _build_run_bar(self, port: str, record_dir: Path | str | None) -> None:
+        """Two rows: state and run controls with the zero-current button; then recordings."""
         bar = QtWidgets.QFrame()
         bar.setObjectName("runbar")
-        row = QtWidgets.QHBoxLayout(bar)
-        row.setContentsMargins(4, 2, 4, 2)
+        rows = QtWidgets.QVBoxLayout(bar)
+        rows.setContentsMargins(4, 2, 4, 2)
+        rows.setSpacing(3)
+        row = QtWidgets.QHBoxLayout()
+        rows.addLayout(row)
         self.state_label = QtWidgets.QLabel()
-        self.state_label.setMinimumWidth(110)
+        self.state_label.setMinimumWidth(130)
         self.state_label.setAlignment(QtCore.Qt.AlignmentFlag.AlignCenter)
         font = self.state_label.font()
         font.setBold(True)
         font.setPointSize(font.pointSize() + 2)
         self.state_label.setFont(font)
         row.addWidget(self.state_label)
-        self.state_detail = QtWidgets.QLabel()
-        self.state_detail.setMinimumWidth(260)
+        self.state_detail = _ElidedLabel()
         row.addWidget(self.state_detail, 1)
         row.addWidget(QtWidgets.QLabel("Port"))
         self.port_box = QtWidgets.QComboBox()
@@ -260,23 +264,44 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.stop_button = QtWidgets.QPushButton("Stop")
         self.stop_button.clicked.connect(self.stop_run)
         row.addWidget(self.stop_button)
-        row.addWidget(QtWidgets.QLabel("Record into"))
-        self.record_dir = QtWidgets.QLineEdit(str(Path(record_dir or Path.cwd())))
-        self.record_dir.setMinimumWidth(160)
-        self.record_dir.setToolTip("folder for the NWB recordings; each run gets its own file")
-        row.addWidget(self.record_dir)
-        browse = QtWidgets.QPushButton("…")
-        browse.setMaximumWidth(28)
-        browse.clicked.connect(self._choose_record_dir)
-        row.addWidget(browse)
-        self.zero_button = QtWidgets.QPushButton(f"Zero current  [{ZERO_SHORTCUT}]")
+        self.zero_button = QtWidgets.QPushButton()
         self.zero_button.setCheckable(True)
-        self.zero_button.setMinimumWidth(230)
         self.zero_button.setToolTip(
-            f"hold the injected current at 0 pA ({ZERO_SHORTCUT}); click again to release"
+            f"hold the injected current at 0 pA ({ZERO_SHORTCUT}, from anywhere in the "
+            "application); click again to release"
         )
         self.zero_button.clicked.connect(self.set_zero_current)
         row.addWidget(self.zero_button)
+
+        files = QtWidgets.QHBoxLayout()
+        rows.addLayout(files)
+        files.addWidget(QtWidgets.QLabel("Record into"))
+        self.record_dir = QtWidgets.QLineEdit(str(Path(record_dir or default_record_dir())))
+        self.record_dir.setToolTip("folder for the NWB recordings; each run gets its own file")
+        files.addWidget(self.record_dir, 2)
+        browse = QtWidgets.QPushButton("Choose…")
+        browse.setToolTip("choose the folder for recordings")
+        browse.clicked.connect(self._choose_record_dir)
+        files.addWidget(browse)
+        files.addSpacing(12)
+        files.addWidget(QtWidgets.QLabel("Recording"))
+        # The full path of the current (or last) recording: selectable, and a button copies it.
+        self.recording_path = QtWidgets.QLineEdit()
+        self.recording_path.setReadOnly(True)
+        self.recording_path.setPlaceholderText("none yet")
+        self.recording_path.setToolTip("the NWB file of this run (select to copy)")
+        files.addWidget(self.recording_path, 3)
+        copy = QtWidgets.QPushButton("Copy path")
+        copy.clicked.connect(
+            lambda: QtWidgets.QApplication.clipboard().setText(self.recording_path.text())
+        )
+        files.addWidget(copy)
+        self.progress = QtWidgets.QProgressBar()
+        self.progress.setRange(0, 0)  # busy: the writer gives no fraction done
+        self.progress.setMaximumWidth(260)
+        self.progress.setTextVisible(True)
+        self.progress.hide()
+        files.addWidget(self.progress)
         self.run_bar = bar
         self._style_zero()
 
@@ -397,6 +422,8 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.editor.set_experiment(
             self.experiment, {e["name"] for e in engine.experiment.elements}, running=True
         )
+        self.recording_path.setText(str(engine.nwb_path))
+        self.recording_path.setCursorPosition(0)
         self._set_state("starting", f"opening {port}; recording to {engine.nwb_path.name}")
         self._note(f"run {self._run_count}: started on {port}, recording to {engine.nwb_path}")
         return True
@@ -416,7 +443,10 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.traces.detach()  # before the shared memory closes (takes the last rows)
         self._log_events()
         self._finishing = _Job("clampcore-finish", engine.finish)
-        self._set_state("stopping", "0 pA, stopping the board, writing the recording…")
+        self._finish_t0 = time.monotonic()
+        self.progress.setFormat("writing the recording…")
+        self.progress.show()
+        self._set_state("stopping", "0 pA, board stopped; writing the recording…")
 
     def wait_finished(self, timeout_s: float = 30.0) -> Any:
         """Block until a stopping run is written (for scripts and tests); returns its result."""
@@ -445,7 +475,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         held = self._zero_held
         self.zero_button.setChecked(held)
         self.zero_button.setText(
-            "HELD AT 0 pA — click to release" if held else f"Zero current  [{ZERO_SHORTCUT}]"
+            "HELD AT 0 pA: click to release" if held else f"Zero current [{ZERO_SHORTCUT}]"
         )
         colour = "#b00020" if held else "#7a1f1f"
         self.zero_button.setStyleSheet(
@@ -471,6 +501,8 @@ class TuningWindow(QtWidgets.QMainWindow):
         if self._finishing is not None:
             if self._finishing.done:
                 self._finished()
+            else:
+                self._show_writing()
             return
         engine = self.engine
         if engine is None:
@@ -495,6 +527,15 @@ class TuningWindow(QtWidgets.QMainWindow):
         elif state in (STATE_STOPPED, STATE_FAILED) or not engine.running:
             self._log_changes()
             self.stop_run()
+
+    def _show_writing(self) -> None:
+        """Progress while the recording is written: time so far and the NWB file's size."""
+        elapsed = time.monotonic() - self._finish_t0
+        nwb = self.engine.nwb_path if self.engine is not None else None
+        size = nwb.stat().st_size if nwb is not None and nwb.exists() else 0
+        text = f"writing the recording: {elapsed:.0f} s, {size / 1e6:.0f} MB so far"
+        if text != self.progress.format():
+            self.progress.setFormat(text)
 
     def _log_events(self) -> None:
         """Events found on the traces, timed, into the Log."""
@@ -521,6 +562,7 @@ class TuningWindow(QtWidgets.QMainWindow):
 
     def _finished(self) -> None:
         job, self._finishing = self._finishing, None
+        self.progress.hide()
         self.engine = None
         assert job is not None
         if job.error is not None:
@@ -532,6 +574,13 @@ class TuningWindow(QtWidgets.QMainWindow):
             result = job.result
             self.result = result
             where = f"saved {result.nwb_path}" if result.nwb_path else "no recording written"
+            journal = result.journal_path
+            if result.nwb_path is not None and journal is not None and journal.exists():
+                size = sum(f.stat().st_size for f in journal.rglob("*") if f.is_file())
+                where += (
+                    f"; its journal ({size / 1e6:.0f} MB) is kept at {journal}: delete it once "
+                    "the NWB file is checked, or rebuild the NWB from it with clampcore recover"
+                )
             self._note(f"run {self._run_count} ended: {result.exit_reason}; {where}")
             if result.error:
                 self.last_error = result.error
@@ -872,6 +921,49 @@ class TuningWindow(QtWidgets.QMainWindow):
             self._finishing.wait(30.0)
             self._tick()
         super().closeEvent(event)
+
+
+def default_record_dir() -> Path:
+    """Where recordings go unless told: ``recordings`` in the user's data folder.
+
+    (platformdirs: ~/.local/share/clampcore/recordings on Linux, the platform's
+    equivalent elsewhere.)
+    """
+    import platformdirs
+
+    return platformdirs.user_data_path("clampcore") / "recordings"
+
+
+class _ElidedLabel(QtWidgets.QLabel):
+    """A one-line status that never widens the window: cut with "…" and whole in its tooltip."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._full = ""
+        self.setSizePolicy(
+            QtWidgets.QSizePolicy.Policy.Ignored, QtWidgets.QSizePolicy.Policy.Preferred
+        )
+        self.setTextInteractionFlags(QtCore.Qt.TextInteractionFlag.TextSelectableByMouse)
+
+    def setText(self, text: str) -> None:
+        self._full = text
+        self.setToolTip(text)
+        self._fit()
+
+    def text(self) -> str:
+        return self._full
+
+    def resizeEvent(self, event: QtGui.QResizeEvent) -> None:
+        super().resizeEvent(event)
+        self._fit()
+
+    def _fit(self) -> None:
+        metrics = self.fontMetrics()
+        shown = metrics.elidedText(self._full, QtCore.Qt.TextElideMode.ElideMiddle, self.width())
+        super().setText(shown)
+
+    def is_elided(self) -> bool:
+        return super().text() != self._full
 
 
 def _close_quietly(widget: QtWidgets.QWidget | None) -> None:
