@@ -20,6 +20,8 @@ from PySide6 import QtCore, QtWidgets
 
 from clampcore.shared import LAT_BINS, TURN_BIN_US
 
+_WITHIN_2_WARN = 0.9  # see HealthPanel.update_from
+
 
 @dataclass
 class Alarm:
@@ -145,7 +147,7 @@ class HealthPanel(QtWidgets.QWidget):
 
         self.plots = pg.GraphicsLayoutWidget()
         self.plots.setBackground("#111418")
-        self.plots.setMinimumHeight(320)
+        self.plots.setMinimumHeight(160)  # two small histograms: the window fits 1280x720
         self.p_lat = self.plots.addPlot(row=0, col=0)
         self.p_lat.setLabel("left", "% of commands")
         self.p_lat.setLabel("bottom", "command latency", units="samples")
@@ -199,6 +201,12 @@ class HealthPanel(QtWidgets.QWidget):
         s99, u99 = lat(h["latency_p99_samples"], h["latency_p99_us"])
         v["latency"].setText(f"{s50} / {s99} samples ({u50} / {u99} µs)")
         v["within_2"].setText(f"{h['within_2_samples']:.2%}")
+        # Fewer than 9 in 10 commands within 2 samples: the clamp is not keeping up, shown
+        # in red (a warning level of our own, common practice for a closed loop's delay).
+        slow = h["samples"] > 0 and h["within_2_samples"] < _WITHIN_2_WARN
+        if v["within_2"].property("bad") != slow:
+            v["within_2"].setProperty("bad", slow)
+            v["within_2"].setStyleSheet("color: #ff5a5a; font-weight: bold;" if slow else "")
         v["turnaround"].setText(f"{h['turnaround_p50_us']:.0f} / {h['turnaround_p99_us']:.0f} µs")
         for key in ("late", "missing", "unanswered", "bad_frames", "watchdog", "faults",
                     "limited", "zeroed"):  # fmt: skip

@@ -219,6 +219,7 @@ class Readout(QtWidgets.QFrame):
         self.setObjectName("readout")
         row = QtWidgets.QHBoxLayout(self)
         row.setContentsMargins(6, 2, 6, 2)
+        row.setSpacing(28)  # figures apart enough to read as separate
         self.labels: dict[str, QtWidgets.QLabel] = {}
         for key, tip in (
             ("vm", "mean membrane potential over the window stated at the right"),
@@ -235,6 +236,8 @@ class Readout(QtWidgets.QFrame):
                 font.setPointSize(font.pointSize() + 2)
                 font.setBold(True)
                 label.setFont(font)
+            if key == "rates":
+                label.setWordWrap(True)  # many sources: more lines, never a wider window
             row.addWidget(label, 0 if key != "rates" else 1)
             self.labels[key] = label
         self.clear()
@@ -251,9 +254,9 @@ class Readout(QtWidgets.QFrame):
         """Show the means and rates taken over the last ``span_s`` seconds."""
         self.labels["vm"].setText(f"Vm {vm_mV:.1f} mV")
         self.labels["command"].setText(f"command {command_pA:.0f} pA")
-        rates = "   ".join(f"{name} {hz:.1f} Hz" for name, hz in rates_hz.items())
-        self.labels["rates"].setText(f"firing: {rates}")
-        self.labels["window"].setText(f"means and rates over the last {span_s:.2g} s")
+        rates = "  ·  ".join(f"{name} {hz:.1f} Hz" for name, hz in rates_hz.items())
+        self.labels["rates"].setText(f"firing  {rates}")
+        self.labels["window"].setText(f"over the last {span_s:.2g} s")
 
 
 def _unit_axis(label: str, unit: str) -> dict[str, Any]:
@@ -338,11 +341,12 @@ class TracePanel(QtWidgets.QWidget):
         self._limit_pA = math.inf
         self.limit_episodes = 0
         self.limit_worst_pA = 0.0
-        self.p_v = self._add_plot(0, _unit_axis("membrane potential", "mV"))
+        # Short axis names (Vm, command, g, rate): they fit beside the plots at 720 pixels high.
+        self.p_v = self._add_plot(0, _unit_axis("Vm", "mV"))
         self.p_i = self._add_plot(1, _unit_axis("command", "pA"))
-        self.p_g = self._add_plot(2, _unit_axis("conductance", "nS"))
+        self.p_g = self._add_plot(2, _unit_axis("g", "nS"))
         self.p_raster = self._add_plot(3, {"text": "spikes"})
-        self.p_rate = self._add_plot(4, _unit_axis("firing rate", "Hz"))
+        self.p_rate = self._add_plot(4, _unit_axis("rate", "Hz"))
         self.p_rate.setLabel("bottom", "time", units="s")
         self._all_plots = (self.p_v, self.p_i, self.p_g, self.p_raster, self.p_rate)
         for p in (self.p_i, self.p_g, self.p_raster, self.p_rate):

@@ -423,7 +423,7 @@ class TuningWindow(QtWidgets.QMainWindow):
             self.experiment, {e["name"] for e in engine.experiment.elements}, running=True
         )
         self.recording_path.setText(str(engine.nwb_path))
-        self.recording_path.setCursorPosition(0)
+        self.recording_path.end(False)  # the file name in view; the whole path on selecting
         self._set_state("starting", f"opening {port}; recording to {engine.nwb_path.name}")
         self._note(f"run {self._run_count}: started on {port}, recording to {engine.nwb_path}")
         return True

@@ -335,28 +335,3 @@ def test_bad_port_is_reported_not_a_crash(qtbot, tmp_path):
     assert window.state == "failed"
     assert "no-such-board" in (window.last_error or "")
     assert window.banner.isVisible() or not window.isVisible()
-
-
-def test_screenshot_of_the_window_in_action(qtbot, tmp_path):
-    window = _window(qtbot, tmp_path, ROOT / "examples" / "hybrid_pair.toml", clock="wall")
-    window.resize(1500, 920)
-    window.traces.set_window_s(2.0)
-    for name in window.traces.conductance_names()[:2]:
-        window.traces.show_conductance(name, True)
-    _start(qtbot, window, min_samples=int(0.5 * RATE_HZ))
-    # Live changes: the virtual neuron driven harder, its synapse onto the cell stronger.
-    assert window.editor.enter_text("partner", "bias_pA", "400") is None
-    assert window.editor.enter_text("partner_to_cell", "g_max_nS", "8") is None
-    assert window.editor.enter_text("holding", "amplitude_pA", "200") is None
-    _wait_samples(qtbot, window, int(1.8 * RATE_HZ))
-    assert window.traces.redraws > 10
-    qtbot.wait(100)
-    # Written where a developer can look at it (tests/artifacts is not tracked); with
-    # CLAMPCORE_UPDATE_SCREENSHOT=1 it also replaces the README's docs/window.png.
-    out = ROOT / "tests" / "artifacts" / "window.png"
-    if os.environ.get("CLAMPCORE_UPDATE_SCREENSHOT") == "1":
-        out = ROOT / "docs" / "window.png"
-    out.parent.mkdir(exist_ok=True)
-    assert window.grab().save(str(out))
-    _stop(qtbot, window)
-    assert out.stat().st_size > 20_000
