@@ -118,6 +118,7 @@ class HealthPanel(QtWidgets.QWidget):
     _ROWS = (
         ("samples", "samples taken"),
         ("latency", "command latency p50 / p99"),
+        ("latency_us", "   the same in µs"),
         ("within_2", "commands within 2 samples"),
         ("turnaround", "host turnaround p50 / p99"),
         ("late", "late commands (flagged by the board)"),
@@ -137,7 +138,9 @@ class HealthPanel(QtWidgets.QWidget):
         grid = QtWidgets.QGridLayout()
         self.values: dict[str, QtWidgets.QLabel] = {}
         for r, (key, text) in enumerate(self._ROWS):
-            grid.addWidget(QtWidgets.QLabel(text), r, 0)
+            name = QtWidgets.QLabel(text)
+            name.setWordWrap(True)  # a narrow panel wraps the names, not the figures
+            grid.addWidget(name, r, 0)
             value = QtWidgets.QLabel("–")
             value.setAlignment(QtCore.Qt.AlignmentFlag.AlignRight)
             value.setObjectName(f"health:{key}")
@@ -199,7 +202,8 @@ class HealthPanel(QtWidgets.QWidget):
 
         s50, u50 = lat(h["latency_p50_samples"], h["latency_p50_us"])
         s99, u99 = lat(h["latency_p99_samples"], h["latency_p99_us"])
-        v["latency"].setText(f"{s50} / {s99} samples ({u50} / {u99} µs)")
+        v["latency"].setText(f"{s50} / {s99} samples")
+        v["latency_us"].setText(f"{u50} / {u99} µs")
         v["within_2"].setText(f"{h['within_2_samples']:.2%}")
         # Fewer than 9 in 10 commands within 2 samples: the clamp is not keeping up, shown
         # in red (a warning level of our own, common practice for a closed loop's delay).

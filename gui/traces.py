@@ -796,7 +796,8 @@ class TracePanel(QtWidgets.QWidget):
         if rates and follow:
             self._fit_y(self.p_rate, np.concatenate(rates), (0.0, 10.0))
         if follow:
-            self.p_v.setXRange(t_start, t_end, padding=0)
+            # The first seconds of a run fill the window from the left (no negative times).
+            self.p_v.setXRange(max(t_start, 0.0), max(t_end, self.window_s), padding=0)
             while self._markers and self._markers[0][0] < t_start - self.window_s:
                 self._drop_marker(0)  # a window's width out of view: gone
         for plot in self._all_plots:
