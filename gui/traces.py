@@ -24,7 +24,9 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.experiment import Experiment
+from gui import testpulse
 from gui.events import EVENT_COLOURS, EventScanner, TraceEvent
+from gui.testpulse import input_resistance_MOhm
 
 # Element kinds that have a conductance (a current waveform and a virtual neuron have none).
 CONDUCTANCE_KINDS = ("leak", "threshold_reset", "synapse", "noise")
@@ -224,9 +226,17 @@ class Readout(QtWidgets.QFrame):
         for key, tip in (
             ("vm", "mean membrane potential over the window stated at the right"),
             ("command", "mean command current over the same window"),
+            ("rin", "input resistance from the newest test pulse: ΔV/ΔI (Ohm's law)"),
             ("rates", "spikes counted in the same window, per second"),
             ("window", "the window the figures are taken over"),
         ):
+            if key == "rin":
+                self.pulse_box = QtWidgets.QCheckBox("test pulse")
+                self.pulse_box.setToolTip(
+                    "a small current pulse (an element named test_pulse, recorded with the "
+                    "run) from which the input resistance is read"
+                )
+                row.addWidget(self.pulse_box)
             label = QtWidgets.QLabel()
             label.setObjectName(f"readout:{key}")
             label.setToolTip(tip)
@@ -245,6 +255,7 @@ class Readout(QtWidgets.QFrame):
     def clear(self) -> None:
         self.labels["vm"].setText("Vm –")
         self.labels["command"].setText("command –")
+        self.labels["rin"].setText("Rin –")
         self.labels["rates"].setText("firing –")
         self.labels["window"].setText(f"over the last {RATE_WINDOW_S:g} s")
 
@@ -257,6 +268,17 @@ class Readout(QtWidgets.QFrame):
         rates = "  ·  ".join(f"{name} {hz:.1f} Hz" for name, hz in rates_hz.items())
         self.labels["rates"].setText(f"firing  {rates}")
         self.labels["window"].setText(f"over the last {span_s:.2g} s")
+
+    def show_resistance(self, r_MOhm: float | None, pulse: str) -> None:
+        """The input resistance from the test pulse (``pulse`` says which), or why none."""
+        if not pulse:
+            self.labels["rin"].setText("Rin –")
+            self.labels["rin"].setToolTip("switch the test pulse on to read it")
+        elif r_MOhm is None:
+            self.labels["rin"].setText("Rin … (waiting for a pulse)")
+        else:
+            self.labels["rin"].setText(f"Rin {r_MOhm:.0f} MΩ")
+            self.labels["rin"].setToolTip(f"ΔV/ΔI of the newest test pulse: {pulse}")
 
 
 def _unit_axis(label: str, unit: str) -> dict[str, Any]:
@@ -339,6 +361,9 @@ class TracePanel(QtWidgets.QWidget):
         self._new_events: list[TraceEvent] = []
         self._markers: list[tuple[float, list[tuple[pg.PlotItem, Any]]]] = []
         self._limit_pA = math.inf
+        self._pulse_col: int | None = None
+        self._pulse_text = ""
+        self._pulse_rows = 0
         self.limit_episodes = 0
         self.limit_worst_pA = 0.0
         # Short axis names (Vm, command, g, rate): they fit beside the plots at 720 pixels high.
@@ -441,6 +466,13 @@ class TracePanel(QtWidgets.QWidget):
         self._spike_cols = [names.index(f"spike/{s}") for s in self._sources]
         self._v_col = names.index("v_mV")
         self._i_col = names.index("i_pA")
+        pulse = next((e for e in experiment.elements if e["name"] == testpulse.NAME), None)
+        column = f"i_pA/{testpulse.NAME}"
+        self._pulse_col = names.index(column) if pulse and column in names else None
+        self._pulse_text = testpulse.describe(pulse) if pulse else ""
+        if pulse:  # the newest complete pulse and the baseline before it are in this span
+            self._pulse_rows = round(1.2 * (pulse["period_ms"] + pulse["pulse_ms"]) * 1e-3
+                                     * self.rate_hz)  # fmt: skip
         self._event_cols = [names.index(c) for c in ("sample_counter", "flags", "board_status")]
         self._asked_cols = [k for k, c in enumerate(names) if c.startswith("i_pA/")]
         self._events = EventScanner(self.rate_hz)
@@ -538,6 +570,13 @@ class TracePanel(QtWidgets.QWidget):
         self.readout.show_values(
             float(np.nanmean(v)), float(np.nanmean(i)), self.current_rates_hz(), n / self.rate_hz
         )
+        r_MOhm = None
+        if self._pulse_col is not None:
+            n = min(written, self._pulse_rows, shared.layout.rows - int(self.rate_hz))
+            idx = np.arange(written - n, written) % shared.layout.rows
+            pulse = shared.ring[idx, self._pulse_col]
+            r_MOhm = input_resistance_MOhm(shared.ring[idx, self._v_col], pulse)
+        self.readout.show_resistance(r_MOhm, self._pulse_text)
 
     def update_levels(self, experiment: Experiment) -> None:
         """Redraw the threshold and current-limit lines from ``experiment``'s values.

@@ -34,6 +34,7 @@ from clampcore.engine import Engine, EngineError, RunOptions
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.health import loop_health
 from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
+from gui import testpulse
 from gui.editor import ParameterEditor, Target
 from gui.health import AlarmBanner, HealthPanel
 from gui.savefile import experiment_toml
@@ -218,6 +219,8 @@ class TuningWindow(QtWidgets.QMainWindow):
 
         self.editor.set_experiment(self.experiment)
         self.traces.show_experiment(self.experiment)
+        self.traces.readout.pulse_box.toggled.connect(self.set_test_pulse)
+        self._sync_pulse_box()
         self._set_state("idle", "not running")
         self._update_title()
 
@@ -641,6 +644,7 @@ class TuningWindow(QtWidgets.QMainWindow):
             checked.amplifier = dict(old.amplifier)
         self.experiment = checked
         self.editor.experiment = checked  # what a refused or dropped value snaps back to
+        self._sync_pulse_box()
 
     def add_element(self, kind: str, name: str) -> str | None:
         """Add an element with default values; None when added, else why not."""
@@ -656,6 +660,43 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._refresh_editor()
         self._note(f"added {kind} '{name}'" + (" (next run)" if self.running else ""))
         return None
+
+    def set_test_pulse(self, on: bool) -> None:
+        """Switch the test pulse (an element, see gui.testpulse) on or off.
+
+        On adds it to the experiment if it has none (a running loop gets it at the next
+        start: elements cannot be added to a run); then on and off are its ``enabled``,
+        live during a run.
+        """
+        pulse = next((e for e in self.experiment.elements if e["name"] == testpulse.NAME), None)
+        if pulse is None and on:
+            draft = self.experiment.to_dict()
+            draft["element"].append(dict(testpulse.ELEMENT))
+            try:
+                checked = load_experiment(draft)
+            except ExperimentError as exc:
+                self.editor.report(f"no test pulse: {exc}", "")
+                self._sync_pulse_box()
+                return
+            self._adopt(checked)
+            self._refresh_editor()
+            later = " (from the next run)" if self.running else ""
+            self._note(f"test pulse added{later}: {testpulse.describe(testpulse.ELEMENT)}")
+        elif pulse is not None and bool(pulse["enabled"]) != on:
+            reason = self._submit(("element", testpulse.NAME), "enabled", on)
+            if reason:
+                self.editor.report(reason, "")
+            else:
+                self._refresh_editor()
+                self._note("test pulse " + ("on" if on else "off"))
+        self._sync_pulse_box()
+
+    def _sync_pulse_box(self) -> None:
+        pulse = next((e for e in self.experiment.elements if e["name"] == testpulse.NAME), None)
+        box = self.traces.readout.pulse_box
+        box.blockSignals(True)
+        box.setChecked(bool(pulse and pulse["enabled"]))
+        box.blockSignals(False)
 
     def request_remove(self, name: str) -> None:
         """The form's Remove: during a run, ask first (the element is switched off now)."""
@@ -758,6 +799,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._saved = exp.to_dict()
         self._source_text = exp.text
         self.editor.set_experiment(exp)
+        self._sync_pulse_box()
         self.traces.clear()  # the last run's traces do not belong to this experiment
         self.traces.show_experiment(exp)
         self.banner.reset()

@@ -84,3 +84,29 @@ def test_pause_zoom_axes_readout_and_banner(qtbot, tmp_path):
     text = window.banner.label.text()
     assert "CURRENT LIMIT" in text and "% of the run" in text and "beyond it" in text
     stop(qtbot, window)
+
+
+def test_test_pulse_gives_the_input_resistance(qtbot, tmp_path):
+    window = make_window(qtbot, tmp_path, LEAK_EXPERIMENT)
+    readout = window.traces.readout
+    readout.pulse_box.click()  # switched on before Start: added to the experiment
+    pulse = window.experiment.element("test_pulse")
+    assert pulse["kind"] == "current" and pulse["enabled"]
+    assert window.editor.is_shown("test_pulse", "amplitude_pA")  # in the form like any element
+    start(qtbot, window, min_samples=int(1.3 * RATE_HZ))  # a whole pulse and its baseline
+    for _ in range(16):
+        window._tick()
+    # Reference: Ohm's law with the conductances in parallel, R = 1 / (5 nS + 2 nS);
+    # 1/nS = 1 GOhm = 1000 MOhm.
+    expected = 1000.0 / (5.0 + 2.0)  # 142.9 MOhm
+    r = float(readout.labels["rin"].text().split()[1])
+    assert r == pytest.approx(expected, rel=0.03)
+    assert "-20 pA for 100 ms every 1 s" in readout.labels["rin"].toolTip()
+    readout.pulse_box.click()  # off, live
+    assert not window.experiment.element("test_pulse")["enabled"]
+    wait_samples(qtbot, window, 2000)
+    rec = stop(qtbot, window)
+    # Size and period are recorded with the run (the experiment in the NWB file).
+    assert "test_pulse" in rec["experiment_text"] and "amplitude_pA = -20" in rec["experiment_text"]
+    off = [c for c in rec["param_changes"] if c["element"] == "test_pulse"]
+    assert [(c["field"], c["new"]) for c in off] == [("enabled", 0.0)]
