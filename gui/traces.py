@@ -10,8 +10,16 @@ spike rasters of the cell and every virtual neuron, and firing rates. Its curves
 are created once per run (``attach``); ``refresh`` only copies new ring rows and
 calls ``setData``; the window calls it from its timer.
 
-Public names: ``PeakDecimator``, ``SpikeTimes``, ``TracePanel``,
-``CONDUCTANCE_KINDS``, ``TARGET_BINS``, ``RATE_WINDOW_S``, ``WINDOW_CHOICES_S``, ``Readout``.
+The rows taken also go through ``gui.events.EventScanner``: each event becomes a
+vertical marker with a short label (and reaches the window's Log through
+``take_events``). The Vm and command axes follow the data (a level outside them is
+not drawn; beyond ±max_current_pA is shaded). The display can be paused while the
+run goes on, zoomed and panned with the mouse, and reset to follow the data.
+``Readout`` is the strip under the plots: mean Vm and command, firing rates, and
+the input resistance from a test pulse (``gui.testpulse``).
+
+Public names: ``PeakDecimator``, ``SpikeTimes``, ``TracePanel``, ``Readout``,
+``CONDUCTANCE_KINDS``, ``TARGET_BINS``, ``RATE_WINDOW_S``, ``WINDOW_CHOICES_S``.
 """
 
 from __future__ import annotations

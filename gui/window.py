@@ -7,9 +7,11 @@ so a busy or frozen window cannot make the loop miss a sample. One timer
 periodically. Slow jobs (checking a board, stopping a run and writing its NWB
 file) run on worker threads and are polled by the same timer.
 
-Layout, top to bottom: the run bar (state, port, Connect, Start, Stop, where
-recordings go, the zero-current control), the alarm banner, then the traces on
-the left and tabs on the right (Parameters, Loop health, Log).
+Layout, top to bottom: the run bar (state, port, Connect, Start, Stop and the
+zero-current control; then where recordings go, this run's recording and the
+progress of writing it), the alarm banner, then the traces with their readout
+strip on the left and tabs on the right (Parameters, Loop health, Log). It fits
+1280x720 (tests/test_gui_layout.py).
 
 Safety controls stay in reach whatever else is open: Esc is caught by an
 application-wide event filter (modal dialogs, menus and text fields cannot keep
