@@ -863,6 +863,9 @@ class TuningWindow(QtWidgets.QMainWindow):
     @staticmethod
     def _show_modeless(dialog: QtWidgets.QDialog) -> None:
         """Show ``dialog`` without blocking the window: the zero-current button stays usable."""
+        if isinstance(dialog, QtWidgets.QFileDialog):
+            # Qt's own dialog: a platform's native one may block the window whatever we ask.
+            dialog.setOption(QtWidgets.QFileDialog.Option.DontUseNativeDialog, True)
         dialog.setWindowModality(QtCore.Qt.WindowModality.NonModal)
         dialog.setAttribute(QtCore.Qt.WidgetAttribute.WA_DeleteOnClose)
         dialog.show()
