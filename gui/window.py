@@ -32,7 +32,7 @@ from typing import Any
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from clampcore.engine import Engine, EngineError, RunOptions
+from clampcore.engine import Engine, EngineError, RunOptions, board_owns
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.health import loop_health
 from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
@@ -424,6 +424,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         assert engine.shared is not None
         self.traces.attach(engine.shared, engine.experiment)
         self.health.set_rate(engine.experiment.loop["rate_hz"])
+        self.editor.held_by_board = self._held_by_board
         self.editor.set_experiment(
             self.experiment, {e["name"] for e in engine.experiment.elements}, running=True
         )
@@ -432,6 +433,19 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._set_state("starting", f"opening {port}; recording to {engine.nwb_path.name}")
         self._note(f"run {self._run_count}: started on {port}, recording to {engine.nwb_path}")
         return True
+
+    def _held_by_board(self, target: Target, field: str) -> str | None:
+        """In law mode the board applies some rules itself: those cannot change live."""
+        engine = self.engine
+        if engine is None or not engine.law_mode_requested:
+            return None
+        element = "loop" if target[0] == "section" else target[1]
+        if target[0] == "section" and target[1] != "loop":
+            return None
+        with contextlib.suppress(KeyError):
+            if board_owns(engine.program, element, field):
+                return "the board applies it from the rules it got at start (law mode)"
+        return None
 
     def _fail_start(self, why: str) -> None:
         self.last_error = why

@@ -223,3 +223,26 @@ def test_open_during_a_run_or_with_edits_asks(qtbot, tmp_path):
     assert "Unsaved edits" in window.question.informativeText()
     window.answer(False)
     assert window.experiment.element("imposed_spike")["threshold_mV"] == -47.0
+
+
+def test_law_mode_rules_of_the_board_are_fixed_and_zero_still_works(qtbot, tmp_path):
+    experiment = {**LEAK_EXPERIMENT, "loop": {**LEAK_EXPERIMENT["loop"], "mode": "law"}}
+    window = make_window(qtbot, tmp_path, experiment)
+    start(qtbot, window)
+    ed = window.editor
+    # The board applies the current limit and spike detection itself (PROTOCOL.md §10):
+    # not editable during the run, and the form says why; the leak's law still is.
+    limit = ed.widget("loop", "max_current_pA")
+    assert limit.isReadOnly() and "law mode" in ed._row("loop", "max_current_pA").note.toolTip()
+    assert not ed.widget("extra_leak", "g_nS").isReadOnly()
+    # Esc holds 0 pA in law mode too (the loop turns it into the board's zero request).
+    QTest.keyClick(ed.widget("extra_leak", "g_nS"), QtCore.Qt.Key.Key_Escape)
+    assert window.zero_held and int(window.engine.shared.ctrl[CTRL_ZERO]) == 1
+    before = written(window)
+    wait_samples(qtbot, window, 4000)
+    rec = stop(qtbot, window)
+    i = rec["columns"]["i_pA"]
+    assert i.size > before + 3000
+    # What the board applied: 0 pA to the nearest DAC step (16 bits over 20 V at 400 pA/V).
+    half_step_pA = 400.0 * 20.0 / 65535 / 2
+    assert np.all(np.abs(i[before + 2000 :]) <= half_step_pA + 1e-12)
