@@ -8,7 +8,7 @@ loses at most that interval. At stop the journal is converted to NWB.
 ``write_recording_nwb`` writes an offline ``Recording`` in the same format.
 
 Public names: ``Recorder``, ``recording_meta``, ``write_recording_nwb``,
-``timing_summary``.
+``timing_summary``, ``zero_hold_events``.
 """
 
 from __future__ import annotations
@@ -76,6 +76,30 @@ def timing_summary(columns: dict[str, np.ndarray]) -> dict[str, float]:
                 out[f"turnaround_p{q:g}_us"] = float(np.percentile(turn, q))
             out["turnaround_max_us"] = float(turn.max())
     return out
+
+
+def zero_hold_events(columns: dict[str, np.ndarray], rate_hz: float) -> list[dict[str, Any]]:
+    """One event per period the zero-current control held 0 pA (``FLAG_ZEROED`` rows).
+
+    ``sample`` is the first held row, ``end_sample`` the first row after the hold.
+    """
+    from clampcore.hostloop import FLAG_ZEROED
+
+    flags = columns.get("flags")
+    if flags is None or flags.size == 0:
+        return []
+    held = (flags.astype(np.int64) & FLAG_ZEROED) != 0
+    edges = np.diff(np.concatenate([[0], held.astype(np.int8), [0]]))
+    starts, ends = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
+    return [
+        {
+            "sample": int(a),
+            "kind": "zero_hold",
+            "end_sample": int(b),
+            "duration_s": (int(b) - int(a)) / rate_hz,
+        }
+        for a, b in zip(starts, ends, strict=True)
+    ]
 
 
 class Recorder:
@@ -160,6 +184,8 @@ class Recorder:
         self.drain()
         final = dict(final_meta or {})
         columns = read_journal(self.path).columns
+        for event in zero_hold_events(columns, float(self.program.experiment.loop["rate_hz"])):
+            self.journal.event(event)  # NWB: events/zero_hold_events, one row per hold
         final["timing"] = timing_summary(columns)
         final["lost_rows"] = self.lost_rows
         self.final_meta = final

@@ -16,7 +16,12 @@ def add_parser(sub: Any, name: str) -> None:
     p = sub.add_parser(name, help="the tuning window (needs the 'gui' extra)")
     p.add_argument("experiment", nargs="?", help="experiment file (.toml); empty if omitted")
     p.add_argument("--port", default="sim", help="device path, pyserial URL, or 'sim' (default)")
-    p.add_argument("--record-dir", default=".", help="folder for the NWB recordings")
+    p.add_argument(
+        "--record-dir",
+        default=None,
+        help="folder for the NWB recordings (default: 'recordings' in the user's data folder, "
+        "e.g. ~/.local/share/clampcore/recordings)",
+    )
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--watchdog-ms", type=float, default=20.0, help="board watchdog (default 20)")
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
@@ -27,7 +32,8 @@ def _main(args: argparse.Namespace) -> int:
     from clampcore.engine import RunOptions
 
     options = RunOptions(seed=args.seed, watchdog_ms=args.watchdog_ms, rig_clock=args.rig_clock)
-    return run_window(args.experiment, args.port, options, Path(args.record_dir))
+    record_dir = Path(args.record_dir) if args.record_dir else None
+    return run_window(args.experiment, args.port, options, record_dir)
 
 
 def run_window(
