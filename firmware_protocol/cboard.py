@@ -8,7 +8,7 @@ Public names:
 * ``CompilerMissingError`` - raised when no C compiler is found.
 * ``find_c_compiler() -> str | None`` - ``$CC``, ``cc``, ``gcc`` or ``clang``.
 * ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
-* ``build_core_library(tmpdir) -> Path`` - shared library of the core plus the in-memory
+* ``build_core_library(tmpdir, *defines) -> Path`` - shared library of the core plus the in-memory
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
 * ``build_pty_board(tmpdir, *defines) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
@@ -62,11 +62,19 @@ def _core_sources() -> list[str]:
     return [str(C_SOURCE_DIR / "ccb_core.c"), str(C_SOURCE_DIR / "ccb_law.c")]
 
 
-def build_core_library(tmpdir: str | os.PathLike[str]) -> Path:
-    """Compile the core and the in-memory port into ``tmpdir/libccb_mem.so``."""
-    out = Path(tmpdir) / "libccb_mem.so"
+def _suffix(defines: tuple[str, ...]) -> str:
+    return "".join(f"-{d.replace('=', '_')}" for d in defines)
+
+
+def build_core_library(tmpdir: str | os.PathLike[str], *defines: str) -> Path:
+    """Compile the core and the in-memory port into ``tmpdir/libccb_mem.so``.
+
+    ``defines``: the core's build options (``ccb.h``), e.g. ``"CCB_LAW_QUEUE=16"``.
+    """
+    out = Path(tmpdir) / f"libccb_mem{_suffix(defines)}.so"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "memory_port.c")]
-    args = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, "-fPIC", "-shared", *srcs, "-o", str(out), *_LIBS]
+    flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *(f"-D{d}" for d in defines)]
+    args = [*flags, "-fPIC", "-shared", *srcs, "-o", str(out), *_LIBS]
     _compile(args, "libccb_mem")
     return out
 
@@ -106,7 +114,7 @@ def build_pty_board(tmpdir: str | os.PathLike[str], *defines: str) -> Path:
     ``defines``: build options for the core, e.g. ``"CCB_LAW_QUEUE=0"`` (a board without
     law mode, which ignores the law messages as a version-1 board does).
     """
-    out = Path(tmpdir) / ("pty_board" + "".join(f"-{d.replace('=', '_')}" for d in defines))
+    out = Path(tmpdir) / f"pty_board{_suffix(defines)}"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "pty_board.c")]
     flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *(f"-D{d}" for d in defines)]
     _compile([*flags, *srcs, "-o", str(out), *_LIBS], "pty_board")
