@@ -53,9 +53,7 @@ EXPERIMENT = {
          "refractory_ms": 0.5, "g_nS": 60.0},
     ],
 }  # fmt: skip
-CONV = conversion_array(
-    DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, load_experiment(EXPERIMENT).amplifier
-)
+CONV = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, load_experiment(EXPERIMENT).amplifier)
 SCALE = law_scale(CONV)
 BF, BI, _, _, TABLE = board_arrays(build_program(load_experiment(EXPERIMENT)), CONV, LAW_MODE, 3)
 RULES = lawmsg.rules_body(BF, BI)
@@ -151,14 +149,27 @@ class RigLaw:
             lb.qdue[:] = -1
             self._reply(seq, codec.RESULT_OK)
         elif typ == codec.MSG_START:  # Board._on_start
-            for i in (rb.S_UNKNOWN, rb.S_REJECTED, rb.S_TRIPS, rb.S_APPLIED, rb.S_COUNTER,
-                      rb.S_HAVE_CMD, rb.S_TRIPPED, rb.S_FLAGS, rb.S_LAWS_LATE, rb.S_LAWS_AHEAD):
+            for i in (
+                rb.S_UNKNOWN,
+                rb.S_REJECTED,
+                rb.S_TRIPS,
+                rb.S_APPLIED,
+                rb.S_COUNTER,
+                rb.S_HAVE_CMD,
+                rb.S_TRIPPED,
+                rb.S_FLAGS,
+                rb.S_LAWS_LATE,
+                rb.S_LAWS_AHEAD,
+            ):
                 st[i] = 0  # fmt: skip
             lb.bs[:] = bl.new_board_arrays()[2]
             st[rb.S_CMD_COUNTS] = st[rb.S_FAULT_COUNTS]
             st[rb.S_STATE] = codec.STATE_RUNNING
             self._reply(seq, codec.RESULT_OK)
             self.last_rx_us = now_us
+        elif typ == codec.MSG_KEEPALIVE:  # _on_raw_frame
+            if st[rb.S_STATE] == codec.STATE_RUNNING:
+                self.last_rx_us = now_us
         elif typ == codec.MSG_GET_STATUS:
             self._status(seq, codec.RESULT_OK)
         else:
@@ -212,6 +223,14 @@ class Pair:
         self.seq += 1
         return self.send_wire(lawmsg.frame_bytes(msg_type, self.seq, body))
 
+    def send_laws(self, first: int, laws: list[np.ndarray], blocked: bool) -> bytes:
+        """LAWS frames for samples first.., as many laws to a frame as fit."""
+        most = lawmsg.MAX_LAWS_BLOCKED if blocked else lawmsg.MAX_LAWS
+        sent = b""
+        for i in range(0, len(laws), most):
+            sent += self.send(lawmsg.MSG_LAWS, laws_body(first + i, laws[i : i + most], blocked))
+        return sent
+
     def send_message(self, message: codec.Message) -> bytes:
         self.seq += 1
         return self.send_wire(codec.encode_message(message, self.seq))
@@ -248,7 +267,7 @@ class Pair:
         for body in TABLES:
             self.send(lawmsg.MSG_BLOCK_TABLE, body)
         if laws_in_ready:
-            self.send(lawmsg.MSG_LAWS, laws_body(0, laws_in_ready, blocked))
+            self.send_laws(0, laws_in_ready, blocked)
         self.send_message(codec.Start())
         assert self.c.law_mode()
 
@@ -325,9 +344,9 @@ def test_a_law_mode_run_gives_the_rigs_bytes_and_dac_counts(core: CoreLibrary) -
 
 
 _law_values = st.one_of(
-    st.tuples(
-        st.floats(-3000, 3000), st.floats(0, 60), st.floats(-500, 500), st.floats(0, 10)
-    ).map(lambda t: law_bits(*t)),
+    st.tuples(st.floats(-3000, 3000), st.floats(0, 60), st.floats(-500, 500), st.floats(0, 10)).map(
+        lambda t: law_bits(*t)
+    ),
     # any float32 at all, NaN and infinities included: the guards must agree too
     st.lists(st.floats(width=32), min_size=4, max_size=4).map(
         lambda x: np.array(x, dtype=np.float32).view(np.uint32)
@@ -340,13 +359,18 @@ _events = st.lists(
         st.tuples(st.just("tick"), _adc),
         st.tuples(
             st.just("laws_rel"),
-            st.tuples(st.integers(-6, 1030), st.lists(_law_values, min_size=1, max_size=14),
-                      st.booleans()),
+            st.tuples(
+                # late, due soon, near the queue's end and beyond it (1024 samples)
+                st.one_of(st.integers(-6, -1), st.integers(0, 30), st.integers(1018, 1030)),
+                st.lists(_law_values, min_size=1, max_size=14),
+                st.booleans(),
+            ),
         ),  # fmt: skip
         st.tuples(st.just("zero"), st.booleans()),
         st.tuples(st.just("wait"), st.integers(0, 2 * WATCHDOG_US)),
     ),
-    max_size=60,
+    min_size=20,
+    max_size=80,
 )
 
 
@@ -374,3 +398,220 @@ def _play_one(pair: Pair, kind: str, arg: object) -> bytes:
         return pair.send(lawmsg.MSG_ZERO, lawmsg.ZERO_ON if arg else lawmsg.ZERO_OFF)
     pair.wait(int(arg))
     return b""
+
+
+# ------------------------------------------------------------------ rules, one by one ---
+def test_the_watchdog_in_law_mode(core: CoreLibrary) -> None:
+    """PROTOCOL.md §5.3 in law mode: silence for the watchdog's time gives the fault value
+    at once (STATUS report, FAULT flag, WATCHDOG bit); LAWS restart it and lift the trip."""
+    pair = Pair(core)
+    pair.setup([law_bits(100.0, 0.0)] * 200)
+    rest = adc_at(-70.0)
+    first = _samples(pair.tick(rest))[0]
+    assert first[3] != FAULT and first[4] == 0  # 100 pA in force
+    pair.wait(WATCHDOG_US)
+    sent = pair.tick(rest)
+    reports = [codec.parse_payload(p)[1] for p in reference_deframe(sent)[0][:1]]
+    assert reports[0].result == codec.RESULT_REPORT and reports[0].watchdog_trips == 1
+    (_, status, _, dac, flags) = _samples(sent)[0]
+    assert dac == FAULT and flags & bl.BF_FLAG_FAULT
+    assert status & codec.STATUS_WATCHDOG and status & codec.STATUS_FAULT_OUTPUT
+    assert pair.c.dac(0) == FAULT
+    # KEEPALIVE restarts the watchdog but does not lift a trip (§5.3): still the fault value.
+    pair.send_message(codec.KeepAlive())
+    (_, status, _, dac, flags) = _samples(pair.tick(rest))[0]
+    assert dac == FAULT and status & codec.STATUS_WATCHDOG
+    # LAWS lift it: the queued law is back in force at the next sample.
+    pair.send(lawmsg.MSG_LAWS, laws_body(200, [law_bits(100.0, 0.0)], False))
+    (k, status, _, dac, flags) = _samples(pair.tick(rest))[0]
+    assert k == 3 and dac == first[3] and flags == 0
+    assert status & (codec.STATUS_WATCHDOG | codec.STATUS_FAULT_OUTPUT) == 0
+    assert pair.c.status().watchdog_trips == 1
+
+
+def test_late_laws_and_laws_beyond_the_queue_are_counted_and_dropped(core: CoreLibrary) -> None:
+    """PROTOCOL.md §10.4: a law for a sample already taken is late (counted, STATUS LATE
+    bit, not applied); one CCB_LAW_QUEUE (1024) or more samples ahead does not fit (counted,
+    RX_ERROR bit)."""
+    pair = Pair(core)
+    pair.setup([law_bits(100.0, 0.0)] * 4)
+    rest = adc_at(-70.0)
+    for _ in range(4):
+        pair.tick(rest)
+    # Late: samples 2 and 3 are taken; 4 is the next one and is queued.
+    pair.send(lawmsg.MSG_LAWS, laws_body(2, [law_bits(-100.0, 0.0)] * 3, False))
+    (k, status, _, dac_4, flags) = _samples(pair.tick(rest))[0]
+    assert (k, flags) == (4, 0) and status & codec.STATUS_LATE
+    assert pair.c.law_counts() == (2, 0)
+    # Beyond: the queue holds samples 5 .. 5 + 1023; 1028 fits, 1029 does not.
+    pair.send(lawmsg.MSG_LAWS, laws_body(1028, [law_bits(-100.0, 0.0)] * 2, False))
+    (_, status, _, dac_5, flags) = _samples(pair.tick(rest))[0]
+    assert status & codec.STATUS_RX_ERROR and not status & codec.STATUS_LATE
+    assert pair.c.law_counts() == (2, 1)
+    assert dac_5 == dac_4 and flags == 0  # sample 4's law still in force (lifetime 3)
+    # Counted by the rig alike; both count every law of a LAWS frame as applied.
+    assert (pair.ref.st[rb.S_LAWS_LATE], pair.ref.st[rb.S_LAWS_AHEAD]) == (2, 1)
+    assert pair.c.status().commands_applied == 3 + 2  # this run's frames (START zeroes it)
+
+
+def test_zero_acts_on_arrival_ahead_of_queued_laws_and_start_resets_it(
+    core: CoreLibrary,
+) -> None:
+    pair = Pair(core)
+    pair.setup([law_bits(100.0, 0.0)] * 10)
+    rest = adc_at(-70.0)
+    assert _samples(pair.tick(rest))[0][3] != FAULT
+    pair.send(lawmsg.MSG_ZERO, lawmsg.ZERO_ON)
+    (_, _, _, dac, flags) = _samples(pair.tick(rest))[0]
+    assert dac == FAULT and flags == bl.BF_FLAG_FAULT | bl.BF_FLAG_ZERO
+    # STOP, laws for the next run in READY, START: the zero request is off again and the
+    # laws queued in READY for samples 0.. are in force.
+    pair.c.feed(codec.encode_message(codec.Stop(), 90))
+    pair.c.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 91, laws_body(0, [law_bits(50.0, 0.0)], False)))
+    pair.c.feed(codec.encode_message(codec.Start(), 92))
+    pair.c.set_adc(0, rest)
+    pair.c.tick()
+    (k, _, _, dac, flags) = _samples(pair.c.take_tx())[0]
+    assert (k, flags) == (0, 0) and dac != FAULT
+
+
+def test_stop_forgets_the_laws_of_the_run(core: CoreLibrary) -> None:
+    """A law queued for a sample the run never reached must not act in the next run
+    (a choice of the C core: the rig keeps them, PROTOCOL.md §10.6)."""
+    rig = core.rig(HELLO)
+    for wire in _setup_wires():
+        rig.feed(wire)
+    rig.feed(
+        lawmsg.frame_bytes(lawmsg.MSG_LAWS, 50, laws_body(0, [law_bits(100.0, 0.0)] * 5, False))
+    )
+    rig.feed(codec.encode_message(codec.Start(), 51))
+    rig.set_adc(0, adc_at(-70.0))
+    rig.tick()
+    rig.feed(codec.encode_message(codec.Stop(), 52))
+    rig.feed(codec.encode_message(codec.Start(), 53))
+    rig.take_tx()
+    for _ in range(4):
+        rig.tick()
+    flags = [s[4] for s in _samples(rig.take_tx())]
+    assert flags == [bl.BF_FLAG_FAULT | bl.BF_FLAG_STALE] * 4  # no law: 0 pA
+
+
+def _setup_wires() -> list[bytes]:
+    wires = [codec.encode_message(codec.Configure(RATE_HZ, 1, WATCHDOG_US, (FAULT,)), 1)]
+    wires.append(lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 2, RULES))
+    wires += [lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 3 + i, b) for i, b in enumerate(TABLES)]
+    return wires
+
+
+def _malformed() -> list[tuple[str, bytes]]:
+    bad_shift = lawmsg.rules_body(BF, np.where(np.arange(bl.N_BI) == bl.BI_BLOCK_SHIFT, 17, BI))
+    table_end = struct.pack("<HB", rb.BLOCK_POINTS - 1, 2) + b"\x00" * 8
+    return [
+        ("rules_short", lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 7, RULES[:-1])),
+        ("rules_block_shift_17", lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 7, bad_shift)),
+        ("table_beyond_its_end", lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 7, table_end)),
+        ("table_odd_length", lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 7, TABLES[0][:-1])),
+        ("laws_odd_length", lawmsg.frame_bytes(lawmsg.MSG_LAWS, 7, laws_body(0, [], False)[:-1])),
+        ("laws_count_too_high", lawmsg.frame_bytes(lawmsg.MSG_LAWS, 7, struct.pack("<IIBB", 0, 0, 2, 0) + b"\x00" * 8)),
+        ("zero_without_body", lawmsg.frame_bytes(lawmsg.MSG_ZERO, 7, b"")),
+        ("zero_two_bytes", lawmsg.frame_bytes(lawmsg.MSG_ZERO, 7, b"\x01\x00")),
+    ]  # fmt: skip
+
+
+@pytest.mark.parametrize("name, wire", _malformed(), ids=[m[0] for m in _malformed()])
+def test_malformed_law_messages_are_ignored_and_counted(
+    core: CoreLibrary, name: str, wire: bytes
+) -> None:
+    """PROTOCOL.md §5.5: a body the board cannot use is an unknown message: ignored, counted,
+    never acted on, no reply. (A block shift that would read beyond the board's table is
+    one: the C core checks it, the rig's table is always the largest.)"""
+    rig = core.rig(HELLO)
+    for w in _setup_wires()[:1]:
+        rig.feed(w)
+    rig.take_tx()
+    writes = rig.dac_writes()
+    rig.feed(wire)
+    assert rig.take_tx() == b"" and rig.dac_writes() == writes
+    st = rig.status()
+    assert (st.unknown_messages, st.rejected, st.bad_frames) == (1, 0, 0)
+    assert not rig.law_mode()
+
+
+def test_law_setup_outside_ready_is_refused_and_laws_need_a_configured_board(
+    core: CoreLibrary,
+) -> None:
+    rig = core.rig(HELLO)
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 1, laws_body(0, [law_bits(1.0, 0.0)], False)))
+    assert rig.take_tx() == b"" and rig.status().unknown_messages == 1  # UNCONFIGURED
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 2, RULES))
+    for wire in (codec.encode_message(codec.Configure(RATE_HZ, 1, WATCHDOG_US, (FAULT,)), 3),
+                 codec.encode_message(codec.Start(), 4),
+                 lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 5, RULES),
+                 lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 6, TABLES[0])):  # fmt: skip
+        rig.feed(wire)
+    replies = [codec.parse_payload(p)[1] for p in reference_deframe(rig.take_tx())[0]]
+    results = [(r.ack_seq, r.result) for r in replies if isinstance(r, codec.Status)]
+    bad = codec.RESULT_BAD_STATE
+    assert results == [(2, bad), (3, codec.RESULT_OK), (4, codec.RESULT_OK), (5, bad), (6, bad)]
+    assert not rig.law_mode()
+
+
+def test_without_board_rules_the_board_is_a_version_1_board(core: CoreLibrary) -> None:
+    """No BOARD_RULES, or a CONFIGURE after them: SAMPLE messages and COMMANDs (§4, §5)."""
+    rig = core.rig(HELLO)
+    for wire in _setup_wires():
+        rig.feed(wire)
+    assert rig.law_mode()
+    rig.feed(codec.encode_message(codec.Configure(RATE_HZ, 1, WATCHDOG_US, (FAULT,)), 10))
+    assert not rig.law_mode()  # CONFIGURE leaves law mode until BOARD_RULES come again
+    rig.feed(codec.encode_message(codec.Start(), 11))
+    rig.set_adc(0, 1234)
+    rig.tick()
+    rig.feed(codec.encode_message(codec.Command(0, (40000,)), 12))
+    rig.tick()
+    msgs = [codec.parse_payload(p)[1] for p in reference_deframe(rig.take_tx())[0]]
+    samples = [m for m in msgs if isinstance(m, codec.Sample)]
+    assert [(s.counter, s.adc_counts, s.cmd_seq) for s in samples] == [(0, (1234,), 0),
+                                                                      (1, (1234,), 12)]  # fmt: skip
+    assert rig.dac(0) == 40000  # the COMMAND acted on arrival, as in version 1
+
+
+def test_a_board_built_without_law_mode_ignores_the_law_messages(
+    tmp_path_factory: pytest.TempPathFactory,
+) -> None:
+    """CCB_LAW_QUEUE=0: a version-1 board, which counts every law message as unknown and
+    answers none (§5.5); the host then runs it in current mode."""
+    if find_c_compiler() is None:
+        pytest.skip(NO_CC)
+    lib = CoreLibrary(build_core_library(tmp_path_factory.mktemp("v1"), "CCB_LAW_QUEUE=0"))
+    rig = lib.rig(HELLO)
+    wires = _setup_wires()
+    for wire in wires:
+        rig.feed(wire)
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_ZERO, 9, lawmsg.ZERO_ON))
+    replies = reference_deframe(rig.take_tx())[0]
+    assert len(replies) == 1  # CONFIGURE's only
+    assert rig.status().unknown_messages == len(wires) - 1 + 1
+    assert not rig.law_mode()
+
+
+def test_a_smaller_queue_holds_fewer_laws(tmp_path_factory: pytest.TempPathFactory) -> None:
+    if find_c_compiler() is None:
+        pytest.skip(NO_CC)
+    lib = CoreLibrary(build_core_library(tmp_path_factory.mktemp("q8"), "CCB_LAW_QUEUE=8"))
+    rig = lib.rig(HELLO)
+    for wire in _setup_wires():
+        rig.feed(wire)
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 9, laws_body(0, [law_bits(0, 0)] * 10, True)))
+    assert rig.law_counts() == (0, 2)  # samples 8 and 9 are 8 or more ahead of sample 0
+
+
+@pytest.mark.parametrize("count", [1, 2, 5, lawmsg.MAX_SAMPLES])
+def test_samples_encoder_equals_the_hosts(core: CoreLibrary, count: int) -> None:
+    rng = np.random.default_rng(count)
+    adc, dac = (rng.integers(0, 65536, count) for _ in range(2))
+    flags = rng.integers(0, 256, count)
+    out = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
+    n = lawmsg.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, count, adc, dac, flags, out)
+    c = core.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, adc, dac, flags)
+    assert c == out[:n].tobytes()
