@@ -30,7 +30,7 @@ from clampcore.law import LAW_MODE, board_arrays, law_scale, law_to_counts
 from clampcore.program import build_program
 from firmware_protocol import boardlaw as bl
 from firmware_protocol import codec, lawmsg
-from firmware_protocol.cbinding import CoreLibrary, MemoryRig
+from firmware_protocol.cbinding import CoreLibrary
 from firmware_protocol.cboard import build_core_library, find_c_compiler
 from firmware_protocol.fuzz import reference_deframe
 from simulated_rig import board as rb
@@ -365,7 +365,7 @@ _events = st.lists(
                 st.lists(_law_values, min_size=1, max_size=14),
                 st.booleans(),
             ),
-        ),  # fmt: skip
+        ),
         st.tuples(st.just("zero"), st.booleans()),
         st.tuples(st.just("wait"), st.integers(0, 2 * WATCHDOG_US)),
     ),
@@ -504,6 +504,7 @@ def _setup_wires() -> list[bytes]:
 
 
 def _malformed() -> list[tuple[str, bytes]]:
+    two_laws_one_sent = struct.pack("<IIBB", 0, 0, 2, 0) + b"\x00" * 8
     bad_shift = lawmsg.rules_body(BF, np.where(np.arange(bl.N_BI) == bl.BI_BLOCK_SHIFT, 17, BI))
     table_end = struct.pack("<HB", rb.BLOCK_POINTS - 1, 2) + b"\x00" * 8
     return [
@@ -512,7 +513,7 @@ def _malformed() -> list[tuple[str, bytes]]:
         ("table_beyond_its_end", lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 7, table_end)),
         ("table_odd_length", lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 7, TABLES[0][:-1])),
         ("laws_odd_length", lawmsg.frame_bytes(lawmsg.MSG_LAWS, 7, laws_body(0, [], False)[:-1])),
-        ("laws_count_too_high", lawmsg.frame_bytes(lawmsg.MSG_LAWS, 7, struct.pack("<IIBB", 0, 0, 2, 0) + b"\x00" * 8)),
+        ("laws_count_too_high", lawmsg.frame_bytes(lawmsg.MSG_LAWS, 7, two_laws_one_sent)),
         ("zero_without_body", lawmsg.frame_bytes(lawmsg.MSG_ZERO, 7, b"")),
         ("zero_two_bytes", lawmsg.frame_bytes(lawmsg.MSG_ZERO, 7, b"\x01\x00")),
     ]  # fmt: skip
