@@ -17,6 +17,7 @@ detection, threshold_reset, an Mg-blocked synapse's table).
 from __future__ import annotations
 
 import math
+from pathlib import Path
 import struct
 
 import numpy as np
@@ -616,3 +617,42 @@ def test_samples_encoder_equals_the_hosts(core: CoreLibrary, count: int) -> None
     n = lawmsg.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, count, adc, dac, flags, out)
     c = core.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, adc, dac, flags)
     assert c == out[:n].tobytes()
+
+
+# ------------------------------------------------------------------ end to end ---
+def test_the_host_runs_the_c_board_in_law_mode(tmp_path: Path) -> None:
+    """Engine -> pseudo-terminal -> the C core (ports/pty_board.c, its passive cell C 100 pF,
+    g_L 5 nS, E_L -70 mV): law mode, recorded, a valid NWB file (pynwb's validator)."""
+    from clampcore.engine import Engine, RunOptions
+    from clampcore.nwb import read_nwb_summary, validate_nwb
+    from firmware_protocol.cboard import build_pty_board, start_pty_board
+
+    if find_c_compiler() is None:
+        pytest.skip(NO_CC)
+    exp = {
+        "loop": {"rate_hz": 10_000, "max_current_pA": 400.0, "mode": "law"},
+        "amplifier": {"vm_mV_per_V": 100.0, "command_pA_per_V": 400.0},  # pty_board's own
+        "element": [{"kind": "leak", "name": "shunt", "g_nS": 5.0, "e_mV": 0.0}],
+    }
+    with start_pty_board(build_pty_board(tmp_path)) as board:
+        engine = Engine(exp, board.slave_path, RunOptions(watchdog_ms=200))
+        engine.start(duration_s=1.0, out=tmp_path / "law.nwb")
+        assert engine.wait(120.0), "the run did not end"
+        result = engine.finish()
+    assert result.error is None, result.error
+    assert result.mode == "law" and result.notice is None
+    assert validate_nwb(result.nwb_path) == []  # pynwb's validator: a list of problems
+    rec = read_nwb_summary(result.nwb_path)
+    assert rec["n_samples"] >= 9000
+    v, i_pA = rec["v_mV"], rec["i_pA"]
+    flags = rec["columns"]["flags"].astype(np.int64)
+    ok = flags == 0  # the board evaluated a law in force (not stale, no fault)
+    assert ok.mean() > 0.9, f"only {ok.mean():.1%} of the samples had a law in force"
+    # Each sample's current is the law at that sample's own V: I = -g (V - E), E = 0 mV
+    # (Ohm's law for a conductance); within the converters' steps (DAC 0.06 pA, ADC
+    # 0.03 mV = 0.15 pA at 5 nS: PROTOCOL.md §6, 16 bits over ±10 V).
+    np.testing.assert_allclose(i_pA[ok], -5.0 * v[ok], atol=0.2)
+    # The cell under the two conductances settles at (g_L E_L + g E) / (g_L + g) = -35 mV
+    # (membrane RC theory), tau = C / (g_L + g) = 10 ms: look after 20 tau.
+    late = ok & (np.arange(v.size) > 2000)
+    assert np.mean(v[late]) == pytest.approx(-35.0, abs=0.3)
