@@ -128,6 +128,8 @@ class RunOptions:
     # Do the serial I/O with pyserial from Python (slower) instead of inside the compiled
     # loop: what ports without a file descriptor (some pyserial URLs) always get.
     python_io: bool = False
+    # Keep the journal after the NWB file was written and checked (default: removed).
+    keep_journal: bool = False
     rig_clock: str = "wall"  # for port "sim": the simulated rig's clock
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
@@ -346,6 +348,18 @@ def _law_loop(
     return law_fd_loop(fd, spin_us, silent_ms, max_samples, *a.arrays(), *law.args)
 
 
+# [loop] fields a law-evaluating board applies itself (clampcore.law.board_arrays).
+_BOARD_LOOP_FIELDS = ("max_current_pA", "spike_threshold_mV", "spike_hysteresis_mV")
+
+
+def board_owns(program: Program, element: str, field_name: str) -> bool:
+    """Whether ``element.field_name`` is a rule the board applies in law mode (the current
+    limit, spike detection, every threshold_reset field) rather than part of the law."""
+    if element == "loop":
+        return field_name in _BOARD_LOOP_FIELDS
+    return program.kinds[program.row(element)] == "threshold_reset"
+
+
 def law_lead_samples(program: Program) -> int:
     """Law mode's look-ahead for ``program``: ``lead_ms``, shortened to fit every cell-driven
     synapse's delay (at least lead + 1 samples: the minimum-delay rule). Raises
@@ -554,6 +568,11 @@ class Engine:
         slot = self.program.param_slot(element, field_name)
         if self.shared is None:
             raise EngineError("not running")
+        if self.law_mode_requested and board_owns(self.program, element, field_name):
+            raise EngineError(
+                f"{element}.{field_name} cannot change while running in law mode: the board "
+                "applies it from the rules it got at start (stop, change it, start again)"
+            )
         number = self.shared.post_change(MAIL_TARGETS[slot.array], slot.row, slot.col, stored)
         # Keep our copy of the experiment in step, for saving and for later validation.
         if element == "loop":
@@ -561,6 +580,11 @@ class Engine:
         else:
             self.experiment.element(element)[field_name] = value
         return number
+
+    @property
+    def law_mode_requested(self) -> bool:
+        """Whether this run asks the board to evaluate the current law (PROTOCOL.md §10)."""
+        return (self.options.mode or self.experiment.loop["mode"]) == LAW_MODE
 
     def wait(self, timeout_s: float | None = None) -> bool:
         """Wait for the loop to end by itself; True if it has."""
@@ -607,7 +631,7 @@ class Engine:
         }
         nwb = None
         try:
-            nwb = self.recorder.stop(final, self.nwb_path)
+            nwb = self.recorder.stop(final, self.nwb_path, self.options.keep_journal)
         finally:
             self.shared.close()
         timing = self.recorder.final_meta.get("timing", {})

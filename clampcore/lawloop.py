@@ -18,7 +18,8 @@ Real-time rules as in ``clampcore.hostloop``: compiled, preallocated, no I/O but
 read and one write per pass.
 
 Public names: ``LawLinkArrays``, ``new_law_link``, ``top_up_laws``, ``process_rx_law``,
-``law_fd_loop``, the ``LW_*`` indices, ``FLAG_STALE``.
+``law_fd_loop``, ``host_flags``, ``host_flags_of``, ``board_reset_current``, the ``LW_*``
+indices, ``FLAG_STALE``.
 """
 
 from __future__ import annotations
@@ -189,7 +190,31 @@ def new_law_link(lead: int, blocked: bool, n_elements: int, n_neurons: int) -> L
 
 
 @kernel
-def _board_reset_current(
+def host_flags(bflags: int) -> int:
+    """The host's per-sample flags (as recorded) for the board's flags of a sample."""
+    flags = 0
+    if bflags & bl.BF_FLAG_BAD_V:
+        flags |= FAULT_BAD_V
+    if bflags & bl.BF_FLAG_NONFINITE:
+        flags |= FAULT_NONFINITE
+    if bflags & bl.BF_FLAG_STALE:
+        flags |= FLAG_STALE
+    if bflags & bl.BF_FLAG_LIMITED:
+        flags |= FLAG_LIMITED
+    if bflags & bl.BF_FLAG_ZERO:
+        flags |= FLAG_ZEROED
+    return flags
+
+
+@kernel
+def host_flags_of(bflags: np.ndarray, out: np.ndarray) -> None:
+    """``host_flags`` of every sample."""
+    for k in range(bflags.shape[0]):
+        out[k] = host_flags(bflags[k])
+
+
+@kernel
+def board_reset_current(
     v_mV: float,
     on: bool,
     kind: np.ndarray,
@@ -367,18 +392,8 @@ def process_rx_law(
                 g_out[r] = ghist[h, r]
                 i_out[r] = ghist[h, n_el + r]
             cell_currents(v_mV, kind, params, g_out, i_out)
-            _board_reset_current(v_mV, (bflags & bl.BF_FLAG_RESET) != 0, kind, params, g_out, i_out)
-            flags = 0
-            if bflags & bl.BF_FLAG_BAD_V:
-                flags |= FAULT_BAD_V
-            if bflags & bl.BF_FLAG_NONFINITE:
-                flags |= FAULT_NONFINITE
-            if bflags & bl.BF_FLAG_STALE:
-                flags |= FLAG_STALE
-            if bflags & bl.BF_FLAG_LIMITED:
-                flags |= FLAG_LIMITED
-            if bflags & bl.BF_FLAG_ZERO:
-                flags |= FLAG_ZEROED
+            board_reset_current(v_mV, (bflags & bl.BF_FLAG_RESET) != 0, kind, params, g_out, i_out)
+            flags = host_flags(bflags)
             row = lw[LW_SAMPLES] % rows
             ring[row, COL_COUNTER] = counter
             ring[row, COL_V] = v_mV

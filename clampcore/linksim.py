@@ -40,8 +40,9 @@ from clampcore.calibration import (
     counts_to_pA,
     mV_to_counts,
 )
-from clampcore.elements import KIND_SYNAPSE
+from clampcore.elements import KIND_NEURON, KIND_SYNAPSE
 from clampcore.elements import synapse as _syn
+from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.jit import kernel
 from clampcore.law import (
     CURRENT_MODE,
@@ -51,6 +52,7 @@ from clampcore.law import (
     law_scale,
     law_to_counts,
 )
+from clampcore.lawloop import board_reset_current
 from clampcore.links import LINKS, Link, schedule
 from clampcore.program import build_program
 from clampcore.step import (
@@ -64,7 +66,13 @@ from clampcore.step import (
     hist_record_cell_spike,
     step,
 )
-from firmware_protocol.boardlaw import BF_FLAG_SPIKE, BI_FAULT_COUNTS, board_eval, board_set_law
+from firmware_protocol.boardlaw import (
+    BF_FLAG_RESET,
+    BF_FLAG_SPIKE,
+    BI_FAULT_COUNTS,
+    board_eval,
+    board_set_law,
+)
 from simulated_rig.cells import cell_advance, cell_measure_mV, cell_v_true_mV, make_cell
 
 _US_PER_MS = 1000.0
@@ -107,6 +115,8 @@ def link_loop(
     out_flags: np.ndarray,
     out_g: np.ndarray,
     out_i_el: np.ndarray,
+    neuron_rows: np.ndarray,
+    out_nspk: np.ndarray,
     counters: np.ndarray,
 ) -> None:
     """Run every sample of ``out_adc``; see the module docstring. Outputs in place.
@@ -137,6 +147,7 @@ def link_loop(
             law_arrive_us[s] = 0.0
             _put_row(out_g, s, g_out)
             _put_row(out_i_el, s, i_out)
+            _neuron_spikes(state, neuron_rows, out_nspk, s)
             hi = s
     i_applied = counts_to_pA(conv, bi[BI_FAULT_COUNTS])
     for k in range(n):
@@ -174,6 +185,7 @@ def link_loop(
                         out_flags[m] |= BF_FLAG_SPIKE
                     _put_row(out_g, m, g_out)
                     _put_row(out_i_el, m, i_out)
+                    _neuron_spikes(state, neuron_rows, out_nspk, m)
             seen = max(seen, newest)
             if law_mode:
                 for s in range(hi + 1, min(newest + lead, n - 1) + 1):
@@ -191,6 +203,7 @@ def link_loop(
                     law_arrive_us[s] = arrive_us[w]
                     _put_row(out_g, s, g_out)
                     _put_row(out_i_el, s, i_out)
+                    _neuron_spikes(state, neuron_rows, out_nspk, s)
                     hi = s
             w += 1
         if not law_mode:
@@ -210,10 +223,17 @@ def link_loop(
     if law_mode:
         # Each sample's element currents at the V the cell had (the host keeps g until V comes).
         for k in range(min(n, hi + 1)):
-            cell_currents(
-                counts_to_mV(conv, float(out_adc[k])), kind, params, out_g[k], out_i_el[k]
-            )
+            v_k = counts_to_mV(conv, float(out_adc[k]))
+            cell_currents(v_k, kind, params, out_g[k], out_i_el[k])
+            reset_on = (out_flags[k] & BF_FLAG_RESET) != 0
+            board_reset_current(v_k, reset_on, kind, params, out_g[k], out_i_el[k])
     counters[1] = hi
+
+
+@kernel
+def _neuron_spikes(state: np.ndarray, rows: np.ndarray, out: np.ndarray, s: int) -> None:
+    for j in range(rows.shape[0]):
+        out[s, j] = state[rows[j], NEURON_S_SPIKED] != 0.0
 
 
 @kernel
@@ -255,6 +275,7 @@ class LinkRun:
     up_bytes: int
     down_bytes: int
     late_spikes: int
+    neuron_spikes: np.ndarray | None = None  # bool (n, virtual neurons)
 
     @property
     def spikes(self) -> np.ndarray:
@@ -304,6 +325,8 @@ def run(
         "i_el": np.zeros((n, n_el)),
     }
     counters = np.zeros(2, np.int64)
+    neuron_rows = np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], np.int64)
+    out["nspk"] = np.zeros((n, neuron_rows.size), dtype=np.bool_)
     link_loop(
         law_mode,
         lead,
@@ -332,6 +355,8 @@ def run(
         out["flags"],
         out["g"],
         out["i_el"],
+        neuron_rows,
+        out["nspk"],
         counters,
     )
     return LinkRun(
@@ -348,4 +373,5 @@ def run(
         up_bytes=sched.up_bytes,
         down_bytes=sched.down_bytes,
         late_spikes=int(counters[0]),
+        neuron_spikes=out["nspk"],
     )

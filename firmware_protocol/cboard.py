@@ -4,12 +4,14 @@ Public names:
 
 * ``C_SOURCE_DIR`` - where ``ccb.h``, ``ccb_core.c`` and ``ports/`` live.
 * ``STRICT_FLAGS`` - the warning flags every C file must pass.
-* ``LAW_FLAGS`` - what the law arithmetic (``ccb_law.c``) needs: no fused multiply-add.
+* ``LAW_FLAGS`` - the extra flag ``ccb_law.c`` needs (no fused multiply-add).
 * ``CompilerMissingError`` - raised when no C compiler is found.
 * ``find_c_compiler() -> str | None`` - ``$CC``, ``cc``, ``gcc`` or ``clang``.
 * ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
 * ``build_core_library(tmpdir, *defines) -> Path`` - shared library of the core plus the in-memory
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
+* ``build_law_library(tmpdir, opt="-O2", extra=()) -> Path`` - shared library of the board's
+  per-sample arithmetic (``ccb_law.c``) for ctypes (see ``firmware_protocol.claw``).
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
 * ``build_pty_board(tmpdir, *defines) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
 * ``PtyBoard`` / ``start_pty_board(binary, *options) -> PtyBoard`` - run it; the
@@ -76,6 +78,22 @@ def build_core_library(tmpdir: str | os.PathLike[str], *defines: str) -> Path:
     flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *(f"-D{d}" for d in defines)]
     args = [*flags, "-fPIC", "-shared", *srcs, "-o", str(out), *_LIBS]
     _compile(args, "libccb_mem")
+    return out
+
+
+def build_law_library(
+    tmpdir: str | os.PathLike[str], opt: str = "-O2", extra: tuple[str, ...] = ()
+) -> Path:
+    """Compile ``ccb_law.c`` into a shared library in ``tmpdir`` and return its path.
+
+    ``opt`` is the optimisation level (-O0, -O2, -Os ...), ``extra`` more flags (e.g.
+    ``-march=native``, which offers fused multiply-add where the machine has it).
+    """
+    out = Path(tmpdir) / f"libccb_law{opt}{''.join(extra)}.so"
+    src = str(C_SOURCE_DIR / "ccb_law.c")
+    args = [*STRICT_FLAGS, opt, *extra, *LAW_FLAGS, "-fPIC", "-shared", src, "-o", str(out)]
+    args += _LIBS
+    _compile(args, "libccb_law")
     return out
 
 

@@ -17,8 +17,8 @@ detection, threshold_reset, an Mg-blocked synapse's table).
 from __future__ import annotations
 
 import math
-from pathlib import Path
 import struct
+from pathlib import Path
 
 import numpy as np
 import pytest

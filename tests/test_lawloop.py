@@ -15,6 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
+import clampcore
 from clampcore import linksim
 from clampcore.calibration import (
     DEFAULT_BOARD_ADC,
@@ -22,7 +23,7 @@ from clampcore.calibration import (
     conversion_array,
     pA_to_counts,
 )
-from clampcore.engine import Engine, RunOptions, law_lead_samples
+from clampcore.engine import Engine, EngineError, RunOptions, law_lead_samples
 from clampcore.experiment import load_experiment
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.program import build_program
@@ -71,10 +72,15 @@ def test_lockstep_law_mode_equals_the_ideal_clamp(tmp_path):
     rec = _run(Engine(SUBTHRESHOLD, "sim", options), 0.3, tmp_path / "law.nwb")
     ideal = linksim.run(SUBTHRESHOLD, 0.3, mode="ideal")
     np.testing.assert_array_equal(rec["i_pA"], ideal.i_pA)
-    np.testing.assert_array_equal(rec["columns"]["g_nS/nmda"], ideal.g_nS[:, 2])
-    # Each element's current at the V the cell had: I = -g B(V) (V - E) with the host's V.
-    i_exc = rec["columns"]["i_pA/exc"]
-    np.testing.assert_allclose(i_exc, -rec["columns"]["g_nS/exc"] * rec["v_mV"], atol=1e-9)
+    # Conductances are recorded as float32 (clampcore.nwb): equal after that rounding.
+    np.testing.assert_array_equal(rec["columns"]["g_nS/nmda"], ideal.g_nS[:, 2].astype(np.float32))
+    offline = clampcore.simulate(SUBTHRESHOLD, 0.3)  # [loop] mode = "law": the same split
+    np.testing.assert_array_equal(rec["v_mV"], offline.v_mV)
+    np.testing.assert_array_equal(rec["i_pA"], offline.i_pA)
+    # Element currents are recorded to float32 precision (stored, or derived on reading).
+    np.testing.assert_allclose(
+        rec["columns"]["i_pA/nmda"], offline.i_element_pA["nmda"], rtol=1e-6, atol=1e-9
+    )
 
 
 def test_lockstep_law_mode_with_threshold_reset_and_a_delayed_cell_synapse(tmp_path):
@@ -173,3 +179,32 @@ def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
     assert result.samples >= 1000
     assert result.mode == "current"
     assert "current mode" in (result.notice or "")
+
+
+def test_live_changes_in_law_mode_reach_the_law_or_are_refused(tmp_path):
+    """A conductance change is part of the law: applied from the sample the host is making
+    laws for, and logged with it. A rule the board applies itself (the current limit) cannot
+    change behind the board's back, so it is refused with the reason."""
+    engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall"))
+    engine.start(duration_s=None, out=tmp_path / "live.nwb")
+    deadline = time.monotonic() + 60
+    while engine.status().get("samples", 0) < 2000:
+        assert time.monotonic() < deadline and engine.running
+        time.sleep(0.02)
+    try:
+        engine.change("loop", "max_current_pA", 300.0)
+    except EngineError as exc:
+        assert "law mode" in str(exc)
+    else:
+        raise AssertionError("a board-owned rule changed while running")
+    engine.change("extra_leak", "g_nS", 12.0)
+    time.sleep(0.3)
+    result = engine.finish()
+    assert result.error is None, result.error
+    rec = read_nwb_summary(result.nwb_path)
+    (change,) = [c for c in rec["param_changes"] if c.get("field") == "g_nS"]
+    g = rec["columns"]["g_nS/extra_leak"]
+    counters = rec["columns"]["sample_counter"].astype(np.int64)
+    first = int(np.flatnonzero(g == 12.0)[0])
+    assert np.all(g[:first] == 5.0) and np.all(g[first:] == 12.0)
+    assert counters[first] == change["sample"]

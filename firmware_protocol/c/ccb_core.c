@@ -658,8 +658,8 @@ static void on_start(ccb_board *b, uint16_t seq)
     b->cmd_seq = 0;
     b->cmd_answers = 0;
 #if CCB_LAW_QUEUE > 0
-    /* detector armed, no law in force, zero request off; laws queued in READY for
-     * samples 0.. stay */
+    /* detector at its start state, no law in force, zero request off; laws queued in
+     * READY for samples 0.. stay */
     ccb_law_reset(&b->law.state);
     b->law.k = 0;
     b->law.late = 0;
