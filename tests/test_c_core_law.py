@@ -16,6 +16,7 @@ detection, threshold_reset, an Mg-blocked synapse's table).
 
 from __future__ import annotations
 
+import json
 import math
 import struct
 from pathlib import Path
@@ -32,7 +33,7 @@ from clampcore.program import build_program
 from firmware_protocol import boardlaw as bl
 from firmware_protocol import codec, lawmsg
 from firmware_protocol.cbinding import CoreLibrary
-from firmware_protocol.cboard import build_core_library, find_c_compiler
+from firmware_protocol.cboard import C_SOURCE_DIR, build_core_library, find_c_compiler
 from firmware_protocol.fuzz import reference_deframe
 from simulated_rig import board as rb
 
@@ -617,6 +618,53 @@ def test_samples_encoder_equals_the_hosts(core: CoreLibrary, count: int) -> None
     n = lawmsg.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, count, adc, dac, flags, out)
     c = core.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, adc, dac, flags)
     assert c == out[:n].tobytes()
+
+
+# ------------------------------------------------------------------ shared vectors ---
+LAW_VECTORS = json.loads((C_SOURCE_DIR.parent / "vectors" / "law_v2.json").read_text())
+_RULE_FLOATS = ("limit_lo", "limit_hi", "tr_alpha", "tr_beta")
+_RULE_INTS = ("adc_ok_lo", "adc_ok_hi", "spike_adc", "rearm_adc", "tr_adc", "tr_samples",
+              "lifetime", "block_shift")  # fmt: skip
+
+
+def _f32(hexbits: str) -> int:
+    return int(hexbits, 16)
+
+
+@pytest.mark.parametrize("case", LAW_VECTORS["cases"], ids=lambda c: c["name"])
+def test_the_whole_core_reproduces_the_shared_vectors(core: CoreLibrary, case: dict) -> None:
+    """vectors/law_v2.json through the messages: BOARD_RULES and BLOCK_TABLE from the
+    case, each step's law queued by LAWS for its sample, ZERO when the request changes,
+    one tick per step; every SAMPLES frame carries the vector's counts and flags, and the
+    DAC holds them."""
+    p = case["params"]
+    assert p["dac_top"] == (1 << HELLO.dac_bits) - 1
+    rules = struct.pack(
+        "<4I8i", *(_f32(p[n]["f32"]) for n in _RULE_FLOATS), *(p[n] for n in _RULE_INTS)
+    )
+    rig = core.rig(HELLO)
+    rig.feed(codec.encode_message(codec.Configure(RATE_HZ, 1, 60_000_000, (p["fault_counts"],)), 1))
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 2, rules))
+    table = np.array([_f32(h) for h in case["table"]], dtype=np.uint32).view(np.float32)
+    for i, body in enumerate(lawmsg.table_bodies(table)):
+        rig.feed(lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 3 + i, body))
+    for step in case["steps"]:
+        if step.get("law"):
+            words = [_f32(step["law"][n]["f32"]) for n in ("alpha", "beta", "alpha_b", "beta_b")]
+            rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 100, laws_body(step["k"], [words], True)))
+    rig.feed(codec.encode_message(codec.Start(), 101))
+    replies = [codec.parse_payload(x)[1] for x in reference_deframe(rig.take_tx())[0]]
+    assert {r.result for r in replies} == {codec.RESULT_OK}
+    zero = False
+    for step in case["steps"]:
+        if step["zero"] != zero:
+            zero = step["zero"]
+            rig.feed(lawmsg.frame_bytes(lawmsg.MSG_ZERO, 102, b"\x01" if zero else b"\x00"))
+        rig.set_adc(0, step["adc"])
+        rig.tick()
+        ((k, _, adc, dac, flags),) = _samples(rig.take_tx())
+        assert (k, adc, dac, flags) == (step["k"], step["adc"], step["counts"], step["flags"])
+        assert rig.dac(0) == step["counts"]
 
 
 # ------------------------------------------------------------------ end to end ---
