@@ -7,12 +7,14 @@ Build the library with ``firmware_protocol.cboard.build_core_library(tmpdir)``, 
   (raises ``FrameError``), ``frame_encode(msg_type, seq, body) -> bytes``,
   ``deframe_stream(data, chunk) -> StreamResult``, ``encode_hello(seq, hello) -> bytes``,
   ``encode_status(seq, status) -> bytes``, ``encode_sample(seq, sample) -> bytes``,
+  ``encode_samples(seq, first, clock_us, status, adc, dac, flags) -> bytes`` (SAMPLES),
   ``parse_configure(payload) -> Configure``, ``parse_command(payload) -> (seq, Command)``
   (both raise ``FrameError``), ``rig(hello) -> MemoryRig``.
 * ``MemoryRig`` - one board on the in-memory port: ``feed(data)``, ``tick()``,
   ``set_clock(now_us)``, ``set_adc(channel, counts)``, ``dac(channel) -> int``,
   ``dac_writes() -> int``, ``take_tx() -> bytes``, ``status() -> Status``,
-  ``state() -> int``, ``rate_hz() -> int``.
+  ``state() -> int``, ``rate_hz() -> int``, ``law_mode() -> bool``,
+  ``law_counts() -> (late, ahead)`` (laws not queued, PROTOCOL.md §10).
 * ``StreamResult`` - payloads, good and bad counts, bad counts per reason, digest.
 * ``fnv1a_digest(payloads) -> int`` - the same digest the C stream helper computes.
 """
@@ -21,6 +23,7 @@ from __future__ import annotations
 
 import ctypes
 import os
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 from firmware_protocol.codec import (
@@ -152,6 +155,7 @@ class CoreLibrary:
             "ccb_encode_hello": (_Result, [_u16, _p, _p, _size]),
             "ccb_encode_status": (_Result, [_u16, _p, _p, _size]),
             "ccb_encode_sample": (_Result, [_u16, _u32, _u32, _u16, _u8, _p, _u8, _p, _size]),
+            "ccb_encode_samples": (_Result, [_u16, _u32, _u32, _u8, _u8, _p, _p, _p, _p, _size]),
             "ccb_parse_configure": (_u8, [_p, _size, _p]),
             "ccb_parse_command": (_u8, [_p, _size, _p]),
             "ccb_mem_deframe_stream": (_size, [_p, _size, _size, _p, _size, _p, _size, _p]),
@@ -168,6 +172,8 @@ class CoreLibrary:
             "ccb_state": (_u8, [_p]),
             "ccb_rate_hz": (_u32, [_p]),
             "ccb_get_status": (None, [_p, _p]),
+            "ccb_law_mode": (_u8, [_p]),
+            "ccb_law_counts": (None, [_p, _p, _p]),
         }
         for name, (restype, argtypes) in sig.items():
             fn = getattr(lib, name)
@@ -249,6 +255,27 @@ class CoreLibrary:
             raise FrameError(f"ccb_encode_sample failed with status {r.status}")
         return out.raw[: r.len]
 
+    def encode_samples(
+        self,
+        seq: int,
+        first: int,
+        clock_us: int,
+        status: int,
+        adc: Sequence[int],
+        dac: Sequence[int],
+        flags: Sequence[int],
+    ) -> bytes:
+        """A SAMPLES frame (PROTOCOL.md §10.4) of ``len(adc)`` samples from ``first``."""
+        k = len(adc)
+        out = ctypes.create_string_buffer(MAX_WIRE)
+        r = self.lib.ccb_encode_samples(
+            seq, first, clock_us, status, k, (_u16 * k)(*adc), (_u16 * k)(*dac),
+            (_u8 * k)(*flags), out, MAX_WIRE,
+        )  # fmt: skip
+        if r.status != _CCB_OK:
+            raise FrameError(f"ccb_encode_samples failed with status {r.status}")
+        return out.raw[: r.len]
+
     def parse_configure(self, payload: bytes) -> Configure:
         c = _Configure()
         rc = self.lib.ccb_parse_configure(payload, len(payload), ctypes.byref(c))
@@ -309,6 +336,15 @@ class MemoryRig:
 
     def rate_hz(self) -> int:
         return self._lib.ccb_rate_hz(self._board)
+
+    def law_mode(self) -> bool:
+        return bool(self._lib.ccb_law_mode(self._board))
+
+    def law_counts(self) -> tuple[int, int]:
+        """Laws of this run not queued: (late, beyond the queue)."""
+        late, ahead = _u32(), _u32()
+        self._lib.ccb_law_counts(self._board, ctypes.byref(late), ctypes.byref(ahead))
+        return late.value, ahead.value
 
     def status(self) -> Status:
         st = _Status()

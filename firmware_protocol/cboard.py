@@ -8,12 +8,12 @@ Public names:
 * ``CompilerMissingError`` - raised when no C compiler is found.
 * ``find_c_compiler() -> str | None`` - ``$CC``, ``cc``, ``gcc`` or ``clang``.
 * ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
-* ``build_core_library(tmpdir) -> Path`` - shared library of the core plus the in-memory
+* ``build_core_library(tmpdir, *defines) -> Path`` - shared library of the core plus the in-memory
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
 * ``build_law_library(tmpdir, opt="-O2", extra=()) -> Path`` - shared library of the board's
   per-sample arithmetic (``ccb_law.c``) for ctypes (see ``firmware_protocol.claw``).
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
-* ``build_pty_board(tmpdir) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
+* ``build_pty_board(tmpdir, *defines) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
 * ``PtyBoard`` / ``start_pty_board(binary, *options) -> PtyBoard`` - run it; the
   object gives the slave path and stops the process (also as a context manager).
 """
@@ -29,6 +29,10 @@ from pathlib import Path
 C_SOURCE_DIR = Path(__file__).resolve().parent / "c"
 STRICT_FLAGS = ("-std=c99", "-Wall", "-Wextra", "-Werror", "-pedantic")
 _OPT = ("-O2",)
+# ccb_law.c rounds once per operation, as the host's numba mirror does: a fused
+# multiply-add would round once where the mirror rounds twice (PROTOCOL.md §10.3).
+LAW_FLAGS = ("-ffp-contract=off",)
+_LIBS = ("-lm",)  # floorf
 
 
 class CompilerMissingError(RuntimeError):
@@ -57,19 +61,24 @@ def _compile(args: list[str], what: str) -> None:
 
 
 def _core_sources() -> list[str]:
-    return [str(C_SOURCE_DIR / "ccb_core.c")]
+    return [str(C_SOURCE_DIR / "ccb_core.c"), str(C_SOURCE_DIR / "ccb_law.c")]
 
 
-def build_core_library(tmpdir: str | os.PathLike[str]) -> Path:
-    """Compile the core and the in-memory port into ``tmpdir/libccb_mem.so``."""
-    out = Path(tmpdir) / "libccb_mem.so"
+def _suffix(defines: tuple[str, ...]) -> str:
+    return "".join(f"-{d.replace('=', '_')}" for d in defines)
+
+
+def build_core_library(tmpdir: str | os.PathLike[str], *defines: str) -> Path:
+    """Compile the core and the in-memory port into ``tmpdir/libccb_mem.so``.
+
+    ``defines``: the core's build options (``ccb.h``), e.g. ``"CCB_LAW_QUEUE=16"``.
+    """
+    out = Path(tmpdir) / f"libccb_mem{_suffix(defines)}.so"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "memory_port.c")]
-    _compile([*STRICT_FLAGS, *_OPT, "-fPIC", "-shared", *srcs, "-o", str(out)], "libccb_mem")
+    flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *(f"-D{d}" for d in defines)]
+    args = [*flags, "-fPIC", "-shared", *srcs, "-o", str(out), *_LIBS]
+    _compile(args, "libccb_mem")
     return out
-
-
-# The law's float32 arithmetic must round once per operation: no fused multiply-add.
-LAW_FLAGS = ("-ffp-contract=off",)
 
 
 def build_law_library(
@@ -83,7 +92,7 @@ def build_law_library(
     out = Path(tmpdir) / f"libccb_law{opt}{''.join(extra)}.so"
     src = str(C_SOURCE_DIR / "ccb_law.c")
     args = [*STRICT_FLAGS, opt, *extra, *LAW_FLAGS, "-fPIC", "-shared", src, "-o", str(out)]
-    args.append("-lm")
+    args += _LIBS
     _compile(args, "libccb_law")
     return out
 
@@ -113,15 +122,20 @@ def build_fuzz_binary(tmpdir: str | os.PathLike[str], sanitize: bool) -> Path:
         str(C_SOURCE_DIR / "ports" / "fuzz_main.c"),
     ]
     extra = _SANITIZE if sanitize else ()
-    _compile([*STRICT_FLAGS, *_OPT, *extra, *srcs, "-o", str(out)], "ccb_fuzz")
+    _compile([*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *extra, *srcs, "-o", str(out), *_LIBS], "ccb_fuzz")
     return out
 
 
-def build_pty_board(tmpdir: str | os.PathLike[str]) -> Path:
-    """Compile the pseudo-terminal board (``ports/pty_board.c``) to ``tmpdir/pty_board``."""
-    out = Path(tmpdir) / "pty_board"
+def build_pty_board(tmpdir: str | os.PathLike[str], *defines: str) -> Path:
+    """Compile the pseudo-terminal board (``ports/pty_board.c``) to ``tmpdir/pty_board``.
+
+    ``defines``: build options for the core, e.g. ``"CCB_LAW_QUEUE=0"`` (a board without
+    law mode, which ignores the law messages as a version-1 board does).
+    """
+    out = Path(tmpdir) / f"pty_board{_suffix(defines)}"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "pty_board.c")]
-    _compile([*STRICT_FLAGS, *_OPT, *srcs, "-o", str(out), "-lm"], "pty_board")
+    flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *(f"-D{d}" for d in defines)]
+    _compile([*flags, *srcs, "-o", str(out), *_LIBS], "pty_board")
     return out
 
 

@@ -26,6 +26,7 @@ from firmware_protocol import codec
 from firmware_protocol.cbinding import CoreLibrary, MemoryRig, fnv1a_digest
 from firmware_protocol.cboard import (
     C_SOURCE_DIR,
+    LAW_FLAGS,
     STRICT_FLAGS,
     build_core_library,
     find_c_compiler,
@@ -102,30 +103,45 @@ def test_every_c_file_compiles_with_the_strict_flags(tmp_path: Path) -> None:
     cc = find_c_compiler()
     if cc is None:
         pytest.skip(NO_CC)
-    files = ["ccb_core.c", "ports/memory_port.c", "ports/fuzz_main.c", "ports/pty_board.c"]
-    variants = [[], ["-DCCB_CRC_BITWISE"], ["-DCCB_RX_MAX_PAYLOAD=64", "-DCCB_MAX_INPUTS=4"]]
+    files = [
+        "ccb_core.c",
+        "ccb_law.c",
+        "ports/memory_port.c",
+        "ports/fuzz_main.c",
+        "ports/pty_board.c",
+    ]
+    variants = [
+        [],
+        ["-DCCB_CRC_BITWISE"],
+        ["-DCCB_RX_MAX_PAYLOAD=64", "-DCCB_MAX_INPUTS=4"],
+        ["-DCCB_LAW_QUEUE=0"],  # law mode left out
+        ["-DCCB_LAW_QUEUE=8", "-DCCB_BLOCK_POINTS=2"],  # the smallest law mode
+    ]
     for f in files:
         for extra in variants:
-            args = [cc, *STRICT_FLAGS, "-O2", *extra, "-c", str(C_SOURCE_DIR / f)]
+            args = [cc, *STRICT_FLAGS, *LAW_FLAGS, "-O2", *extra, "-c", str(C_SOURCE_DIR / f)]
             proc = subprocess.run(
                 [*args, "-o", str(tmp_path / "x.o")], capture_output=True, text=True, check=False
             )
             assert proc.returncode == 0, f"{f} {extra}:\n{proc.stderr}"
 
 
-def test_the_core_needs_nothing_from_libc_but_memcpy_and_memset(tmp_path: Path) -> None:
+def test_the_core_needs_nothing_from_libc_but_memcpy_memset_and_floorf(tmp_path: Path) -> None:
     cc, nm = find_c_compiler(), shutil.which("nm")
     if cc is None or nm is None:
         pytest.skip("needs a C compiler and nm")
+    law_api = {"ccb_law_reset", "ccb_law_set", "ccb_law_eval"}  # ccb_law.c, beside the core
+    allowed = {"ccb_core.c": {"memcpy", "memset"} | law_api, "ccb_law.c": {"floorf"}}
     for opt in ("-O0", "-O2", "-Os"):
-        obj = tmp_path / f"core{opt}.o"
-        subprocess.run(
-            [cc, *STRICT_FLAGS, opt, "-c", str(C_SOURCE_DIR / "ccb_core.c"), "-o", str(obj)],
-            check=True,
-        )
-        undefined = subprocess.run([nm, "-u", str(obj)], capture_output=True, text=True).stdout
-        names = {line.split()[-1] for line in undefined.splitlines() if line.strip()}
-        assert names <= {"memcpy", "memset"}, (opt, names)
+        for src, ok in allowed.items():
+            obj = tmp_path / f"{src}{opt}.o"
+            subprocess.run(
+                [cc, *STRICT_FLAGS, *LAW_FLAGS, opt, "-c", str(C_SOURCE_DIR / src), "-o", str(obj)],
+                check=True,
+            )
+            out = subprocess.run([nm, "-u", str(obj)], capture_output=True, text=True).stdout
+            names = {line.split()[-1] for line in out.splitlines() if line.strip()}
+            assert names <= ok, (src, opt, names)
 
 
 def test_the_header_is_usable_from_cplusplus(tmp_path: Path) -> None:

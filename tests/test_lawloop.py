@@ -163,11 +163,11 @@ def test_zero_request_acts_at_once_and_teardown_leaves_zero(tmp_path):
 
 
 def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
-    """A version-1 board (the C core) ignores BOARD_RULES (PROTOCOL.md §5.5): the host falls
-    back to current mode and says so."""
+    """A version-1 board ignores BOARD_RULES (PROTOCOL.md §5.5): the host falls back to
+    current mode and says so. The C core built without law mode (CCB_LAW_QUEUE=0) is one."""
     from firmware_protocol.cboard import build_pty_board, start_pty_board
 
-    binary = build_pty_board(tmp_path)
+    binary = build_pty_board(tmp_path, "CCB_LAW_QUEUE=0")
     exp = copy.deepcopy(SUBTHRESHOLD)
     exp["element"] = exp["element"][:1]
     with start_pty_board(binary) as board:
@@ -177,6 +177,7 @@ def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
         result = engine.finish()
     assert result.error is None, result.error
     assert result.samples >= 1000
+    assert result.mode == "current"
     assert "current mode" in (result.notice or "")
 
 

@@ -82,3 +82,6 @@ def test_c_decoder_and_board_survive_the_same_frames(
     # whatever the board was fed, everything it sent back is made of good frames
     assert c["board_out_bad"] == 0 and c["board_out_bad_crc"] == 0 and c["board_out_good"] > 0
     assert c["board_tx_dropped"] == 0
+    # the law-mode pass ran in law mode, with late laws and laws beyond the queue
+    assert c["law_ticks"] > len(stream.data) // CHUNK // 2
+    assert c["laws_late"] > 0 and c["laws_ahead"] > 0

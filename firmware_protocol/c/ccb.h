@@ -1,5 +1,7 @@
 /*
- * ccb.h - portable board core of the clampcore wire protocol, version 1.
+ * ccb.h - portable board core of the clampcore wire protocol, version 1, plus the
+ * law mode of version 2 (PROTOCOL.md §10): after BOARD_RULES the board evaluates the
+ * current law queued for each sample at its own fresh ADC count (ccb_law.h).
  *
  * The normative description is firmware_protocol/PROTOCOL.md; section numbers
  * below refer to it.  C99, no dynamic allocation, no libc beyond memcpy/memset,
@@ -21,12 +23,26 @@
  *                       smaller value saves RAM, longer frames count as bad).
  *   CCB_MAX_INPUTS, CCB_MAX_OUTPUTS  channel arrays (default 16 each).
  *   CCB_CRC_BITWISE     compute the CRC bit by bit instead of with a 512-byte table.
+ *   CCB_LAW_QUEUE       laws the board can hold ahead (default 1024; a power of two,
+ *                       at least 8, above the host's look-ahead in samples: lead_ms
+ *                       10 ms is 200 samples at 20 kHz, 500 at 50 kHz).  RAM: 20 bytes
+ *                       a law (4 float32 + its sample number + a bit), 20.1 KiB at 1024,
+ *                       5 KiB at 256.  0 leaves law mode out: the board then ignores
+ *                       the law messages as a version-1 board does (§5.5), and the host
+ *                       runs it in current mode.
+ *   CCB_BLOCK_POINTS    float32 points of the Mg block table (default 1025 = 4.0 KiB,
+ *                       what the host sends for any ADC of 10 bits or more; 2 or more).
+ *
+ * Law mode needs <math.h>'s floorf (link with -lm) and ccb_law.c compiled without fused
+ * multiply-add (gcc/clang: -ffp-contract=off), so that its results equal the host's.
  */
 #ifndef CCB_H
 #define CCB_H
 
 #include <stddef.h>
 #include <stdint.h>
+
+#include "ccb_law.h"
 
 #ifdef __cplusplus
 extern "C" {
@@ -61,9 +77,18 @@ extern "C" {
 #define CCB_MSG_COMMAND 0x05u
 #define CCB_MSG_KEEPALIVE 0x06u
 #define CCB_MSG_GET_STATUS 0x07u
+#define CCB_MSG_LAWS 0x08u        /* version 2, §10.4 */
+#define CCB_MSG_BOARD_RULES 0x09u
+#define CCB_MSG_BLOCK_TABLE 0x0Au
+#define CCB_MSG_ZERO 0x0Bu
 #define CCB_MSG_HELLO 0x81u
 #define CCB_MSG_SAMPLE 0x82u
 #define CCB_MSG_STATUS 0x83u
+#define CCB_MSG_SAMPLES 0x84u
+
+/* Law mode's payloads (§10.4): SAMPLES of n samples, the BOARD_RULES body. */
+#define CCB_SAMPLES_PAYLOAD(n) (15u + 5u * (n))
+#define CCB_BOARD_RULES_BODY 48u
 
 /* Status bits (§4.2). */
 #define CCB_STATUS_FAULT_OUTPUT 0x01u
@@ -110,7 +135,14 @@ extern "C" {
 #ifndef CCB_MAX_OUTPUTS
 #define CCB_MAX_OUTPUTS CCB_MAX_CHANNELS
 #endif
-/* The board sends HELLO, STATUS and SAMPLE; HELLO is the longest for <= 19 inputs. */
+#ifndef CCB_LAW_QUEUE
+#define CCB_LAW_QUEUE 1024u
+#endif
+#ifndef CCB_BLOCK_POINTS
+#define CCB_BLOCK_POINTS 1025u
+#endif
+/* The board sends HELLO, STATUS, SAMPLE and SAMPLES (of one sample); HELLO is the
+ * longest for <= 19 inputs. */
 #define CCB_TX_BUF CCB_WIRE_LEN(CCB_HELLO_PAYLOAD)
 
 /* Result of the encoders: bytes written and a CCB_OK / CCB_E_* status. */
@@ -183,6 +215,11 @@ ccb_result ccb_encode_status(uint16_t seq, const ccb_status *st, uint8_t *out, s
 ccb_result ccb_encode_sample(uint16_t seq, uint32_t counter, uint32_t clock_us, uint16_t cmd_seq,
                              uint8_t status, const uint16_t *adc, uint8_t n_in, uint8_t *out,
                              size_t cap);
+/* SAMPLES (§10.4): `count` samples from `first`, each adc, dac (the count written for
+ * it) and flags (ccb_law.h's CCB_LAW_* bits). */
+ccb_result ccb_encode_samples(uint16_t seq, uint32_t first, uint32_t clock_us, uint8_t status,
+                              uint8_t count, const uint16_t *adc, const uint16_t *dac,
+                              const uint8_t *flags, uint8_t *out, size_t cap);
 /* Parse a CRC-checked payload; return CCB_OK or CCB_E_TYPE/CCB_E_LENGTH/CCB_E_VERSION. */
 uint8_t ccb_parse_configure(const uint8_t *payload, size_t len, ccb_configure *out);
 uint8_t ccb_parse_command(const uint8_t *payload, size_t len, ccb_command *out);
@@ -195,6 +232,20 @@ typedef struct ccb_port {
     uint32_t (*micros)(void *ctx); /* free-running microsecond clock, wraps at 2^32 */
     void (*serial_write)(void *ctx, const uint8_t *data, size_t len);
 } ccb_port;
+
+#if CCB_LAW_QUEUE > 0
+typedef struct ccb_law_board { /* law mode (§10); private */
+    ccb_law_params params;          /* from BOARD_RULES (and CONFIGURE's fault value) */
+    ccb_law_state state;            /* detector, reset, zero request, the law in force */
+    int64_t k;                      /* samples taken since START, never wrapping */
+    uint32_t late, ahead;           /* laws not queued: for a sample taken, beyond the queue */
+    uint8_t on;                     /* BOARD_RULES came after the last CONFIGURE */
+    uint8_t queued[CCB_LAW_QUEUE / 8u]; /* bit i: slot i holds the law for due[i] */
+    uint32_t due[CCB_LAW_QUEUE];    /* sample number (modulo 2^32) of each slot's law */
+    ccb_law queue[CCB_LAW_QUEUE];   /* slot = sample mod CCB_LAW_QUEUE */
+    float table[CCB_BLOCK_POINTS];  /* Mg block table from BLOCK_TABLE */
+} ccb_law_board;
+#endif
 
 typedef struct ccb_board { /* all fields private: use the functions below */
     ccb_board_info info;
@@ -209,6 +260,9 @@ typedef struct ccb_board { /* all fields private: use the functions below */
     uint16_t fault_counts[CCB_MAX_OUTPUTS];
     uint16_t adc[CCB_MAX_INPUTS];
     ccb_status stats; /* counters; state/status/result fields unused */
+#if CCB_LAW_QUEUE > 0
+    ccb_law_board law;
+#endif
 } ccb_board;
 
 /* Returns CCB_OK, or CCB_E_ARG if info or port is unusable (channel counts,
@@ -219,6 +273,10 @@ void ccb_tick(ccb_board *b);
 uint8_t ccb_state(const ccb_board *b);
 uint32_t ccb_rate_hz(const ccb_board *b); /* 0 until configured */
 void ccb_get_status(const ccb_board *b, ccb_status *out);
+/* Law mode: 1 after BOARD_RULES (until CONFIGURE), 0 otherwise or when built without it. */
+uint8_t ccb_law_mode(const ccb_board *b);
+/* Laws of this run not queued: for a sample already taken (late), and beyond the queue. */
+void ccb_law_counts(const ccb_board *b, uint32_t *late, uint32_t *ahead);
 
 #ifdef __cplusplus
 }

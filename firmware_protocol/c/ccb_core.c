@@ -1,5 +1,6 @@
 /*
- * ccb_core.c - portable board core of the clampcore wire protocol, version 1.
+ * ccb_core.c - portable board core of the clampcore wire protocol, version 1, and the
+ * law mode of version 2 (PROTOCOL.md §10; the arithmetic is in ccb_law.c).
  * See ccb.h for the API and firmware_protocol/PROTOCOL.md for the protocol.
  */
 #include "ccb.h"
@@ -15,6 +16,17 @@
 #if CCB_WIRE_LEN(CCB_SAMPLE_PAYLOAD(CCB_MAX_INPUTS)) > CCB_TX_BUF
 #error "CCB_TX_BUF too small for a SAMPLE"
 #endif
+#if CCB_WIRE_LEN(CCB_SAMPLES_PAYLOAD(1)) > CCB_TX_BUF
+#error "CCB_TX_BUF too small for a SAMPLES"
+#endif
+#if CCB_LAW_QUEUE > 0 && (CCB_LAW_QUEUE < 8 || (CCB_LAW_QUEUE & (CCB_LAW_QUEUE - 1)) != 0)
+#error "CCB_LAW_QUEUE must be 0 or a power of two of at least 8"
+#endif
+#if CCB_LAW_QUEUE > 0 && CCB_BLOCK_POINTS < 2
+#error "CCB_BLOCK_POINTS must be at least 2"
+#endif
+/* Law bodies carry IEEE-754 binary32 numbers; the board's float must be one. */
+typedef char ccb_float_is_32_bits[sizeof(float) == 4u ? 1 : -1];
 
 #define CCB_HEADER 3u
 #define CCB_SAMPLE_FIXED 11u
@@ -22,6 +34,8 @@
 #define CCB_CONFIGURE_FIXED 10u
 #define CCB_HELLO_BODY (CCB_HELLO_PAYLOAD - CCB_MIN_PAYLOAD)
 #define CCB_STATUS_BODY (CCB_STATUS_PAYLOAD - CCB_MIN_PAYLOAD)
+#define CCB_SAMPLES_FIXED 10u /* first u32, clock u32, status u8, count u8 */
+#define CCB_LAWS_FIXED 10u    /* seen u32, first u32, count u8, blocked u8 */
 
 /* ---- little-endian helpers -------------------------------------------- */
 static void put_u16(uint8_t *p, uint16_t v)
@@ -375,6 +389,35 @@ ccb_result ccb_encode_sample(uint16_t seq, uint32_t counter, uint32_t clock_us, 
     return result(finish_frame(out, CCB_SAMPLE_PAYLOAD(n_in)), CCB_OK);
 }
 
+ccb_result ccb_encode_samples(uint16_t seq, uint32_t first, uint32_t clock_us, uint8_t status,
+                              uint8_t count, const uint16_t *adc, const uint16_t *dac,
+                              const uint8_t *flags, uint8_t *out, size_t cap)
+{
+    uint8_t *p;
+    unsigned i;
+    size_t payload_len = CCB_SAMPLES_PAYLOAD((size_t)count);
+    if (adc == NULL || dac == NULL || flags == NULL || out == NULL || count < 1u ||
+        payload_len > CCB_MAX_PAYLOAD) {
+        return result(0, CCB_E_ARG);
+    }
+    if (cap < CCB_WIRE_LEN(payload_len)) {
+        return result(0, CCB_E_SPACE);
+    }
+    put_header(out, CCB_MSG_SAMPLES, seq);
+    p = &out[1 + CCB_HEADER];
+    put_u32(&p[0], first);
+    put_u32(&p[4], clock_us);
+    p[8] = status;
+    p[9] = count;
+    for (i = 0; i < count; i++) {
+        uint8_t *q = &p[CCB_SAMPLES_FIXED + 5u * i];
+        put_u16(&q[0], adc[i]);
+        put_u16(&q[2], dac[i]);
+        q[4] = flags[i];
+    }
+    return result(finish_frame(out, payload_len), CCB_OK);
+}
+
 /* Number of u16 counts after `fixed` body bytes, or 0 if the length is wrong. */
 static unsigned count_words(size_t len, size_t fixed)
 {
@@ -592,6 +635,10 @@ static void on_configure(ccb_board *b, const uint8_t *payload, size_t len, uint1
         b->state = CCB_STATE_READY;
         b->have_command = 0;
         b->tripped = 0;
+#if CCB_LAW_QUEUE > 0
+        b->law.on = 0; /* until BOARD_RULES come again */
+        memset(b->law.queued, 0, sizeof(b->law.queued));
+#endif
         output_fault(b);
     }
     reply(b, seq, res);
@@ -610,6 +657,14 @@ static void on_start(ccb_board *b, uint16_t seq)
     b->flags = 0;
     b->cmd_seq = 0;
     b->cmd_answers = 0;
+#if CCB_LAW_QUEUE > 0
+    /* detector at its start state, no law in force, zero request off; laws queued in
+     * READY for samples 0.. stay */
+    ccb_law_reset(&b->law.state);
+    b->law.k = 0;
+    b->law.late = 0;
+    b->law.ahead = 0;
+#endif
     output_fault(b);
     b->last_rx_us = b->port.micros(b->port.ctx);
     b->state = CCB_STATE_RUNNING;
@@ -622,6 +677,9 @@ static void on_stop(ccb_board *b, uint16_t seq)
         b->state = CCB_STATE_READY;
         b->have_command = 0;
         b->tripped = 0;
+#if CCB_LAW_QUEUE > 0
+        memset(b->law.queued, 0, sizeof(b->law.queued)); /* no law of this run may act in the next */
+#endif
         output_fault(b);
     }
     reply(b, seq, CCB_RESULT_OK);
@@ -675,6 +733,194 @@ static void on_command(ccb_board *b, const uint8_t *payload, size_t len)
     b->last_rx_us = b->port.micros(b->port.ctx);
 }
 
+/* ---- Law mode (§10) ---------------------------------------------------- */
+uint8_t ccb_law_mode(const ccb_board *b)
+{
+#if CCB_LAW_QUEUE > 0
+    return b->law.on;
+#else
+    (void)b;
+    return 0;
+#endif
+}
+
+void ccb_law_counts(const ccb_board *b, uint32_t *late, uint32_t *ahead)
+{
+#if CCB_LAW_QUEUE > 0
+    *late = b->law.late;
+    *ahead = b->law.ahead;
+#else
+    (void)b;
+    *late = 0;
+    *ahead = 0;
+#endif
+}
+
+#if CCB_LAW_QUEUE > 0
+static float get_f32(const uint8_t *p)
+{
+    uint32_t bits = get_u32(p);
+    float f;
+    memcpy(&f, &bits, sizeof(f));
+    return f;
+}
+
+/* BOARD_RULES body (48 bytes): limit_lo, limit_hi, tr_alpha, tr_beta float32, then
+ * adc_ok_lo, adc_ok_hi, spike_adc, rearm_adc, tr_adc, tr_samples, lifetime, block_shift
+ * int32 (firmware_protocol/lawmsg.py's rules_body).  0 when malformed, or when the
+ * block table would be read beyond its CCB_BLOCK_POINTS points. */
+static int parse_rules(const ccb_board *b, const uint8_t *body, size_t len, ccb_law_params *p)
+{
+    uint32_t adc_top = (uint32_t)((1uL << b->info.adc_bits) - 1u);
+    if (len != CCB_BOARD_RULES_BODY) {
+        return 0;
+    }
+    p->limit_lo = get_f32(&body[0]);
+    p->limit_hi = get_f32(&body[4]);
+    p->tr_alpha = get_f32(&body[8]);
+    p->tr_beta = get_f32(&body[12]);
+    p->adc_ok_lo = (int32_t)get_u32(&body[16]);
+    p->adc_ok_hi = (int32_t)get_u32(&body[20]);
+    p->spike_adc = (int32_t)get_u32(&body[24]);
+    p->rearm_adc = (int32_t)get_u32(&body[28]);
+    p->tr_adc = (int32_t)get_u32(&body[32]);
+    p->tr_samples = (int32_t)get_u32(&body[36]);
+    p->lifetime = (int32_t)get_u32(&body[40]);
+    p->block_shift = (int32_t)get_u32(&body[44]);
+    p->dac_top = (int32_t)dac_max(b);
+    p->fault_counts = (int32_t)b->fault_counts[0];
+    if (p->block_shift < -1 || p->block_shift > 16) {
+        return 0;
+    }
+    /* interpolation reads points adc >> shift and the next one */
+    return p->block_shift < 0 || (adc_top >> p->block_shift) + 1u < CCB_BLOCK_POINTS;
+}
+
+/* BOARD_RULES or BLOCK_TABLE: READY only; the board evaluates laws from now on. */
+static void on_law_setup(ccb_board *b, const uint8_t *payload, size_t len, uint16_t seq)
+{
+    const uint8_t *body = &payload[CCB_HEADER];
+    size_t body_len = len - CCB_MIN_PAYLOAD;
+    if (b->state != CCB_STATE_READY) {
+        reply(b, seq, CCB_RESULT_BAD_STATE);
+        return;
+    }
+    if (payload[0] == CCB_MSG_BOARD_RULES) {
+        ccb_law_params p;
+        if (!parse_rules(b, body, body_len, &p)) {
+            unknown(b);
+            return;
+        }
+        b->law.params = p;
+        b->law.on = 1;
+    } else {
+        unsigned first, count, i;
+        if (body_len < 3u) {
+            unknown(b);
+            return;
+        }
+        first = get_u16(&body[0]);
+        count = body[2];
+        if (body_len != 3u + 4u * count || first + count > CCB_BLOCK_POINTS) {
+            unknown(b);
+            return;
+        }
+        for (i = 0; i < count; i++) {
+            b->law.table[first + i] = get_f32(&body[3u + 4u * i]);
+        }
+    }
+    reply(b, seq, CCB_RESULT_OK);
+}
+
+/* LAWS (READY or RUNNING): queue each law at its sample's slot.  A law for a sample
+ * already taken is late, one CCB_LAW_QUEUE or more samples ahead does not fit: both
+ * are counted and dropped.  Sample numbers compare modulo 2^32 (RFC 1982). */
+static void on_laws(ccb_board *b, const uint8_t *payload, size_t len)
+{
+    const uint8_t *p = &payload[CCB_HEADER];
+    uint32_t first, taken;
+    unsigned count, words, i;
+    if (len < CCB_MIN_PAYLOAD + CCB_LAWS_FIXED || b->state == CCB_STATE_UNCONFIGURED) {
+        unknown(b);
+        return;
+    }
+    count = p[8];
+    words = p[9] ? 4u : 2u;
+    if (len != CCB_MIN_PAYLOAD + CCB_LAWS_FIXED + 4u * words * count) {
+        unknown(b);
+        return;
+    }
+    first = get_u32(&p[4]);
+    taken = b->state == CCB_STATE_RUNNING ? b->counter : 0u; /* samples 0 .. taken-1 */
+    for (i = 0; i < count; i++) {
+        uint32_t sample = first + i, ahead = sample - taken;
+        const uint8_t *w = &p[CCB_LAWS_FIXED + 4u * words * i];
+        uint32_t slot = sample & (CCB_LAW_QUEUE - 1u);
+        ccb_law *law = &b->law.queue[slot];
+        if (ahead >= 0x80000000u) {
+            b->law.late++;
+            b->flags |= CCB_STATUS_LATE;
+            continue;
+        }
+        if (ahead >= CCB_LAW_QUEUE) {
+            b->law.ahead++;
+            b->flags |= CCB_STATUS_RX_ERROR;
+            continue;
+        }
+        law->alpha = get_f32(&w[0]);
+        law->beta = get_f32(&w[4]);
+        law->alpha_b = law->beta_b = 0.0f;
+        if (words == 4u) {
+            law->alpha_b = get_f32(&w[8]);
+            law->beta_b = get_f32(&w[12]);
+        }
+        b->law.due[slot] = sample;
+        b->law.queued[slot >> 3] = (uint8_t)(b->law.queued[slot >> 3] | (1u << (slot & 7u)));
+    }
+    b->stats.commands_applied += count; /* as the simulated rig counts them */
+    if (b->state == CCB_STATE_RUNNING) {
+        b->last_rx_us = b->port.micros(b->port.ctx); /* restarts the watchdog, lifts a trip */
+        b->tripped = 0;
+    }
+}
+
+/* ZERO: the zero request, applied on arrival, ahead of any queued law. */
+static void on_zero(ccb_board *b, const uint8_t *payload, size_t len)
+{
+    if (len != CCB_MIN_PAYLOAD + 1u) {
+        unknown(b);
+        return;
+    }
+    b->law.state.hold_zero = payload[CCB_HEADER] != 0u;
+}
+
+/* One sample in law mode: the law queued for it in force, evaluated at the fresh count,
+ * the DAC written in this tick (the current from sample k drives (t_k, t_k+1]). */
+static void law_tick(ccb_board *b, uint16_t *dac, uint8_t *flags)
+{
+    ccb_law_board *L = &b->law;
+    uint32_t slot = b->counter & (CCB_LAW_QUEUE - 1u);
+    uint8_t bit = (uint8_t)(1u << (slot & 7u));
+    uint16_t adc = b->adc[0];
+    uint16_t adc_top = (uint16_t)((1uL << b->info.adc_bits) - 1u);
+    if ((L->queued[slot >> 3] & bit) && L->due[slot] == b->counter) {
+        ccb_law_set(&L->state, &L->queue[slot], L->k);
+        L->queued[slot >> 3] = (uint8_t)(L->queued[slot >> 3] & ~bit);
+    }
+    if (adc > adc_top) {
+        adc = adc_top; /* a port that reads beyond its bits: keep the table in bounds */
+    }
+    *dac = ccb_law_eval(&L->params, &L->state, L->table, adc, L->k, flags);
+    if (b->tripped) { /* the link watchdog overrides every law */
+        *flags = (uint8_t)(*flags | CCB_LAW_FAULT);
+        *dac = b->fault_counts[0];
+    }
+    b->port.write_dac(b->port.ctx, 0, *dac);
+    b->have_command = (uint8_t)((*flags & CCB_LAW_FAULT) == 0u);
+    L->k++;
+}
+#endif
+
 static void on_frame(ccb_board *b, const uint8_t *p, size_t len)
 {
     uint8_t type = p[0];
@@ -687,6 +933,18 @@ static void on_frame(ccb_board *b, const uint8_t *p, size_t len)
     case CCB_MSG_CONFIGURE:
         on_configure(b, p, len, seq);
         return;
+#if CCB_LAW_QUEUE > 0
+    case CCB_MSG_LAWS:
+        on_laws(b, p, len);
+        return;
+    case CCB_MSG_BOARD_RULES:
+    case CCB_MSG_BLOCK_TABLE:
+        on_law_setup(b, p, len, seq);
+        return;
+    case CCB_MSG_ZERO:
+        on_zero(b, p, len);
+        return;
+#endif
     default:
         break;
     }
@@ -738,20 +996,36 @@ void ccb_feed(ccb_board *b, const uint8_t *data, size_t len)
 void ccb_tick(ccb_board *b)
 {
     uint32_t now;
-    uint8_t i, status;
+    uint8_t i, status, law_mode;
     if (b == NULL || b->state != CCB_STATE_RUNNING) {
         return;
     }
+    law_mode = ccb_law_mode(b);
     now = b->port.micros(b->port.ctx);
     if (!b->tripped && (uint32_t)(now - b->last_rx_us) >= b->watchdog_us) {
         b->tripped = 1;
         b->stats.watchdog_trips++;
-        output_fault(b);
+        if (!law_mode) {
+            output_fault(b); /* in law mode the tick below writes it */
+        }
         send_status(b, 0, CCB_RESULT_REPORT);
     }
     for (i = 0; i < b->n_inputs; i++) {
         b->adc[i] = b->port.read_adc(b->port.ctx, i);
     }
+#if CCB_LAW_QUEUE > 0
+    if (law_mode) {
+        uint16_t dac;
+        uint8_t flags;
+        law_tick(b, &dac, &flags);
+        status = (uint8_t)(sticky_bits(b) | b->flags);
+        b->flags = 0;
+        send(b, ccb_encode_samples(b->tx_seq, b->counter, now, status, 1u, b->adc, &dac, &flags,
+                                   b->tx, sizeof(b->tx)));
+        b->counter++;
+        return;
+    }
+#endif
     status = (uint8_t)(sticky_bits(b) | b->flags);
     b->flags = 0;
     send(b, ccb_encode_sample(b->tx_seq, b->counter, now, b->have_command ? b->cmd_seq : 0u,

@@ -1,8 +1,15 @@
 /*
  * arduino_example.ino - example port of the ccb board core to an Arduino-compatible
  * board.  DOCUMENTATION: it shows where each piece goes and is not built or tested
- * here.  Copy ccb.h and ccb_core.c next to this sketch (the Arduino IDE compiles .c
- * files as C; ccb.h has extern "C" guards).
+ * here.  Copy ccb.h, ccb_core.c, ccb_law.h and ccb_law.c next to this sketch (the
+ * Arduino IDE compiles .c files as C; the headers have extern "C" guards).
+ *
+ * Law mode (PROTOCOL.md §10): the core holds CCB_LAW_QUEUE laws (20 bytes each) and a
+ * block table of CCB_BLOCK_POINTS floats: 24 KiB with the defaults.  A SAMD21 (32 KiB
+ * RAM) needs them smaller: add build flags -DCCB_LAW_QUEUE=256 (5 KiB, 25 ms at
+ * 10 kHz: keep the host's lead_ms below it) and, with an FPU that fuses multiply-adds
+ * (Cortex-M4F and up), -ffp-contract=off, or the board's currents will differ from
+ * the host's in the last bit.  -DCCB_LAW_QUEUE=0 leaves law mode out (current mode).
  *
  * Assumed hardware: a 32-bit board with a 12-bit ADC and a 12-bit DAC on chip and
  * native USB serial (a SAMD21 or SAM3X class board, for example).  Such on-chip

@@ -15,7 +15,13 @@
  *     ADC volts = (V_mV - vm_offset_mV) / vm_mV_per_V,
  *     I_pA      = cmd_pA_per_V * DAC volts + cmd_offset_pA.
  *
- * Build: cc -std=c99 -Wall -Wextra -Werror -pedantic -O2 ccb_core.c ports/pty_board.c -lm
+ * In law mode (PROTOCOL.md §10) the core reads the ADC and writes the DAC in the same
+ * tick: the read advances the cell to that instant, the write changes its current from
+ * that instant, so the current the law gives at sample k drives the cell over
+ * (t_k, t_k+1], the timing of the host's offline simulation and of the simulated rig.
+ *
+ * Build: cc -std=c99 -Wall -Wextra -Werror -pedantic -O2 -ffp-contract=off
+ *            ccb_core.c ccb_law.c ports/pty_board.c -lm
  * Run `pty_board --help` for the options.  Missed sample ticks (the process was
  * not scheduled in time) are skipped, not caught up: the board clock in each
  * SAMPLE shows the gap.

@@ -1,0 +1,709 @@
+"""The C board core's law mode (PROTOCOL.md §10) against the simulated rig's board.
+
+The C core (``firmware_protocol/c/``, through ctypes on the in-memory port) and a model
+of the simulated rig's law-mode board are fed the same frames, clock and ADC counts,
+and must send byte-identical frames and write identical DAC counts. The model
+(``RigLaw`` below) is built from the rig's own compiled functions
+(``simulated_rig.board._on_laws``, ``_sticky``, ``encode_status``, ``new_law_board``)
+and the kernels the rig's ``_tick`` calls (``boardlaw.board_set_law``,
+``boardlaw.board_eval``, ``lawmsg.encode_samples``); the few state changes that live
+in the rig's Python handlers (``Board._on_configure``, ``_on_law_setup``, ``_on_start``)
+and the law branch of its ``_tick`` are restated there line for line, with the cell
+replaced by the given ADC counts. The board's parameters come from the host's own
+``clampcore.law.board_arrays`` for a real experiment (limit, implausible-V guard, spike
+detection, threshold_reset, an Mg-blocked synapse's table).
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import struct
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from clampcore.calibration import DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, conversion_array
+from clampcore.experiment import load_experiment
+from clampcore.law import LAW_MODE, board_arrays, law_scale, law_to_counts
+from clampcore.program import build_program
+from firmware_protocol import boardlaw as bl
+from firmware_protocol import codec, lawmsg
+from firmware_protocol.cbinding import CoreLibrary
+from firmware_protocol.cboard import C_SOURCE_DIR, build_core_library, find_c_compiler
+from firmware_protocol.fuzz import reference_deframe
+from simulated_rig import board as rb
+
+NO_CC = "no C compiler found (install cc/gcc/clang or set $CC): C core tests skipped"
+HELLO = rb.board_hello()  # the rig's own board: 16-bit ±10 V converters, one in, one out
+RATE_HZ = 10_000
+WATCHDOG_US = 5_000
+PERIOD_US = 1_000_000 // RATE_HZ
+LIFETIME = 3  # samples a law may stay in force past its own sample
+
+EXPERIMENT = {
+    "loop": {"rate_hz": RATE_HZ, "max_current_pA": 400.0, "spike_threshold_mV": -50.0},
+    "amplifier": {"vm_mV_per_V": 100.0, "command_pA_per_V": 400.0},
+    "element": [
+        {"kind": "leak", "name": "leak", "g_nS": 5.0, "e_mV": -70.0},
+        {"kind": "synapse", "name": "nmda", "g_max_nS": 1.0, "e_mV": 0.0, "tau_decay_ms": 50.0,
+         "mg_mM": 1.0, "source": "poisson", "rate_hz": 50.0, "seed": 2},
+        {"kind": "threshold_reset", "name": "tr", "threshold_mV": -40.0, "reset_mV": -65.0,
+         "refractory_ms": 0.5, "g_nS": 60.0},
+    ],
+}  # fmt: skip
+CONV = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, load_experiment(EXPERIMENT).amplifier)
+SCALE = law_scale(CONV)
+BF, BI, _, _, TABLE = board_arrays(build_program(load_experiment(EXPERIMENT)), CONV, LAW_MODE, 3)
+RULES = lawmsg.rules_body(BF, BI)
+TABLES = lawmsg.table_bodies(TABLE)
+FAULT = int(BI[bl.BI_FAULT_COUNTS])
+
+
+def adc_at(v_mV: float) -> int:
+    """ADC count of a membrane potential (PROTOCOL.md §6, 100 mV/V, ±10 V, 16 bits)."""
+    return int(np.clip(round((v_mV / 100.0 + 10.0) / 20.0 * 65535), 0, 65535))
+
+
+def law_bits(a_pA: float, g_nS: float, ab_pA: float = 0.0, gb_nS: float = 0.0) -> np.ndarray:
+    """The host's law in counts (clampcore.law.law_to_counts) as float32 bits."""
+    out = np.zeros(4, dtype=np.float64)
+    law_to_counts(SCALE, a_pA, g_nS, ab_pA, gb_nS, out)
+    return out.astype(np.float32).view(np.uint32)
+
+
+def laws_body(first: int, laws: list[np.ndarray], blocked: bool, seen: int = 0) -> bytes:
+    """LAWS body (lawmsg.decode_laws's layout): seen, first, count, blocked, the words."""
+    words = 4 if blocked else 2
+    body = struct.pack("<IIBB", seen, first & 0xFFFFFFFF, len(laws), int(blocked))
+    return body + b"".join(struct.pack(f"<{words}I", *w[:words]) for w in laws)
+
+
+class RigLaw:
+    """The simulated rig's law-mode board with the cell replaced by given ADC counts."""
+
+    def __init__(self) -> None:
+        self.st = np.zeros(rb.N_ST, dtype=np.int64)
+        self.st[rb.S_DAC_MAX] = (1 << HELLO.dac_bits) - 1
+        self.lb = rb.new_law_board()
+        self.ts = np.zeros(2, dtype=np.int64)
+        self.body = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
+        self.tx = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
+        self.out = bytearray()
+        self.last_rx_us = 0
+        self.dac = -1
+
+    def _status(self, ack: int, result: int) -> None:
+        n = rb.encode_status(self.st, ack, result, self.body, self.tx)
+        self.out += self.tx[:n].tobytes()
+
+    def _reply(self, ack: int, result: int) -> None:  # Board._reply
+        if result != codec.RESULT_OK:
+            self.st[rb.S_REJECTED] += 1
+            self.st[rb.S_FLAGS] |= codec.STATUS_RX_ERROR
+        self._status(ack, result)
+
+    def _unknown(self) -> None:
+        self.st[rb.S_UNKNOWN] += 1
+        self.st[rb.S_FLAGS] |= codec.STATUS_RX_ERROR
+
+    def feed(self, payload: bytes, now_us: int) -> None:
+        st, lb = self.st, self.lb
+        typ, seq = payload[0], payload[1] | payload[2] << 8
+        body = payload[3:-2]
+        if typ == lawmsg.MSG_LAWS:
+            frame = np.frombuffer(payload, dtype=np.uint8).copy()
+            unknown = st[rb.S_UNKNOWN]
+            rb._on_laws(frame, frame.size, st, lb, self.ts)
+            if st[rb.S_UNKNOWN] == unknown and st[rb.S_STATE] == codec.STATE_RUNNING:
+                self.last_rx_us = now_us  # the rig restarts the watchdog on its own clock
+        elif typ == lawmsg.MSG_ZERO and len(body) == 1:
+            lb.bs[bl.BS_HOLD_ZERO] = 1 if body[0] != 0 else 0
+        elif typ in (lawmsg.MSG_BOARD_RULES, lawmsg.MSG_BLOCK_TABLE):  # Board._on_law_setup
+            if st[rb.S_STATE] != codec.STATE_READY:
+                self._reply(seq, codec.RESULT_BAD_STATE)
+                return
+            try:
+                if typ == lawmsg.MSG_BOARD_RULES:
+                    lawmsg.parse_rules(body, lb.bf, lb.bi)
+                    lb.bi[bl.BI_DAC_TOP] = st[rb.S_DAC_MAX]
+                    lb.bi[bl.BI_FAULT_COUNTS] = st[rb.S_FAULT_COUNTS]
+                    st[rb.S_LAW_MODE] = 1
+                else:
+                    lawmsg.parse_table(body, lb.table)
+            except ValueError:
+                self._unknown()
+                return
+            self._reply(seq, codec.RESULT_OK)
+        elif typ == codec.MSG_CONFIGURE:  # Board._on_configure, a valid CONFIGURE in READY
+            _, cfg = codec.parse_payload(payload)
+            st[rb.S_RATE_HZ] = cfg.rate_hz
+            st[rb.S_N_INPUTS] = cfg.n_inputs
+            st[rb.S_WATCHDOG_US] = cfg.watchdog_us
+            st[rb.S_FAULT_COUNTS] = cfg.fault_counts[0]
+            st[rb.S_STATE] = codec.STATE_READY
+            st[rb.S_HAVE_CMD] = 0
+            st[rb.S_TRIPPED] = 0
+            st[rb.S_LAW_MODE] = 0
+            lb.qdue[:] = -1
+            self._reply(seq, codec.RESULT_OK)
+        elif typ == codec.MSG_START:  # Board._on_start
+            for i in (
+                rb.S_UNKNOWN,
+                rb.S_REJECTED,
+                rb.S_TRIPS,
+                rb.S_APPLIED,
+                rb.S_COUNTER,
+                rb.S_HAVE_CMD,
+                rb.S_TRIPPED,
+                rb.S_FLAGS,
+                rb.S_LAWS_LATE,
+                rb.S_LAWS_AHEAD,
+            ):
+                st[i] = 0  # fmt: skip
+            lb.bs[:] = bl.new_board_arrays()[2]
+            st[rb.S_CMD_COUNTS] = st[rb.S_FAULT_COUNTS]
+            st[rb.S_STATE] = codec.STATE_RUNNING
+            self._reply(seq, codec.RESULT_OK)
+            self.last_rx_us = now_us
+        elif typ == codec.MSG_KEEPALIVE:  # _on_raw_frame
+            if st[rb.S_STATE] == codec.STATE_RUNNING:
+                self.last_rx_us = now_us
+        elif typ == codec.MSG_GET_STATUS:
+            self._status(seq, codec.RESULT_OK)
+        else:
+            raise AssertionError(f"the model does not know message 0x{typ:02X}")
+
+    def tick(self, adc: int, now_us: int) -> None:
+        """simulated_rig.board._tick: the watchdog, then its law-mode branch."""
+        st, lb = self.st, self.lb
+        k = st[rb.S_COUNTER]
+        if st[rb.S_TRIPPED] == 0 and now_us - self.last_rx_us >= st[rb.S_WATCHDOG_US]:
+            st[rb.S_TRIPPED] = 1
+            st[rb.S_TRIPS] += 1
+            self._status(0, codec.RESULT_REPORT)
+        slot = k & (rb.LAW_QUEUE - 1)
+        if lb.qdue[slot] == k:
+            bl.board_set_law(lb.bs, lb.law, lb.qlaw[slot], k)
+            lb.qdue[slot] = -1
+        packed = bl.board_eval(adc, k, lb.bf, lb.bi, lb.bs, lb.law, lb.table)
+        out_flags = packed >> 16
+        if st[rb.S_TRIPPED] != 0:
+            out_flags |= bl.BF_FLAG_FAULT
+        st[rb.S_CMD_COUNTS] = packed & 0xFFFF
+        st[rb.S_HAVE_CMD] = 0 if out_flags & bl.BF_FLAG_FAULT else 1
+        self.dac = int(st[rb.S_FAULT_COUNTS] if st[rb.S_TRIPPED] != 0 else st[rb.S_CMD_COUNTS])
+        status = rb._sticky(st) | st[rb.S_FLAGS]
+        st[rb.S_FLAGS] = 0
+        one = np.array([adc, self.dac, out_flags], dtype=np.int64)
+        n = lawmsg.encode_samples(
+            st[rb.S_TX_SEQ], k, now_us, status, 1, one[0:1], one[1:2], one[2:3], self.tx
+        )
+        st[rb.S_TX_SEQ] = (st[rb.S_TX_SEQ] + 1) & 0xFFFF
+        self.out += self.tx[:n].tobytes()
+        st[rb.S_COUNTER] = k + 1
+
+    def take(self) -> bytes:
+        data, self.out = bytes(self.out), bytearray()
+        return data
+
+
+class Pair:
+    """The C core and the rig's model, fed the same frames, clock and ADC counts."""
+
+    def __init__(self, core: CoreLibrary) -> None:
+        self.c = core.rig(HELLO)
+        self.ref = RigLaw()
+        self.seq = 0
+        self.now_us = 0
+
+    def send(self, msg_type: int, body: bytes) -> bytes:
+        """One frame to both; returns what the C core sent (checked equal to the rig's)."""
+        self.seq += 1
+        return self.send_wire(lawmsg.frame_bytes(msg_type, self.seq, body))
+
+    def send_laws(self, first: int, laws: list[np.ndarray], blocked: bool) -> bytes:
+        """LAWS frames for samples first.., as many laws to a frame as fit."""
+        most = lawmsg.MAX_LAWS_BLOCKED if blocked else lawmsg.MAX_LAWS
+        sent = b""
+        for i in range(0, len(laws), most):
+            sent += self.send(lawmsg.MSG_LAWS, laws_body(first + i, laws[i : i + most], blocked))
+        return sent
+
+    def send_message(self, message: codec.Message) -> bytes:
+        self.seq += 1
+        return self.send_wire(codec.encode_message(message, self.seq))
+
+    def send_wire(self, wire: bytes) -> bytes:
+        self.c.set_clock(self.now_us)
+        self.c.feed(wire)
+        self.ref.feed(codec.decode_wire(wire[:-1]), self.now_us)
+        return self._same()
+
+    def tick(self, adc: int) -> bytes:
+        self.now_us += PERIOD_US
+        self.c.set_clock(self.now_us)
+        self.c.set_adc(0, adc)
+        writes = self.c.dac_writes()
+        self.c.tick()
+        self.ref.tick(adc, self.now_us)
+        out = self._same()
+        assert self.c.dac_writes() == writes + 1  # one DAC write per tick, in the tick
+        assert self.c.dac(0) == self.ref.dac
+        return out
+
+    def wait(self, us: int) -> None:
+        self.now_us += us
+
+    def _same(self) -> bytes:
+        c_out, ref_out = self.c.take_tx(), self.ref.take()
+        assert c_out == ref_out
+        return c_out
+
+    def setup(self, laws_in_ready: list[np.ndarray] | None = None, blocked: bool = True) -> None:
+        self.send_message(codec.Configure(RATE_HZ, 1, WATCHDOG_US, (FAULT,)))
+        self.send(lawmsg.MSG_BOARD_RULES, RULES)
+        for body in TABLES:
+            self.send(lawmsg.MSG_BLOCK_TABLE, body)
+        if laws_in_ready:
+            self.send_laws(0, laws_in_ready, blocked)
+        self.send_message(codec.Start())
+        assert self.c.law_mode()
+
+
+def _samples(data: bytes) -> list[tuple[int, int, int, int, int]]:
+    """(first, status, adc, dac, flags) of every SAMPLES frame, by the reference deframer."""
+    payloads, bad = reference_deframe(data)
+    assert bad == 0
+    out = []
+    fields = np.zeros(lawmsg.N_FIELDS, dtype=np.int64)
+    adc, dac, flags = (np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64) for _ in range(3))
+    for p in payloads:
+        frame = np.frombuffer(p, dtype=np.uint8)
+        if lawmsg.decode_samples(frame, frame.size, fields, adc, dac, flags) == 1:
+            first, status = int(fields[lawmsg.SAMPLES_FIRST]), int(fields[lawmsg.SAMPLES_STATUS])
+            out.append((first, status, int(adc[0]), int(dac[0]), int(flags[0])))
+    return out
+
+
+@pytest.fixture(scope="module")
+def core(tmp_path_factory: pytest.TempPathFactory) -> CoreLibrary:
+    if find_c_compiler() is None:
+        pytest.skip(NO_CC)
+    return CoreLibrary(build_core_library(tmp_path_factory.mktemp("ccb_law")))
+
+
+# ------------------------------------------------------------------ the same bytes ---
+def _sweep() -> list[tuple[str, object]]:
+    """A hand-made run: every rule of PROTOCOL.md §10.3 is exercised at least once."""
+    rest, thr = adc_at(-70.0), adc_at(-45.0)  # -45 mV: above spike detection (-50 mV)
+    events: list[tuple[str, object]] = []
+    laws = [law_bits(0.0, 5.0, 20.0, 1.0) for _ in range(10)]  # leak to 0 mV plus NMDA
+    events += [("tick", rest), ("tick", adc_at(-60.0)), ("tick", thr), ("tick", adc_at(-55.0))]
+    events += [("tick", adc_at(-62.0))]  # re-armed below -60 mV (hysteresis 10 mV)
+    events += [("tick", adc_at(-35.0))]  # threshold_reset (-40 mV): reset law for 5 samples
+    events += [("tick", adc_at(-30.0)), ("tick", rest), ("tick", rest), ("tick", rest)]
+    # Laws 10..19: a huge current (limited), a non-finite one, and a plain current.
+    laws2 = [law_bits(5000.0, 0.0), law_bits(-5000.0, 0.0), law_bits(math.inf, 0.0)]
+    laws2 += [law_bits(100.0 * i, 0.0) for i in range(7)]
+    events += [("laws", (10, laws2, False))]
+    events += [("tick", rest) for _ in range(4)]
+    events += [("tick", adc_at(250.0)), ("tick", adc_at(-250.0))]  # implausible V
+    events += [("zero", True), ("tick", rest), ("zero", False), ("tick", rest)]
+    events += [("tick", rest) for _ in range(9)]  # 18..26: no law after 19; lifetime 3
+    return [("ready_laws", laws), *events]
+
+
+def _play(pair: Pair, events: list[tuple[str, object]]) -> bytes:
+    sent = b""
+    ready = [e for e in events if e[0] == "ready_laws"]
+    pair.setup(ready[0][1] if ready else None)
+    for kind, arg in events:
+        if kind == "laws":
+            first, laws, blocked = arg
+            sent += pair.send(lawmsg.MSG_LAWS, laws_body(first, laws, blocked))
+        elif kind != "ready_laws":
+            sent += _play_one(pair, kind, arg)
+    return sent
+
+
+def test_a_law_mode_run_gives_the_rigs_bytes_and_dac_counts(core: CoreLibrary) -> None:
+    pair = Pair(core)
+    sent = _play(pair, _sweep())
+    samples = _samples(sent)
+    flags = [s[4] for s in samples]
+    assert len(samples) == 27
+    # Every flag of PROTOCOL.md §10.3 was raised at least once: the comparison covered it.
+    for bit in (1 << b for b in range(8)):
+        assert any(f & bit for f in flags), f"flag 0x{bit:02X} never raised"
+    # The reset law is applied for tr_samples = 0.5 ms / 0.1 ms = 5 samples (5 .. 9).
+    assert [i for i, f in enumerate(flags[:14]) if f & bl.BF_FLAG_RESET] == [5, 6, 7, 8, 9]
+    # Without a law after sample 19: samples 20..22 keep it (lifetime 3), then STALE.
+    assert [bool(f & bl.BF_FLAG_STALE) for f in flags[20:]] == [False] * 3 + [True] * 4
+
+
+_law_values = st.one_of(
+    st.tuples(st.floats(-3000, 3000), st.floats(0, 60), st.floats(-500, 500), st.floats(0, 10)).map(
+        lambda t: law_bits(*t)
+    ),
+    # any float32 at all, NaN and infinities included: the guards must agree too
+    st.lists(st.floats(width=32), min_size=4, max_size=4).map(
+        lambda x: np.array(x, dtype=np.float32).view(np.uint32)
+    ),
+)
+_adc = st.one_of(st.integers(0, 65535), st.integers(adc_at(-80.0), adc_at(-30.0)))
+_events = st.lists(
+    st.one_of(
+        st.tuples(st.just("tick"), _adc),
+        st.tuples(st.just("tick"), _adc),
+        st.tuples(
+            st.just("laws_rel"),
+            st.tuples(
+                # late, due soon, near the queue's end and beyond it (1024 samples)
+                st.one_of(st.integers(-6, -1), st.integers(0, 30), st.integers(1018, 1030)),
+                st.lists(_law_values, min_size=1, max_size=14),
+                st.booleans(),
+            ),
+        ),
+        st.tuples(st.just("zero"), st.booleans()),
+        st.tuples(st.just("wait"), st.integers(0, 2 * WATCHDOG_US)),
+    ),
+    min_size=20,
+    max_size=80,
+)
+
+
+@settings(derandomize=True, deadline=None, max_examples=120)
+@given(events=_events)
+def test_any_run_gives_the_rigs_bytes_and_dac_counts(core: CoreLibrary, events: list) -> None:
+    """Arbitrary laws (late, queued, beyond the queue, non-finite), counts, zero requests
+    and silences long enough to trip the watchdog: the C core sends what the rig sends."""
+    pair = Pair(core)
+    pair.setup([law_bits(0.0, 5.0)] * 3)
+    for kind, arg in events:
+        if kind == "laws_rel":
+            offset, laws, blocked = arg
+            first = max(0, int(pair.ref.st[rb.S_COUNTER]) + offset)
+            pair.send(lawmsg.MSG_LAWS, laws_body(first, laws, blocked))
+        else:
+            _play_one(pair, kind, arg)
+    assert pair.c.law_counts() == (pair.ref.st[rb.S_LAWS_LATE], pair.ref.st[rb.S_LAWS_AHEAD])
+
+
+def _play_one(pair: Pair, kind: str, arg: object) -> bytes:
+    if kind == "tick":
+        return pair.tick(int(arg))
+    if kind == "zero":
+        return pair.send(lawmsg.MSG_ZERO, lawmsg.ZERO_ON if arg else lawmsg.ZERO_OFF)
+    pair.wait(int(arg))
+    return b""
+
+
+# ------------------------------------------------------------------ rules, one by one ---
+def test_the_watchdog_in_law_mode(core: CoreLibrary) -> None:
+    """PROTOCOL.md §5.3 in law mode: silence for the watchdog's time gives the fault value
+    at once (STATUS report, FAULT flag, WATCHDOG bit); LAWS restart it and lift the trip."""
+    pair = Pair(core)
+    pair.setup([law_bits(100.0, 0.0)] * 200)
+    rest = adc_at(-70.0)
+    first = _samples(pair.tick(rest))[0]
+    assert first[3] != FAULT and first[4] == 0  # 100 pA in force
+    pair.wait(WATCHDOG_US)
+    sent = pair.tick(rest)
+    reports = [codec.parse_payload(p)[1] for p in reference_deframe(sent)[0][:1]]
+    assert reports[0].result == codec.RESULT_REPORT and reports[0].watchdog_trips == 1
+    (_, status, _, dac, flags) = _samples(sent)[0]
+    assert dac == FAULT and flags & bl.BF_FLAG_FAULT
+    assert status & codec.STATUS_WATCHDOG and status & codec.STATUS_FAULT_OUTPUT
+    assert pair.c.dac(0) == FAULT
+    # KEEPALIVE restarts the watchdog but does not lift a trip (§5.3): still the fault value.
+    pair.send_message(codec.KeepAlive())
+    (_, status, _, dac, flags) = _samples(pair.tick(rest))[0]
+    assert dac == FAULT and status & codec.STATUS_WATCHDOG
+    # LAWS lift it: the queued law is back in force at the next sample.
+    pair.send(lawmsg.MSG_LAWS, laws_body(200, [law_bits(100.0, 0.0)], False))
+    (k, status, _, dac, flags) = _samples(pair.tick(rest))[0]
+    assert k == 3 and dac == first[3] and flags == 0
+    assert status & (codec.STATUS_WATCHDOG | codec.STATUS_FAULT_OUTPUT) == 0
+    assert pair.c.status().watchdog_trips == 1
+
+
+def test_late_laws_and_laws_beyond_the_queue_are_counted_and_dropped(core: CoreLibrary) -> None:
+    """PROTOCOL.md §10.4: a law for a sample already taken is late (counted, STATUS LATE
+    bit, not applied); one CCB_LAW_QUEUE (1024) or more samples ahead does not fit (counted,
+    RX_ERROR bit)."""
+    pair = Pair(core)
+    pair.setup([law_bits(100.0, 0.0)] * 4)
+    rest = adc_at(-70.0)
+    for _ in range(4):
+        pair.tick(rest)
+    # Late: samples 2 and 3 are taken; 4 is the next one and is queued.
+    pair.send(lawmsg.MSG_LAWS, laws_body(2, [law_bits(-100.0, 0.0)] * 3, False))
+    (k, status, _, dac_4, flags) = _samples(pair.tick(rest))[0]
+    assert (k, flags) == (4, 0) and status & codec.STATUS_LATE
+    assert pair.c.law_counts() == (2, 0)
+    # Beyond: the queue holds samples 5 .. 5 + 1023; 1028 fits, 1029 does not.
+    pair.send(lawmsg.MSG_LAWS, laws_body(1028, [law_bits(-100.0, 0.0)] * 2, False))
+    (_, status, _, dac_5, flags) = _samples(pair.tick(rest))[0]
+    assert status & codec.STATUS_RX_ERROR and not status & codec.STATUS_LATE
+    assert pair.c.law_counts() == (2, 1)
+    assert dac_5 == dac_4 and flags == 0  # sample 4's law still in force (lifetime 3)
+    # Counted by the rig alike; both count every law of a LAWS frame as applied.
+    assert (pair.ref.st[rb.S_LAWS_LATE], pair.ref.st[rb.S_LAWS_AHEAD]) == (2, 1)
+    assert pair.c.status().commands_applied == 3 + 2  # this run's frames (START zeroes it)
+
+
+def test_zero_acts_on_arrival_ahead_of_queued_laws_and_start_resets_it(
+    core: CoreLibrary,
+) -> None:
+    pair = Pair(core)
+    pair.setup([law_bits(100.0, 0.0)] * 10)
+    rest = adc_at(-70.0)
+    assert _samples(pair.tick(rest))[0][3] != FAULT
+    pair.send(lawmsg.MSG_ZERO, lawmsg.ZERO_ON)
+    (_, _, _, dac, flags) = _samples(pair.tick(rest))[0]
+    assert dac == FAULT and flags == bl.BF_FLAG_FAULT | bl.BF_FLAG_ZERO
+    # STOP, laws for the next run in READY, START: the zero request is off again and the
+    # laws queued in READY for samples 0.. are in force.
+    pair.c.feed(codec.encode_message(codec.Stop(), 90))
+    pair.c.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 91, laws_body(0, [law_bits(50.0, 0.0)], False)))
+    pair.c.feed(codec.encode_message(codec.Start(), 92))
+    pair.c.set_adc(0, rest)
+    pair.c.tick()
+    (k, _, _, dac, flags) = _samples(pair.c.take_tx())[0]
+    assert (k, flags) == (0, 0) and dac != FAULT
+
+
+def test_stop_forgets_the_laws_of_the_run(core: CoreLibrary) -> None:
+    """A law queued for a sample the run never reached must not act in the next run
+    (a choice of the C core: the rig keeps them, PROTOCOL.md §10.6)."""
+    rig = core.rig(HELLO)
+    for wire in _setup_wires():
+        rig.feed(wire)
+    rig.feed(
+        lawmsg.frame_bytes(lawmsg.MSG_LAWS, 50, laws_body(0, [law_bits(100.0, 0.0)] * 5, False))
+    )
+    rig.feed(codec.encode_message(codec.Start(), 51))
+    rig.set_adc(0, adc_at(-70.0))
+    rig.tick()
+    rig.feed(codec.encode_message(codec.Stop(), 52))
+    rig.feed(codec.encode_message(codec.Start(), 53))
+    rig.take_tx()
+    for _ in range(4):
+        rig.tick()
+    flags = [s[4] for s in _samples(rig.take_tx())]
+    assert flags == [bl.BF_FLAG_FAULT | bl.BF_FLAG_STALE] * 4  # no law: 0 pA
+
+
+def _setup_wires() -> list[bytes]:
+    wires = [codec.encode_message(codec.Configure(RATE_HZ, 1, WATCHDOG_US, (FAULT,)), 1)]
+    wires.append(lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 2, RULES))
+    wires += [lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 3 + i, b) for i, b in enumerate(TABLES)]
+    return wires
+
+
+def _malformed() -> list[tuple[str, bytes]]:
+    two_laws_one_sent = struct.pack("<IIBB", 0, 0, 2, 0) + b"\x00" * 8
+    bad_shift = lawmsg.rules_body(BF, np.where(np.arange(bl.N_BI) == bl.BI_BLOCK_SHIFT, 17, BI))
+    table_end = struct.pack("<HB", rb.BLOCK_POINTS - 1, 2) + b"\x00" * 8
+    return [
+        ("rules_short", lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 7, RULES[:-1])),
+        ("rules_block_shift_17", lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 7, bad_shift)),
+        ("table_beyond_its_end", lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 7, table_end)),
+        ("table_odd_length", lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 7, TABLES[0][:-1])),
+        ("laws_odd_length", lawmsg.frame_bytes(lawmsg.MSG_LAWS, 7, laws_body(0, [], False)[:-1])),
+        ("laws_count_too_high", lawmsg.frame_bytes(lawmsg.MSG_LAWS, 7, two_laws_one_sent)),
+        ("zero_without_body", lawmsg.frame_bytes(lawmsg.MSG_ZERO, 7, b"")),
+        ("zero_two_bytes", lawmsg.frame_bytes(lawmsg.MSG_ZERO, 7, b"\x01\x00")),
+    ]  # fmt: skip
+
+
+@pytest.mark.parametrize("name, wire", _malformed(), ids=[m[0] for m in _malformed()])
+def test_malformed_law_messages_are_ignored_and_counted(
+    core: CoreLibrary, name: str, wire: bytes
+) -> None:
+    """PROTOCOL.md §5.5: a body the board cannot use is an unknown message: ignored, counted,
+    never acted on, no reply. (A block shift that would read beyond the board's table is
+    one: the C core checks it, the rig's table is always the largest.)"""
+    rig = core.rig(HELLO)
+    for w in _setup_wires()[:1]:
+        rig.feed(w)
+    rig.take_tx()
+    writes = rig.dac_writes()
+    rig.feed(wire)
+    assert rig.take_tx() == b"" and rig.dac_writes() == writes
+    st = rig.status()
+    assert (st.unknown_messages, st.rejected, st.bad_frames) == (1, 0, 0)
+    assert not rig.law_mode()
+
+
+def test_law_setup_outside_ready_is_refused_and_laws_need_a_configured_board(
+    core: CoreLibrary,
+) -> None:
+    rig = core.rig(HELLO)
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 1, laws_body(0, [law_bits(1.0, 0.0)], False)))
+    assert rig.take_tx() == b"" and rig.status().unknown_messages == 1  # UNCONFIGURED
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 2, RULES))
+    for wire in (codec.encode_message(codec.Configure(RATE_HZ, 1, WATCHDOG_US, (FAULT,)), 3),
+                 codec.encode_message(codec.Start(), 4),
+                 lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 5, RULES),
+                 lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 6, TABLES[0])):  # fmt: skip
+        rig.feed(wire)
+    replies = [codec.parse_payload(p)[1] for p in reference_deframe(rig.take_tx())[0]]
+    results = [(r.ack_seq, r.result) for r in replies if isinstance(r, codec.Status)]
+    bad = codec.RESULT_BAD_STATE
+    assert results == [(2, bad), (3, codec.RESULT_OK), (4, codec.RESULT_OK), (5, bad), (6, bad)]
+    assert not rig.law_mode()
+
+
+def test_without_board_rules_the_board_is_a_version_1_board(core: CoreLibrary) -> None:
+    """No BOARD_RULES, or a CONFIGURE after them: SAMPLE messages and COMMANDs (§4, §5)."""
+    rig = core.rig(HELLO)
+    for wire in _setup_wires():
+        rig.feed(wire)
+    assert rig.law_mode()
+    rig.feed(codec.encode_message(codec.Configure(RATE_HZ, 1, WATCHDOG_US, (FAULT,)), 10))
+    assert not rig.law_mode()  # CONFIGURE leaves law mode until BOARD_RULES come again
+    rig.feed(codec.encode_message(codec.Start(), 11))
+    rig.set_adc(0, 1234)
+    rig.tick()
+    rig.feed(codec.encode_message(codec.Command(0, (40000,)), 12))
+    rig.tick()
+    msgs = [codec.parse_payload(p)[1] for p in reference_deframe(rig.take_tx())[0]]
+    samples = [m for m in msgs if isinstance(m, codec.Sample)]
+    assert [(s.counter, s.adc_counts, s.cmd_seq) for s in samples] == [(0, (1234,), 0),
+                                                                      (1, (1234,), 12)]  # fmt: skip
+    assert rig.dac(0) == 40000  # the COMMAND acted on arrival, as in version 1
+
+
+def test_a_board_built_without_law_mode_ignores_the_law_messages(
+    tmp_path_factory: pytest.TempPathFactory,
+) -> None:
+    """CCB_LAW_QUEUE=0: a version-1 board, which counts every law message as unknown and
+    answers none (§5.5); the host then runs it in current mode."""
+    if find_c_compiler() is None:
+        pytest.skip(NO_CC)
+    lib = CoreLibrary(build_core_library(tmp_path_factory.mktemp("v1"), "CCB_LAW_QUEUE=0"))
+    rig = lib.rig(HELLO)
+    wires = _setup_wires()
+    for wire in wires:
+        rig.feed(wire)
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_ZERO, 9, lawmsg.ZERO_ON))
+    replies = reference_deframe(rig.take_tx())[0]
+    assert len(replies) == 1  # CONFIGURE's only
+    assert rig.status().unknown_messages == len(wires) - 1 + 1
+    assert not rig.law_mode()
+
+
+def test_a_smaller_queue_holds_fewer_laws(tmp_path_factory: pytest.TempPathFactory) -> None:
+    if find_c_compiler() is None:
+        pytest.skip(NO_CC)
+    lib = CoreLibrary(build_core_library(tmp_path_factory.mktemp("q8"), "CCB_LAW_QUEUE=8"))
+    rig = lib.rig(HELLO)
+    for wire in _setup_wires():
+        rig.feed(wire)
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 9, laws_body(0, [law_bits(0, 0)] * 10, True)))
+    assert rig.law_counts() == (0, 2)  # samples 8 and 9 are 8 or more ahead of sample 0
+
+
+@pytest.mark.parametrize("count", [1, 2, 5, lawmsg.MAX_SAMPLES])
+def test_samples_encoder_equals_the_hosts(core: CoreLibrary, count: int) -> None:
+    rng = np.random.default_rng(count)
+    adc, dac = (rng.integers(0, 65536, count) for _ in range(2))
+    flags = rng.integers(0, 256, count)
+    out = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
+    n = lawmsg.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, count, adc, dac, flags, out)
+    c = core.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, adc, dac, flags)
+    assert c == out[:n].tobytes()
+
+
+# ------------------------------------------------------------------ shared vectors ---
+LAW_VECTORS = json.loads((C_SOURCE_DIR.parent / "vectors" / "law_v2.json").read_text())
+_RULE_FLOATS = ("limit_lo", "limit_hi", "tr_alpha", "tr_beta")
+_RULE_INTS = ("adc_ok_lo", "adc_ok_hi", "spike_adc", "rearm_adc", "tr_adc", "tr_samples",
+              "lifetime", "block_shift")  # fmt: skip
+
+
+def _f32(hexbits: str) -> int:
+    return int(hexbits, 16)
+
+
+@pytest.mark.parametrize("case", LAW_VECTORS["cases"], ids=lambda c: c["name"])
+def test_the_whole_core_reproduces_the_shared_vectors(core: CoreLibrary, case: dict) -> None:
+    """vectors/law_v2.json through the messages: BOARD_RULES and BLOCK_TABLE from the
+    case, each step's law queued by LAWS for its sample, ZERO when the request changes,
+    one tick per step; every SAMPLES frame carries the vector's counts and flags, and the
+    DAC holds them."""
+    p = case["params"]
+    assert p["dac_top"] == (1 << HELLO.dac_bits) - 1
+    rules = struct.pack(
+        "<4I8i", *(_f32(p[n]["f32"]) for n in _RULE_FLOATS), *(p[n] for n in _RULE_INTS)
+    )
+    rig = core.rig(HELLO)
+    rig.feed(codec.encode_message(codec.Configure(RATE_HZ, 1, 60_000_000, (p["fault_counts"],)), 1))
+    rig.feed(lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 2, rules))
+    table = np.array([_f32(h) for h in case["table"]], dtype=np.uint32).view(np.float32)
+    for i, body in enumerate(lawmsg.table_bodies(table)):
+        rig.feed(lawmsg.frame_bytes(lawmsg.MSG_BLOCK_TABLE, 3 + i, body))
+    for step in case["steps"]:
+        if step.get("law"):
+            words = [_f32(step["law"][n]["f32"]) for n in ("alpha", "beta", "alpha_b", "beta_b")]
+            rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 100, laws_body(step["k"], [words], True)))
+    rig.feed(codec.encode_message(codec.Start(), 101))
+    replies = [codec.parse_payload(x)[1] for x in reference_deframe(rig.take_tx())[0]]
+    assert {r.result for r in replies} == {codec.RESULT_OK}
+    zero = False
+    for step in case["steps"]:
+        if step["zero"] != zero:
+            zero = step["zero"]
+            rig.feed(lawmsg.frame_bytes(lawmsg.MSG_ZERO, 102, b"\x01" if zero else b"\x00"))
+        rig.set_adc(0, step["adc"])
+        rig.tick()
+        ((k, _, adc, dac, flags),) = _samples(rig.take_tx())
+        assert (k, adc, dac, flags) == (step["k"], step["adc"], step["counts"], step["flags"])
+        assert rig.dac(0) == step["counts"]
+
+
+# ------------------------------------------------------------------ end to end ---
+def test_the_host_runs_the_c_board_in_law_mode(tmp_path: Path) -> None:
+    """Engine -> pseudo-terminal -> the C core (ports/pty_board.c, its passive cell C 100 pF,
+    g_L 5 nS, E_L -70 mV): law mode, recorded, a valid NWB file (pynwb's validator)."""
+    from clampcore.engine import Engine, RunOptions
+    from clampcore.nwb import read_nwb_summary, validate_nwb
+    from firmware_protocol.cboard import build_pty_board, start_pty_board
+
+    if find_c_compiler() is None:
+        pytest.skip(NO_CC)
+    exp = {
+        "loop": {"rate_hz": 10_000, "max_current_pA": 400.0, "mode": "law"},
+        "amplifier": {"vm_mV_per_V": 100.0, "command_pA_per_V": 400.0},  # pty_board's own
+        "element": [{"kind": "leak", "name": "shunt", "g_nS": 5.0, "e_mV": 0.0}],
+    }
+    with start_pty_board(build_pty_board(tmp_path)) as board:
+        engine = Engine(exp, board.slave_path, RunOptions(watchdog_ms=200))
+        engine.start(duration_s=1.0, out=tmp_path / "law.nwb")
+        assert engine.wait(120.0), "the run did not end"
+        result = engine.finish()
+    assert result.error is None, result.error
+    assert result.mode == "law" and result.notice is None
+    assert validate_nwb(result.nwb_path) == []  # pynwb's validator: a list of problems
+    rec = read_nwb_summary(result.nwb_path)
+    assert rec["n_samples"] >= 9000
+    v, i_pA = rec["v_mV"], rec["i_pA"]
+    flags = rec["columns"]["flags"].astype(np.int64)
+    ok = flags == 0  # the board evaluated a law in force (not stale, no fault)
+    assert ok.mean() > 0.9, f"only {ok.mean():.1%} of the samples had a law in force"
+    # Each sample's current is the law at that sample's own V: I = -g (V - E), E = 0 mV
+    # (Ohm's law for a conductance); within the converters' steps (DAC 0.06 pA, ADC
+    # 0.03 mV = 0.15 pA at 5 nS: PROTOCOL.md §6, 16 bits over ±10 V).
+    np.testing.assert_allclose(i_pA[ok], -5.0 * v[ok], atol=0.2)
+    # The cell under the two conductances settles at (g_L E_L + g E) / (g_L + g) = -35 mV
+    # (membrane RC theory), tau = C / (g_L + g) = 10 ms: look where the law has been in
+    # force for 10 tau (1000 samples) without a break (a stalled host gives 0 pA).
+    since_break = np.arange(v.size) - np.maximum.accumulate(np.where(ok, -1, np.arange(v.size)))
+    settled = since_break > 1000
+    assert settled.sum() > 1000
+    assert np.mean(v[settled]) == pytest.approx(-35.0, abs=0.3)
