@@ -1483,6 +1483,7 @@ class Board:
 
     def _on_stop(self, seq: int) -> None:
         st = self.st
+        self.law_board.qdue[:] = -1  # a stopped run's laws never act in the next one
         if st[S_STATE] == STATE_RUNNING:
             self._log_events([self._stop_event("STOP")])
             st[S_STATE] = STATE_READY
