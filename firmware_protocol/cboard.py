@@ -7,7 +7,8 @@ Public names:
 * ``CompilerMissingError`` - raised when no C compiler is found.
 * ``find_c_compiler() -> str | None`` - ``$CC``, ``cc``, ``gcc`` or ``clang``.
 * ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
-* ``build_core_library(tmpdir) -> Path`` - shared library of the core plus the in-memory
+* ``BUILD_VARIANTS`` - the compile-time options (``-D...``) of ccb.h a board may choose.
+* ``build_core_library(tmpdir, defines=()) -> Path`` - shared library of the core plus the in-memory
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
 * ``build_pty_board(tmpdir) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
@@ -57,11 +58,23 @@ def _core_sources() -> list[str]:
     return [str(C_SOURCE_DIR / "ccb_core.c")]
 
 
-def build_core_library(tmpdir: str | os.PathLike[str]) -> Path:
-    """Compile the core and the in-memory port into ``tmpdir/libccb_mem.so``."""
-    out = Path(tmpdir) / "libccb_mem.so"
+# The build variants a small board may choose (ccb.h): the default, the CRC bit by bit
+# instead of with a table, and small receive and channel buffers.
+BUILD_VARIANTS: dict[str, tuple[str, ...]] = {
+    "default": (),
+    "crc-bitwise": ("-DCCB_CRC_BITWISE",),
+    "small-buffers": ("-DCCB_RX_MAX_PAYLOAD=64", "-DCCB_MAX_INPUTS=4"),
+}
+
+
+def build_core_library(tmpdir: str | os.PathLike[str], defines: tuple[str, ...] = ()) -> Path:
+    """Compile the core and the in-memory port into ``tmpdir/libccb_mem*.so`` (with
+    ``defines``, e.g. a ``BUILD_VARIANTS`` entry)."""
+    tag = "".join(d.replace("-D", "_").replace("=", "") for d in defines)
+    out = Path(tmpdir) / f"libccb_mem{tag}.so"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "memory_port.c")]
-    _compile([*STRICT_FLAGS, *_OPT, "-fPIC", "-shared", *srcs, "-o", str(out)], "libccb_mem")
+    args = [*STRICT_FLAGS, *_OPT, *defines, "-fPIC", "-shared", *srcs, "-o", str(out)]
+    _compile(args, "libccb_mem")
     return out
 
 

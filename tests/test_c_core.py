@@ -25,6 +25,7 @@ from hypothesis import strategies as st
 from firmware_protocol import codec
 from firmware_protocol.cbinding import CoreLibrary, MemoryRig, fnv1a_digest
 from firmware_protocol.cboard import (
+    BUILD_VARIANTS,
     C_SOURCE_DIR,
     STRICT_FLAGS,
     build_core_library,
@@ -50,11 +51,12 @@ BOARD = codec.Hello(
 FAULT = 2048  # the count the host would compute for 0 pA (PROTOCOL.md §6)
 
 
-@pytest.fixture(scope="module")
-def core(tmp_path_factory: pytest.TempPathFactory) -> CoreLibrary:
-    if find_c_compiler() is None:
-        pytest.skip(NO_CC)
-    return CoreLibrary(build_core_library(tmp_path_factory.mktemp("ccb")))
+@pytest.fixture(scope="module", params=["default", "crc-bitwise"])
+def core(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> CoreLibrary:
+    """The core as built by default and with the bit-by-bit CRC (ccb.h build options): every
+    test below runs against both."""
+    defines = BUILD_VARIANTS[request.param]
+    return CoreLibrary(build_core_library(tmp_path_factory.mktemp("ccb"), defines))
 
 
 def _frames(rig: MemoryRig) -> list[tuple[int, codec.Message]]:
@@ -103,9 +105,8 @@ def test_every_c_file_compiles_with_the_strict_flags(tmp_path: Path) -> None:
     if cc is None:
         pytest.skip(NO_CC)
     files = ["ccb_core.c", "ports/memory_port.c", "ports/fuzz_main.c", "ports/pty_board.c"]
-    variants = [[], ["-DCCB_CRC_BITWISE"], ["-DCCB_RX_MAX_PAYLOAD=64", "-DCCB_MAX_INPUTS=4"]]
     for f in files:
-        for extra in variants:
+        for extra in BUILD_VARIANTS.values():
             args = [cc, *STRICT_FLAGS, "-O2", *extra, "-c", str(C_SOURCE_DIR / f)]
             proc = subprocess.run(
                 [*args, "-o", str(tmp_path / "x.o")], capture_output=True, text=True, check=False
@@ -149,6 +150,38 @@ def test_the_header_is_usable_from_cplusplus(tmp_path: Path) -> None:
 
 
 # ------------------------------------------------------------ shared vectors
+def test_the_small_buffer_build_against_the_shared_vectors(tmp_path: Path) -> None:
+    """The small-board build (64-byte receive buffer, 4 inputs) computes the same CRC, COBS
+    and frames, deframes every vector stream whose frames fit its buffer, and counts a
+    longer frame as too long (PROTOCOL.md §2.4, rule 3)."""
+    small = CoreLibrary(build_core_library(tmp_path, BUILD_VARIANTS["small-buffers"]))
+    for v in VECTORS["crc16_ccitt_false"]:
+        assert small.crc16(bytes.fromhex(v["data"])) == v["crc"]
+    for v in VECTORS["cobs"]:
+        decoded, encoded = bytes.fromhex(v["decoded"]), bytes.fromhex(v["encoded"])
+        assert small.cobs_encode(decoded) == encoded and small.cobs_decode(encoded) == decoded
+    for v in VECTORS["messages"]:
+        payload = bytes.fromhex(v["payload"])
+        assert small.frame_encode(v["type"], v["seq"], payload[3:-2]) == bytes.fromhex(v["wire"])
+    fitting = [
+        v
+        for v in VECTORS["streams"]
+        if all(len(piece) <= 65 for piece in bytes.fromhex(v["wire"]).split(b"\x00"))
+    ]
+    assert len(fitting) >= 5
+    for v in fitting:
+        r = small.deframe_stream(bytes.fromhex(v["wire"]), 5)
+        assert [p.hex() for p in r.payloads] == v["payloads"], v["name"]
+        assert r.bad == v["bad"], v["name"]
+
+    def frame(n: int) -> bytes:  # a good frame with an n-byte payload (cobs, binascii)
+        body = bytes(range(1, n - 1))
+        return cobs.encode(body + binascii.crc_hqx(body, 0xFFFF).to_bytes(2, "little")) + b"\0"
+
+    r = small.deframe_stream(frame(64) + frame(65), 5)
+    assert [len(p) for p in r.payloads] == [64] and r.bad_by_reason[codec.FRAME_ERR_LONG] == 1
+
+
 @pytest.mark.parametrize("v", VECTORS["crc16_ccitt_false"], ids=lambda v: v["data"][:12])
 def test_crc_vectors(core: CoreLibrary, v: dict) -> None:
     assert core.crc16(bytes.fromhex(v["data"])) == v["crc"]
