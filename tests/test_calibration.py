@@ -128,3 +128,29 @@ def test_offsets_and_junction_potential_by_hand() -> None:
     assert abs(counts_to_mV(conv, mV_to_counts(conv, -60.0)) - -60.0) <= step_mV / 2
     # The current range the limit check uses: both DAC ends through the amplifier.
     assert current_range_pA(conv) == pytest.approx((-20_025.0, 19_975.0))
+
+
+def test_offsets_and_junction_potential_through_a_simulated_run() -> None:
+    """A passive cell (rest -70 mV, 5 nS) seen through an amplifier with every offset set:
+    the host must still record the true membrane potential and inject the asked current.
+    Anchors: the cell at rest reads its rest potential; 100 pA into 5 nS settles 20 mV
+    higher (Ohm's law). A wrong sign of the junction correction reads 26 mV off; a wrong
+    sign of the command offset injects 50 pA too much or too little (10 mV off)."""
+    import clampcore
+
+    exp = {
+        "loop": {"rate_hz": 10_000.0, "max_current_pA": 400.0},
+        "cell": {"model": "passive", "capacitance_pF": 100.0, "leak_nS": 5.0, "rest_mV": -70.0},
+        "amplifier": AMP_OFFSETS,
+        "element": [
+            {"kind": "current", "name": "step", "waveform": "step", "amplitude_pA": 100.0,
+             "start_ms": 100.0}
+        ],
+    }  # fmt: skip
+    rec = clampcore.simulate(exp, 0.3)
+    # Tolerance: one ADC count of membrane potential (50 mV/V over 20 V / 65 535) plus the
+    # DAC's half step (20 V / 65 535 * 2000 pA/V / 2 = 0.31 pA) into 5 nS, 0.061 mV.
+    tol_mV = 50.0 * 20.0 / 65_535 + 0.061
+    assert np.mean(rec.v_mV[:900]) == pytest.approx(-70.0, abs=tol_mV)
+    # tau = C/g = 20 ms: after 200 ms (10 tau) the response is complete to 5e-5 of 20 mV.
+    assert np.mean(rec.v_mV[-100:]) == pytest.approx(-50.0, abs=tol_mV + 0.001)
