@@ -23,7 +23,7 @@ pytest.importorskip("PySide6", reason="the window needs PySide6 (the 'gui' extra
 pytest.importorskip("pyqtgraph", reason="the window needs pyqtgraph (the 'gui' extra)")
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")  # before pytest-qt makes the app
 
-from PySide6 import QtCore, QtWidgets
+from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.engine import RunOptions
 from clampcore.experiment import ExperimentError, load_experiment
@@ -379,11 +379,14 @@ def test_connect_asks_the_board_who_it_is(qtbot, tmp_path):
 def test_bad_port_is_reported_not_a_crash(qtbot, tmp_path):
     window = TuningWindow(LEAK_EXPERIMENT, port="/dev/no-such-board", record_dir=tmp_path)
     qtbot.addWidget(window)
+    window.show()
     window.start_run()
     qtbot.waitUntil(lambda: window.state in ("failed", "stopped"), timeout=60_000)
     assert window.state == "failed"
     assert "no-such-board" in (window.last_error or "")
-    assert window.banner.isVisible() or not window.isVisible()
+    # The window says so where the user looks: the banner, at fault level, naming the port.
+    assert window.banner.isVisible() and window.banner.level == "fault"
+    assert "no-such-board" in window.banner.label.text()
 
 
 def test_screenshot_of_the_window_in_action(qtbot, tmp_path):
@@ -407,5 +410,17 @@ def test_screenshot_of_the_window_in_action(qtbot, tmp_path):
         out = ROOT / "docs" / "window.png"
     out.parent.mkdir(exist_ok=True)
     assert window.grab().save(str(out))
+    # The membrane-potential trace holds the run: finite, and spanning the spikes the
+    # driven neuron imposes (more than 30 mV from trough to peak), with spikes marked.
+    _, v = window.traces.v_curve.getData()
+    assert v is not None and np.isfinite(v).all() and np.ptp(v) > 30.0
+    _, marks = window.traces.spike_marks.getData()
+    assert marks is not None and marks.size > 0
     _stop(qtbot, window)
-    assert out.stat().st_size > 20_000
+    image = QtGui.QImage(str(out))
+    assert (image.width(), image.height()) == (window.width(), window.height())
+    # A drawn window, not a blank one: many distinct colours across a coarse grid.
+    colours = {
+        image.pixel(x, y) for x in range(0, image.width(), 10) for y in range(0, image.height(), 10)
+    }
+    assert len(colours) > 50

@@ -403,17 +403,23 @@ for m in v["messages"]:
         assert list(adc[:k]) == m["fields"]["adc_counts"]
         assert f[codec.SAMPLE_COUNTER] == m["fields"]["counter"]
 for s in v["streams"]:
-    for piece in bytes.fromhex(s["wire"]).split(b"\x00"):
+    good = []
+    for piece in bytes.fromhex(s["wire"]).split(b"\x00")[:-1]:
+        if not piece:
+            continue  # an empty frame: ignored, not counted (PROTOCOL.md §2.4)
         try:
-            codec.decode_wire(piece)
+            good.append(codec.decode_wire(piece).hex())
         except codec.FrameError:
             pass
+    assert good == s["payloads"], s["name"]  # the vectors' good frames, and only those
 junk = bytes([0xFF]) + bytes(range(1, 255)) + bytes([0xC8]) + bytes(range(1, 60))
+refused = 0
 for cut in range(1, len(junk)):
     try:
         codec.decode_wire(junk[:cut])
     except codec.FrameError:
-        pass
+        refused += 1
+assert refused == len(junk) - 1  # no cut of it is a frame (its CRC never matches)
 print("ok", codec.crc16.__class__.__name__)
 """
     env = dict(os.environ, NUMBA_DISABLE_JIT="1")
