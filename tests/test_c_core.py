@@ -41,7 +41,6 @@ _REASONS = {
     "long": codec.FRAME_ERR_LONG,
     "crc": codec.FRAME_ERR_CRC,
 }
-NO_CC = "no C compiler found (install cc/gcc/clang or set $CC): C core tests skipped"
 
 # A 12-bit, 2-input, 1-output board running at up to 20 kHz, watchdog 1 ms .. 1 s.
 BOARD = codec.Hello(
@@ -101,9 +100,7 @@ def _running(core: CoreLibrary, hello: codec.Hello = BOARD, watchdog_us: int = 5
 
 # ------------------------------------------------------------ build rules ---
 def test_every_c_file_compiles_with_the_strict_flags(tmp_path: Path) -> None:
-    cc = find_c_compiler()
-    if cc is None:
-        pytest.skip(NO_CC)
+    cc = find_c_compiler()  # present: tests/conftest.py stops the run otherwise
     files = ["ccb_core.c", "ports/memory_port.c", "ports/fuzz_main.c", "ports/pty_board.c"]
     for f in files:
         for extra in BUILD_VARIANTS.values():
@@ -115,9 +112,7 @@ def test_every_c_file_compiles_with_the_strict_flags(tmp_path: Path) -> None:
 
 
 def test_the_core_needs_nothing_from_libc_but_memcpy_and_memset(tmp_path: Path) -> None:
-    cc, nm = find_c_compiler(), shutil.which("nm")
-    if cc is None or nm is None:
-        pytest.skip("needs a C compiler and nm")
+    cc, nm = find_c_compiler(), shutil.which("nm")  # both checked by tests/conftest.py
     for opt in ("-O0", "-O2", "-Os"):
         obj = tmp_path / f"core{opt}.o"
         subprocess.run(
@@ -130,9 +125,7 @@ def test_the_core_needs_nothing_from_libc_but_memcpy_and_memset(tmp_path: Path) 
 
 
 def test_the_header_is_usable_from_cplusplus(tmp_path: Path) -> None:
-    cxx = shutil.which("c++") or shutil.which("g++") or shutil.which("clang++")
-    if cxx is None:
-        pytest.skip('no C++ compiler to check the extern "C" guards')
+    cxx = shutil.which("c++") or shutil.which("g++") or shutil.which("clang++")  # conftest
     src = tmp_path / "use.cpp"
     src.write_text(
         '#include "ccb.h"\nint main() { return ccb_crc16(nullptr, 0) == 0xFFFF ? 0 : 1; }\n'
@@ -143,10 +136,9 @@ def test_the_header_is_usable_from_cplusplus(tmp_path: Path) -> None:
         capture_output=True, text=True, check=False,
     )  # fmt: skip
     assert proc.returncode == 0, proc.stderr
-    nm = shutil.which("nm")
-    if nm:  # with the guards the C++ object refers to the unmangled C name
-        syms = subprocess.run([nm, "-u", str(tmp_path / "use.o")], capture_output=True, text=True)
-        assert "ccb_crc16" in syms.stdout.split()
+    # With the guards the C++ object refers to the unmangled C name.
+    syms = subprocess.run(["nm", "-u", str(tmp_path / "use.o")], capture_output=True, text=True)
+    assert "ccb_crc16" in syms.stdout.split()
 
 
 # ------------------------------------------------------------ shared vectors
