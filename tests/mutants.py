@@ -195,6 +195,16 @@ MUTANTS: tuple[Mutant, ...] = (
         "firmware_protocol/codec.py",
         "        zero = 1 if code != 0xFF else 0",
         "        zero = 1",
+        # Not the fuzz test: inside a frame (at most 254 bytes) a 0xFF block is always the
+        # last one, so this bug only shows on longer data.
+        ("tests/test_protocol_codec.py",),
+    ),
+    Mutant(
+        "py-deframe-crc",
+        "Python deframer checks only the CRC's low byte",
+        "firmware_protocol/codec.py",
+        "if (c & 0xFF) != dbuf[fill - 2] or (c >> 8) != dbuf[fill - 1]:",
+        "if (c & 0xFF) != dbuf[fill - 2]:",
         ("tests/test_protocol_fuzz.py",),
     ),
     Mutant(
