@@ -347,11 +347,11 @@ MUTANTS: tuple[Mutant, ...] = (
         ("tests/test_engine.py::test_recorder_counts_the_rows_the_ring_lapped",),
     ),
     Mutant(
-        "journal-torn",
-        "the journal keeps a torn last row",
+        "journal-events",
+        "the journal's flush never writes the events (parameter changes, faults)",
         "clampcore/journal.py",
-        "        n_rows = size // row_bytes",
-        "        n_rows = -(-size // row_bytes)",
+        "        if self._events:\n            self._write_all(self._events_fd",
+        "        if False:\n            self._write_all(self._events_fd",
         ("tests/test_journal.py",),
     ),
     Mutant(
