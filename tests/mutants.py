@@ -1,6 +1,6 @@
 """Deliberate bugs in the safety paths, and the tests that must catch each one.
 
-    python3 tasks.py mutants                 # all of them (about an hour on 2 cores)
+    python3 tasks.py mutants                 # all of them (45 min on 2 shared cores)
     .venv/bin/python tests/mutants.py --list # what would be applied, and whether it still can be
     .venv/bin/python tests/mutants.py --only teardown,crc
 
@@ -550,10 +550,11 @@ def main(argv: list[str] | None = None) -> int:
             rows.append((m, verdict, detail))
             print(f"[{k}/{len(chosen)}] {m.name}: {verdict} {detail} ({secs:.0f} s)", flush=True)
 
-    lines = ["| mutation | file | result | caught by |", "|---|---|---|---|"]
+    lines = ["| deliberate bug | in | caught by (first failing test) |", "|---|---|---|"]
     for m, verdict, detail in rows:
-        by = detail if verdict == "caught" else f"**{verdict}** {detail}".strip()
-        lines.append(f"| {m.what} | `{m.path}` | {verdict} | {by if verdict == 'caught' else ''} |")
+        by = detail.removeprefix("tests/") if verdict == "caught" else f"**{verdict}** {detail}"
+        what = m.what.replace("|", "\\|")  # a literal bar inside a Markdown table cell
+        lines.append(f"| {what} | `{m.path}` | {by.strip()} |")
     caught = sum(1 for _, v, _ in rows if v == "caught")
     summary = f"{caught} of {len(rows)} mutants caught, {len(rows) - caught} not"
     killers = {_module(d) for _, v, d in rows if v == "caught"}
