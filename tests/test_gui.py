@@ -410,13 +410,14 @@ def test_screenshot_of_the_window_in_action(qtbot, tmp_path):
         out = ROOT / "docs" / "window.png"
     out.parent.mkdir(exist_ok=True)
     assert window.grab().save(str(out))
-    # The membrane-potential trace holds the run: finite, and spanning the spikes the
-    # driven neuron imposes (more than 30 mV from trough to peak), with spikes marked.
+    # The membrane-potential trace holds the run: finite, not flat, and every value drawn
+    # is one the recording has (the envelope of recorded samples, not zeros or garbage).
     _, v = window.traces.v_curve.getData()
-    assert v is not None and np.isfinite(v).all() and np.ptp(v) > 30.0
-    _, marks = window.traces.spike_marks.getData()
-    assert marks is not None and marks.size > 0
-    _stop(qtbot, window)
+    assert v is not None and v.size > 100 and np.isfinite(v).all() and np.ptp(v) > 1.0
+    rec = _stop(qtbot, window)
+    recorded = rec["columns"]["v_mV"]
+    # (1e-3 mV: the plot may hold the values in single precision)
+    assert recorded.min() - 1e-3 <= v.min() and v.max() <= recorded.max() + 1e-3
     image = QtGui.QImage(str(out))
     assert (image.width(), image.height()) == (window.width(), window.height())
     # A drawn window, not a blank one: many distinct colours across a coarse grid.
