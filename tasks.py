@@ -1,8 +1,10 @@
 #!/usr/bin/env python3
 """Set up the project's environments and run its two everyday jobs.
 
-    python3 tasks.py demo   # install, then run an example on the simulated rig
-    python3 tasks.py test   # install, then lint and run every test
+    python3 tasks.py demo     # install, then run an example on the simulated rig
+    python3 tasks.py test     # install, then lint and run every test
+    python3 tasks.py mutants  # install, then apply each deliberate bug of tests/mutants.py
+                              # and run the tests that must catch it (slow; not CI)
 
 Only the standard library is used here, so this works on a fresh machine that
 has Python 3.11+ and a C compiler.  Two virtual environments are made beside
@@ -85,12 +87,25 @@ def test() -> None:
     )
 
 
+def mutants(extra: list[str]) -> None:
+    """Mutation check of the safety paths (tests/mutants.py; options after the job name)."""
+    _ensure_env(MAIN_ENV, "gui,test")
+    _ensure_env(REFERENCE_ENV, "test,reference")  # one mutant is caught by the brian2 tests
+    env = _env_vars(MAIN_ENV)
+    env.pop("NUMBA_CACHE_DIR")  # the runner gives every mutant a fresh cache of its own
+    reference = ["--reference-python", str(_python(REFERENCE_ENV))]
+    _run([_python(MAIN_ENV), ROOT / "tests" / "mutants.py", *reference, *extra], env=env)
+
+
 def main() -> None:
-    jobs = {"demo": demo, "test": test}
-    if len(sys.argv) != 2 or sys.argv[1] not in jobs:
+    jobs = {"demo": demo, "test": test, "mutants": mutants}
+    if len(sys.argv) < 2 or sys.argv[1] not in jobs or (sys.argv[1] != "mutants" and sys.argv[2:]):
         sys.exit(f"usage: python3 {Path(__file__).name} {{{'|'.join(jobs)}}}")
     try:
-        jobs[sys.argv[1]]()
+        if sys.argv[1] == "mutants":
+            mutants(sys.argv[2:])
+        else:
+            jobs[sys.argv[1]]()
     except subprocess.CalledProcessError as exc:
         sys.exit(exc.returncode or 1)
 

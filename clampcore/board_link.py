@@ -175,7 +175,7 @@ class BoardLink:
         return reply
 
     def command_now(self, seq: int, answers_counter: int, dac_counts: int) -> None:
-        """Send one COMMAND at once (used to command 0 pA before stopping)."""
+        """Send one COMMAND at once."""
         self.send(codec.Command(answers_counter % 2**32, (dac_counts,)), seq=seq % 0x10000)
 
     def law_setup(self, rules: bytes, tables: list[bytes]) -> bool:
@@ -216,6 +216,32 @@ class BoardLink:
                 if n > 0 and np.any(flags[:n] & boardlaw.BF_FLAG_ZERO):
                     return True
         return False
+
+    def command_after(
+        self, seq: int, last_counter: int, dac_counts: int, timeout_s: float
+    ) -> int | None:
+        """Command ``dac_counts`` (0 pA before stopping) so that the board applies it.
+
+        A board applies a COMMAND only if it answers a sample already sent and newer than
+        the one the command in force answers (PROTOCOL.md §5.2), so repeating the last
+        answered counter would be rejected. This reads the samples that arrived after
+        ``last_counter`` (the newest the loop answered; -1 for none) and answers the newest
+        of them. Returns the counter answered, or None when no newer sample came within
+        ``timeout_s``: then no COMMAND could be applied and only STOP's fault value (0 pA)
+        brings the output to zero.
+        """
+        newest = None
+        for _seq, msg in self._frames(time.monotonic() + timeout_s):
+            if isinstance(msg, codec.Sample) and (
+                last_counter < 0 or 0 < (msg.counter - last_counter) % 2**32 < 2**31
+            ):
+                newest = msg.counter  # RFC 1982 serial-number order, as the board's
+            if newest is not None and b"\x00" not in self._pending and not self.serial.in_waiting:
+                break  # nothing more has arrived: this is the newest sample
+        if newest is None:
+            return None
+        self.command_now(seq, newest, dac_counts)
+        return newest
 
     def take_unread(self) -> bytes:
         """Bytes read while waiting for a reply but not yet used (e.g. the first sample)."""

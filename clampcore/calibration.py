@@ -21,6 +21,7 @@ Public names: ``Converter``, ``DEFAULT_BOARD_ADC``, ``DEFAULT_BOARD_DAC``,
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -65,6 +66,18 @@ def conversion_array(adc: Converter, dac: Converter, amplifier: dict[str, Any]) 
 
 
 @kernel
+def _nearest_count(volts: float, min_V: float, max_V: float, top: float) -> int:
+    """PROTOCOL.md §6: x = (v - min) / (max - min) * (2^N - 1), count floor(x + 1/2)
+    (round half up, not half to even), clipped to 0 .. 2^N - 1.
+
+    x is formed as (v - min) * top / (max - min): the same real number, but exact in
+    binary floating point whenever (v - min) * top is and divides evenly, so exact halves
+    stay exact halves."""
+    c = math.floor((volts - min_V) * top / (max_V - min_V) + 0.5)
+    return int(min(max(c, 0.0), top))
+
+
+@kernel
 def counts_to_mV(conv: np.ndarray, counts: float) -> float:
     """Host: ADC counts -> membrane potential in mV (junction potential corrected)."""
     volts = conv[C_ADC_MIN] + counts * (conv[C_ADC_MAX] - conv[C_ADC_MIN]) / conv[C_ADC_TOP]
@@ -73,18 +86,16 @@ def counts_to_mV(conv: np.ndarray, counts: float) -> float:
 
 @kernel
 def pA_to_counts(conv: np.ndarray, i_pA: float) -> int:
-    """Host: command current in pA -> nearest DAC count, clipped to the converter."""
+    """Host: command current in pA -> DAC count (PROTOCOL.md §6 rounding), clipped."""
     volts = (i_pA - conv[C_CMD_OFFSET]) / conv[C_CMD_SCALE]
-    c = round((volts - conv[C_DAC_MIN]) / (conv[C_DAC_MAX] - conv[C_DAC_MIN]) * conv[C_DAC_TOP])
-    return int(min(max(c, 0.0), conv[C_DAC_TOP]))
+    return _nearest_count(volts, conv[C_DAC_MIN], conv[C_DAC_MAX], conv[C_DAC_TOP])
 
 
 @kernel
 def mV_to_counts(conv: np.ndarray, v_mV: float) -> int:
-    """Board physics: true membrane potential -> the ADC count the board reads."""
+    """Board physics: true membrane potential -> the ADC count the board reads (same rounding)."""
     volts = (v_mV + conv[C_LJP] - conv[C_VM_OFFSET]) / conv[C_VM_SCALE]
-    c = round((volts - conv[C_ADC_MIN]) / (conv[C_ADC_MAX] - conv[C_ADC_MIN]) * conv[C_ADC_TOP])
-    return int(min(max(c, 0.0), conv[C_ADC_TOP]))
+    return _nearest_count(volts, conv[C_ADC_MIN], conv[C_ADC_MAX], conv[C_ADC_TOP])
 
 
 @kernel

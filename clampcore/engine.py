@@ -100,6 +100,11 @@ from clampcore.shared import (
 from firmware_protocol.lawmsg import rules_body, table_bodies
 
 _PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
+# Before stopping, wait this long for a sample newer than the last one answered, so that the
+# 0 pA command has a sample to answer: a running board sends one per period; the slack covers
+# a scheduling stall of the host (a few ms on these machines, REALTIME-NOTES).
+_ZERO_WAIT_PERIODS = 3
+_ZERO_WAIT_SLACK_S = 0.05
 
 
 class EngineError(RuntimeError):
@@ -278,15 +283,17 @@ def _loop_process(
     finally:
         if link is not None:
             if started:
-                # Safety first: 0 pA, then stop the board.
+                # Safety first: 0 pA (a command answering the newest sample, so that the board
+                # applies it; PROTOCOL.md §5.2), then stop the board.
                 with contextlib.suppress(BoardError, OSError, NameError):
                     if law is not None:
                         link.zero_now()
                     else:
-                        link.command_now(
+                        link.command_after(
                             int(arrays.lk[LK_NEXT_SEQ]),
-                            int(max(arrays.lk[LK_LAST_COUNTER], 0)),
+                            int(arrays.lk[LK_LAST_COUNTER]),
                             zero,
+                            timeout_s=_ZERO_WAIT_PERIODS / rate + _ZERO_WAIT_SLACK_S,
                         )
                 with contextlib.suppress(BoardError, OSError):
                     status = link.stop()

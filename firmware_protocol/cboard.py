@@ -8,12 +8,14 @@ Public names:
 * ``CompilerMissingError`` - raised when no C compiler is found.
 * ``find_c_compiler() -> str | None`` - ``$CC``, ``cc``, ``gcc`` or ``clang``.
 * ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
-* ``build_core_library(tmpdir, *defines) -> Path`` - shared library of the core plus the in-memory
+* ``BUILD_VARIANTS`` - the compile-time options (``-D...``) of ccb.h a board may choose.
+* ``build_core_library(tmpdir, defines=()) -> Path`` - shared library of the core plus the in-memory
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
 * ``build_law_library(tmpdir, opt="-O2", extra=()) -> Path`` - shared library of the board's
   per-sample arithmetic (``ccb_law.c``) for ctypes (see ``firmware_protocol.claw``).
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
-* ``build_pty_board(tmpdir, *defines) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
+* ``build_pty_board(tmpdir, defines=()) -> Path`` - the pseudo-terminal board
+  (``ports/pty_board.c``).
 * ``PtyBoard`` / ``start_pty_board(binary, *options) -> PtyBoard`` - run it; the
   object gives the slave path and stops the process (also as a context manager).
 """
@@ -64,18 +66,28 @@ def _core_sources() -> list[str]:
     return [str(C_SOURCE_DIR / "ccb_core.c"), str(C_SOURCE_DIR / "ccb_law.c")]
 
 
+# The build variants a board may choose (ccb.h): the default, the CRC bit by bit instead
+# of with a table, small receive and channel buffers, law mode left out (a board that only
+# converts), and the smallest law mode.
+BUILD_VARIANTS: dict[str, tuple[str, ...]] = {
+    "default": (),
+    "crc-bitwise": ("-DCCB_CRC_BITWISE",),
+    "small-buffers": ("-DCCB_RX_MAX_PAYLOAD=64", "-DCCB_MAX_INPUTS=4"),
+    "no-law": ("-DCCB_LAW_QUEUE=0",),
+    "small-law": ("-DCCB_LAW_QUEUE=8", "-DCCB_BLOCK_POINTS=2"),
+}
+
+
 def _suffix(defines: tuple[str, ...]) -> str:
-    return "".join(f"-{d.replace('=', '_')}" for d in defines)
+    return "".join(d.replace("-D", "_").replace("=", "") for d in defines)
 
 
-def build_core_library(tmpdir: str | os.PathLike[str], *defines: str) -> Path:
-    """Compile the core and the in-memory port into ``tmpdir/libccb_mem.so``.
-
-    ``defines``: the core's build options (``ccb.h``), e.g. ``"CCB_LAW_QUEUE=16"``.
-    """
+def build_core_library(tmpdir: str | os.PathLike[str], defines: tuple[str, ...] = ()) -> Path:
+    """Compile the core and the in-memory port into ``tmpdir/libccb_mem*.so`` (with
+    ``defines``, e.g. a ``BUILD_VARIANTS`` entry such as ``("-DCCB_LAW_QUEUE=16",)``)."""
     out = Path(tmpdir) / f"libccb_mem{_suffix(defines)}.so"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "memory_port.c")]
-    flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *(f"-D{d}" for d in defines)]
+    flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *defines]
     args = [*flags, "-fPIC", "-shared", *srcs, "-o", str(out), *_LIBS]
     _compile(args, "libccb_mem")
     return out
@@ -126,15 +138,15 @@ def build_fuzz_binary(tmpdir: str | os.PathLike[str], sanitize: bool) -> Path:
     return out
 
 
-def build_pty_board(tmpdir: str | os.PathLike[str], *defines: str) -> Path:
-    """Compile the pseudo-terminal board (``ports/pty_board.c``) to ``tmpdir/pty_board``.
+def build_pty_board(tmpdir: str | os.PathLike[str], defines: tuple[str, ...] = ()) -> Path:
+    """Compile the pseudo-terminal board (``ports/pty_board.c``) to ``tmpdir/pty_board*``.
 
-    ``defines``: build options for the core, e.g. ``"CCB_LAW_QUEUE=0"`` (a board without
-    law mode, which ignores the law messages as a version-1 board does).
+    ``defines``: build options for the core, e.g. ``BUILD_VARIANTS["no-law"]`` (a board
+    without law mode, which ignores the law messages as a version-1 board does).
     """
     out = Path(tmpdir) / f"pty_board{_suffix(defines)}"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "pty_board.c")]
-    flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *(f"-D{d}" for d in defines)]
+    flags = [*STRICT_FLAGS, *LAW_FLAGS, *_OPT, *defines]
     _compile([*flags, *srcs, "-o", str(out), *_LIBS], "pty_board")
     return out
 

@@ -1523,9 +1523,14 @@ class Board:
 
     def _stop_event(self, why: str) -> dict[str, Any]:
         st = self.st
+        fault = st[S_HAVE_CMD] == 0 or st[S_TRIPPED] != 0
         return self._event(
             "stop",
             why=why,
+            # What the DAC held when the stop came: a command's count (and its seq) or the
+            # fault value (cmd_seq -1).
+            dac_counts=int(st[S_FAULT_COUNTS] if fault else st[S_CMD_COUNTS]),
+            cmd_seq=-1 if fault else int(st[S_CMD_SEQ]),
             samples=int(st[S_COUNTER]),
             status=asdict(self.status()),
             behind=int(st[S_BEHIND]),

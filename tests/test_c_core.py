@@ -25,6 +25,7 @@ from hypothesis import strategies as st
 from firmware_protocol import codec
 from firmware_protocol.cbinding import CoreLibrary, MemoryRig, fnv1a_digest
 from firmware_protocol.cboard import (
+    BUILD_VARIANTS,
     C_SOURCE_DIR,
     LAW_FLAGS,
     STRICT_FLAGS,
@@ -41,7 +42,6 @@ _REASONS = {
     "long": codec.FRAME_ERR_LONG,
     "crc": codec.FRAME_ERR_CRC,
 }
-NO_CC = "no C compiler found (install cc/gcc/clang or set $CC): C core tests skipped"
 
 # A 12-bit, 2-input, 1-output board running at up to 20 kHz, watchdog 1 ms .. 1 s.
 BOARD = codec.Hello(
@@ -51,11 +51,12 @@ BOARD = codec.Hello(
 FAULT = 2048  # the count the host would compute for 0 pA (PROTOCOL.md §6)
 
 
-@pytest.fixture(scope="module")
-def core(tmp_path_factory: pytest.TempPathFactory) -> CoreLibrary:
-    if find_c_compiler() is None:
-        pytest.skip(NO_CC)
-    return CoreLibrary(build_core_library(tmp_path_factory.mktemp("ccb")))
+@pytest.fixture(scope="module", params=["default", "crc-bitwise"])
+def core(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> CoreLibrary:
+    """The core as built by default and with the bit-by-bit CRC (ccb.h build options): every
+    test below runs against both."""
+    defines = BUILD_VARIANTS[request.param]
+    return CoreLibrary(build_core_library(tmp_path_factory.mktemp("ccb"), defines))
 
 
 def _frames(rig: MemoryRig) -> list[tuple[int, codec.Message]]:
@@ -100,9 +101,7 @@ def _running(core: CoreLibrary, hello: codec.Hello = BOARD, watchdog_us: int = 5
 
 # ------------------------------------------------------------ build rules ---
 def test_every_c_file_compiles_with_the_strict_flags(tmp_path: Path) -> None:
-    cc = find_c_compiler()
-    if cc is None:
-        pytest.skip(NO_CC)
+    cc = find_c_compiler()  # present: tests/conftest.py stops the run otherwise
     files = [
         "ccb_core.c",
         "ccb_law.c",
@@ -110,15 +109,8 @@ def test_every_c_file_compiles_with_the_strict_flags(tmp_path: Path) -> None:
         "ports/fuzz_main.c",
         "ports/pty_board.c",
     ]
-    variants = [
-        [],
-        ["-DCCB_CRC_BITWISE"],
-        ["-DCCB_RX_MAX_PAYLOAD=64", "-DCCB_MAX_INPUTS=4"],
-        ["-DCCB_LAW_QUEUE=0"],  # law mode left out
-        ["-DCCB_LAW_QUEUE=8", "-DCCB_BLOCK_POINTS=2"],  # the smallest law mode
-    ]
     for f in files:
-        for extra in variants:
+        for extra in BUILD_VARIANTS.values():
             args = [cc, *STRICT_FLAGS, *LAW_FLAGS, "-O2", *extra, "-c", str(C_SOURCE_DIR / f)]
             proc = subprocess.run(
                 [*args, "-o", str(tmp_path / "x.o")], capture_output=True, text=True, check=False
@@ -127,9 +119,7 @@ def test_every_c_file_compiles_with_the_strict_flags(tmp_path: Path) -> None:
 
 
 def test_the_core_needs_nothing_from_libc_but_memcpy_memset_and_floorf(tmp_path: Path) -> None:
-    cc, nm = find_c_compiler(), shutil.which("nm")
-    if cc is None or nm is None:
-        pytest.skip("needs a C compiler and nm")
+    cc, nm = find_c_compiler(), shutil.which("nm")  # both checked by tests/conftest.py
     law_api = {"ccb_law_reset", "ccb_law_set", "ccb_law_eval"}  # ccb_law.c, beside the core
     allowed = {"ccb_core.c": {"memcpy", "memset"} | law_api, "ccb_law.c": {"floorf"}}
     for opt in ("-O0", "-O2", "-Os"):
@@ -145,9 +135,7 @@ def test_the_core_needs_nothing_from_libc_but_memcpy_memset_and_floorf(tmp_path:
 
 
 def test_the_header_is_usable_from_cplusplus(tmp_path: Path) -> None:
-    cxx = shutil.which("c++") or shutil.which("g++") or shutil.which("clang++")
-    if cxx is None:
-        pytest.skip('no C++ compiler to check the extern "C" guards')
+    cxx = shutil.which("c++") or shutil.which("g++") or shutil.which("clang++")  # conftest
     src = tmp_path / "use.cpp"
     src.write_text(
         '#include "ccb.h"\nint main() { return ccb_crc16(nullptr, 0) == 0xFFFF ? 0 : 1; }\n'
@@ -158,13 +146,44 @@ def test_the_header_is_usable_from_cplusplus(tmp_path: Path) -> None:
         capture_output=True, text=True, check=False,
     )  # fmt: skip
     assert proc.returncode == 0, proc.stderr
-    nm = shutil.which("nm")
-    if nm:  # with the guards the C++ object refers to the unmangled C name
-        syms = subprocess.run([nm, "-u", str(tmp_path / "use.o")], capture_output=True, text=True)
-        assert "ccb_crc16" in syms.stdout.split()
+    # With the guards the C++ object refers to the unmangled C name.
+    syms = subprocess.run(["nm", "-u", str(tmp_path / "use.o")], capture_output=True, text=True)
+    assert "ccb_crc16" in syms.stdout.split()
 
 
 # ------------------------------------------------------------ shared vectors
+def test_the_small_buffer_build_against_the_shared_vectors(tmp_path: Path) -> None:
+    """The small-board build (64-byte receive buffer, 4 inputs) computes the same CRC, COBS
+    and frames, deframes every vector stream whose frames fit its buffer, and counts a
+    longer frame as too long (PROTOCOL.md §2.4, rule 3)."""
+    small = CoreLibrary(build_core_library(tmp_path, BUILD_VARIANTS["small-buffers"]))
+    for v in VECTORS["crc16_ccitt_false"]:
+        assert small.crc16(bytes.fromhex(v["data"])) == v["crc"]
+    for v in VECTORS["cobs"]:
+        decoded, encoded = bytes.fromhex(v["decoded"]), bytes.fromhex(v["encoded"])
+        assert small.cobs_encode(decoded) == encoded and small.cobs_decode(encoded) == decoded
+    for v in VECTORS["messages"]:
+        payload = bytes.fromhex(v["payload"])
+        assert small.frame_encode(v["type"], v["seq"], payload[3:-2]) == bytes.fromhex(v["wire"])
+    fitting = [
+        v
+        for v in VECTORS["streams"]
+        if all(len(piece) <= 65 for piece in bytes.fromhex(v["wire"]).split(b"\x00"))
+    ]
+    assert len(fitting) >= 5
+    for v in fitting:
+        r = small.deframe_stream(bytes.fromhex(v["wire"]), 5)
+        assert [p.hex() for p in r.payloads] == v["payloads"], v["name"]
+        assert r.bad == v["bad"], v["name"]
+
+    def frame(n: int) -> bytes:  # a good frame with an n-byte payload (cobs, binascii)
+        body = bytes(range(1, n - 1))
+        return cobs.encode(body + binascii.crc_hqx(body, 0xFFFF).to_bytes(2, "little")) + b"\0"
+
+    r = small.deframe_stream(frame(64) + frame(65), 5)
+    assert [len(p) for p in r.payloads] == [64] and r.bad_by_reason[codec.FRAME_ERR_LONG] == 1
+
+
 @pytest.mark.parametrize("v", VECTORS["crc16_ccitt_false"], ids=lambda v: v["data"][:12])
 def test_crc_vectors(core: CoreLibrary, v: dict) -> None:
     assert core.crc16(bytes.fromhex(v["data"])) == v["crc"]

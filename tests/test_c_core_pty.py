@@ -23,11 +23,9 @@ from firmware_protocol import codec
 from firmware_protocol.cboard import (
     PtyBoard,
     build_pty_board,
-    find_c_compiler,
     start_pty_board,
 )
 
-NO_CC = "no C compiler found (install cc/gcc/clang or set $CC): pty board tests skipped"
 LIVENESS_S = 5.0  # give up waiting for a frame after this long (a hang, not a timing check)
 
 # A non-default amplifier scaling, so that the options are seen to be used.
@@ -99,8 +97,6 @@ class RawClient:
 
 @pytest.fixture(scope="module")
 def binary(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    if find_c_compiler() is None:
-        pytest.skip(NO_CC)
     return build_pty_board(tmp_path_factory.mktemp("pty"))
 
 
@@ -134,7 +130,9 @@ def _run(client: RawClient) -> None:
         return CMD_PA_PER_V * counts_to_volts(count, *dac) + CMD_OFFSET_PA
 
     fault = dac_count(0.0)
-    seq = client.send(codec.Configure(1_000, 1, 50_000, (fault,)))
+    # A generous watchdog (0.5 s): a trip must mean the host fell silent on purpose, not
+    # that the shared machine stalled this test for a few tens of milliseconds.
+    seq = client.send(codec.Configure(1_000, 1, 500_000, (fault,)))
     reply = client.recv_a(codec.Status)
     assert (reply.ack_seq, reply.result, reply.state) == (seq, codec.RESULT_OK, codec.STATE_READY)
     client.send(codec.Start())

@@ -595,6 +595,32 @@ def test_ou_noise_stationary_statistics() -> None:
     np.testing.assert_allclose(rec.i_element_pA["ge"], -g * (rec.v_mV - 0.0), rtol=1e-12)
 
 
+def test_ou_noise_correlation_time_to_within_two_percent() -> None:
+    """The correlation time itself, precisely enough to see a 5% error.
+
+    An OU process sampled every dt is AR(1) with rho = exp(-dt/tau) (Uhlenbeck & Ornstein
+    1930; exact update: Gillespie 1996). The least-squares estimate of rho (mean known) has
+    standard error sqrt((1 - rho^2)/n) (Brockwell & Davis 1991, Time Series: Theory and
+    Methods, §8.8), hence tau = -dt/ln(rho) a relative one of SE(rho)/(rho |ln rho|). Most
+    information per sample comes at dt comparable to tau: 1 kHz and tau = 2 ms, 400 s."""
+    rate_hz, tau_ms, mean, sd, seconds = 1000.0, 2.0, 20.0, 3.0, 400.0
+    exp = {
+        "loop": {"rate_hz": rate_hz},
+        "element": [
+            {"kind": "noise", "name": "g", "g_mean_nS": mean, "g_sd_nS": sd, "tau_ms": tau_ms}
+        ],
+    }
+    x = clampcore.simulate(exp, seconds, quantise=False).g_nS["g"] - mean
+    assert x.min() > -mean  # 6.7 SD: never clipped at 0, which would bias the estimate
+    rho_hat = float(np.dot(x[:-1], x[1:]) / np.dot(x[:-1], x[:-1]))
+    dt_ms = 1000.0 / rate_hz
+    tau_hat_ms = -dt_ms / math.log(rho_hat)
+    rho = math.exp(-dt_ms / tau_ms)
+    se_rel = math.sqrt((1 - rho**2) / x.size) / (rho * abs(math.log(rho)))
+    assert 4 * se_rel < 0.025  # the band is narrow enough to see a 5% error
+    assert abs(tau_hat_ms / tau_ms - 1.0) < 4 * se_rel, (tau_hat_ms, se_rel)
+
+
 def test_noise_clipped_at_zero_in_the_applied_conductance() -> None:
     prog = _program(
         [{"kind": "noise", "name": "gi", "g_mean_nS": 1.0, "g_sd_nS": 3.0, "tau_ms": 1.0}]

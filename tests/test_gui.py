@@ -341,8 +341,11 @@ def test_connect_asks_the_board_who_it_is(qtbot, tmp_path):
 def test_bad_port_is_reported_not_a_crash(qtbot, tmp_path):
     window = TuningWindow(LEAK_EXPERIMENT, port="/dev/no-such-board", record_dir=tmp_path)
     qtbot.addWidget(window)
+    window.show()
     window.start_run()
     qtbot.waitUntil(lambda: window.state in ("failed", "stopped"), timeout=60_000)
     assert window.state == "failed"
     assert "no-such-board" in (window.last_error or "")
-    assert window.banner.isVisible() or not window.isVisible()
+    # The window says so where the user looks: the banner, at fault level, naming the port.
+    assert window.banner.isVisible() and window.banner.level == "fault"
+    assert "no-such-board" in window.banner.label.text()

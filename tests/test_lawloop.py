@@ -165,9 +165,9 @@ def test_zero_request_acts_at_once_and_teardown_leaves_zero(tmp_path):
 def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
     """A version-1 board ignores BOARD_RULES (PROTOCOL.md §5.5): the host falls back to
     current mode and says so. The C core built without law mode (CCB_LAW_QUEUE=0) is one."""
-    from firmware_protocol.cboard import build_pty_board, start_pty_board
+    from firmware_protocol.cboard import BUILD_VARIANTS, build_pty_board, start_pty_board
 
-    binary = build_pty_board(tmp_path, "CCB_LAW_QUEUE=0")
+    binary = build_pty_board(tmp_path, BUILD_VARIANTS["no-law"])
     exp = copy.deepcopy(SUBTHRESHOLD)
     exp["element"] = exp["element"][:1]
     with start_pty_board(binary) as board:

@@ -139,12 +139,9 @@ def test_passive_physics_through_the_serial_path(tmp_path):
 
 @pytest.fixture(scope="module")
 def c_board_binary(tmp_path_factory):
-    from firmware_protocol.cboard import CompilerMissingError, build_pty_board
+    from firmware_protocol.cboard import build_pty_board
 
-    try:
-        return build_pty_board(tmp_path_factory.mktemp("cboard"))
-    except CompilerMissingError as exc:
-        pytest.skip(f"no C compiler: {exc}")
+    return build_pty_board(tmp_path_factory.mktemp("cboard"))
 
 
 def test_host_against_the_c_board_core(tmp_path, c_board_binary):
@@ -170,6 +167,11 @@ def test_host_against_the_c_board_core(tmp_path, c_board_binary):
         lat = rec["columns"]["latency_samples"]
         assert np.isfinite(lat).sum() > 19000  # the board reported which command was in force
         assert result.board_status["watchdog_trips"] == 0
+        # The 0 pA command before STOP (README, Safety) was applied by the C core, which
+        # follows PROTOCOL.md §5.2: it rejected nothing, and applied one command more than
+        # the loop sent.
+        assert result.board_status["rejected"] == 0, result.board_status
+        assert result.board_status["commands_applied"] == result.summary["commands"] + 1
 
         # Now kill the host's loop process mid-run: the C board's watchdog must trip.
         engine = Engine(exp, board.slave_path, RunOptions(watchdog_ms=20))
@@ -186,6 +188,36 @@ def test_host_against_the_c_board_core(tmp_path, c_board_binary):
             link.close()
         assert status is not None and status.watchdog_trips >= 1
         _valid(killed.nwb_path)
+
+
+# An experiment whose every command is far from 0 pA: a constant 100 pA from the first sample.
+CONSTANT_100_PA = PASSIVE_STEP.replace("start_ms = 20", "start_ms = 0")
+# PROTOCOL.md §6, worked numbers (16-bit ±10 V, 400 pA/V): 0 pA is DAC count 32 768 and 100 pA
+# is 33 587; the virtual leak adds a little, so the loop's commands sit near 33 587.
+ZERO_PA_COUNTS = 32_768
+
+
+def test_the_output_is_0_pA_by_the_hosts_command_before_stop(tmp_path):
+    """README, Safety: on any stop the host commands 0 pA first, then stops the board. The
+    rig's ground truth says what the DAC held when STOP came: the 0 pA count, and from a
+    command the board applied (not the fault value STOP itself writes)."""
+    for clock in ("lockstep", "wall"):
+        log = tmp_path / f"{clock}.log"
+        options = RunOptions(rig_clock=clock, rig_log=log, watchdog_ms=500)
+        result = _run(Engine(CONSTANT_100_PA, "sim", options), 0.05, tmp_path / f"{clock}.nwb")
+        assert result.error is None, result.error
+        truth = read_log(log)
+        stop = truth.events_of("stop")[-1]
+        assert stop["why"] == "STOP", stop
+        assert stop["dac_counts"] == ZERO_PA_COUNTS, (clock, stop)
+        assert stop["cmd_seq"] != -1, (clock, stop)  # a command was in force, not the fault value
+        # Every command the loop sent was the 100 pA one: 0 pA came from the teardown alone.
+        gt = truth.for_run(1)
+        applied = gt.dac_counts[gt.cmd_seq != NO_COMMAND]
+        zero_rows = np.flatnonzero(applied == ZERO_PA_COUNTS)
+        assert applied.size > 100 and np.all(applied[: applied.size - zero_rows.size] > 33_000)
+        # A board following PROTOCOL.md §5.2 rejected nothing the host sent.
+        assert result.board_status["rejected"] == 0, (clock, result.board_status)
 
 
 def _wait_for_samples(engine: Engine, n: int, timeout_s: float = 60.0) -> None:
@@ -250,6 +282,12 @@ def test_corrupted_and_dropped_frames_are_counted_and_never_applied(tmp_path):
     counters = rec["columns"]["sample_counter"].astype(np.int64)
     host_i = dict(zip(counters.tolist(), rec["i_pA"].tolist(), strict=True))
     applied = gt.records[(gt.cmd_seq != NO_COMMAND) & ~gt.watchdog]
+    # The only command answering a sample the loop never recorded is the 0 pA command sent
+    # before STOP (README, Safety): it answers the newest sample, which came after the loop.
+    teardown = ~np.isin(applied["cmd_answers"], counters)
+    assert np.unique(applied["cmd_seq"][teardown]).size <= 1
+    assert np.all(applied["dac_counts"][teardown] == _zero_counts(exp))
+    applied = applied[~teardown]
     assert applied.size > 10000
     sent = np.array([pA_to_counts(conv, host_i[int(c)]) for c in applied["cmd_answers"]])
     np.testing.assert_array_equal(applied["dac_counts"], sent)

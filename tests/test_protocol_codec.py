@@ -19,7 +19,7 @@ import crcmod.predefined
 import numpy as np
 import pytest
 from cobs import cobs
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from firmware_protocol import codec
@@ -66,6 +66,12 @@ def test_crc_matches_binascii_and_crcmod(data: bytes) -> None:
 # ---------------------------------------------------------------- COBS ------
 @_SETTINGS
 @given(st.one_of(st.binary(max_size=700), st.lists(st.sampled_from([0, 1, 255]), max_size=600)))
+# Runs of non-zero bytes around the 254-byte block edge (Cheshire & Baker 1999: a 0xFF code
+# is 254 data bytes and no implied zero), which random bytes rarely produce.
+@example(b"\x01" * 253)
+@example(b"\x01" * 254)
+@example(b"\x01" * 255 + b"\x00" + b"\x02" * 254)
+@example(bytes(range(1, 256)) * 2)
 def test_cobs_matches_the_cobs_package(data: bytes | list[int]) -> None:
     data = bytes(data)
     dst = np.zeros(len(data) + len(data) // 254 + 1, dtype=np.uint8)
@@ -403,17 +409,23 @@ for m in v["messages"]:
         assert list(adc[:k]) == m["fields"]["adc_counts"]
         assert f[codec.SAMPLE_COUNTER] == m["fields"]["counter"]
 for s in v["streams"]:
-    for piece in bytes.fromhex(s["wire"]).split(b"\x00"):
+    good = []
+    for piece in bytes.fromhex(s["wire"]).split(b"\x00")[:-1]:
+        if not piece:
+            continue  # an empty frame: ignored, not counted (PROTOCOL.md §2.4)
         try:
-            codec.decode_wire(piece)
+            good.append(codec.decode_wire(piece).hex())
         except codec.FrameError:
             pass
+    assert good == s["payloads"], s["name"]  # the vectors' good frames, and only those
 junk = bytes([0xFF]) + bytes(range(1, 255)) + bytes([0xC8]) + bytes(range(1, 60))
+refused = 0
 for cut in range(1, len(junk)):
     try:
         codec.decode_wire(junk[:cut])
     except codec.FrameError:
-        pass
+        refused += 1
+assert refused == len(junk) - 1  # no cut of it is a frame (its CRC never matches)
 print("ok", codec.crc16.__class__.__name__)
 """
     env = dict(os.environ, NUMBA_DISABLE_JIT="1")

@@ -79,9 +79,10 @@ def dac_pA(counts: int | np.ndarray) -> float | np.ndarray:
 
 
 def adc_counts(v_mV: float) -> int:
-    """Membrane mV -> the ADC count: the amplifier's mV/V, then the converter's nearest count."""
+    """Membrane mV -> the ADC count: the amplifier's mV/V, then PROTOCOL.md §6's rounding,
+    floor(x + 1/2) (half up), clipped."""
     volts = v_mV / VM_MV_PER_V
-    return int(min(max(round((volts - V_MIN) / (V_MAX - V_MIN) * TOP), 0), TOP))
+    return int(min(max(math.floor((volts - V_MIN) / (V_MAX - V_MIN) * TOP + 0.5), 0), TOP))
 
 
 # The DAC count for 0 pA: 0 V is count 32767.5, rounded to 32768 (PROTOCOL.md §6, worked numbers).

@@ -1,0 +1,575 @@
+"""Deliberate bugs in the safety paths, and the tests that must catch each one.
+
+    python3 tasks.py mutants                 # all of them (45 min on 2 shared cores)
+    .venv/bin/python tests/mutants.py --list # what would be applied, and whether it still can be
+    .venv/bin/python tests/mutants.py --only teardown,crc
+
+Each mutant is one small edit located by an exact piece of code (never a line number),
+so the list survives restructuring: a piece that no longer occurs exactly once is
+reported as "pattern not found" (or "pattern ambiguous"), never skipped. One at a time,
+in a temporary copy of the repository, the edit is applied and only the tests named for
+it run, compiled, with a fresh numba cache (the cache does not notice edits in other
+modules). A mutant is *caught* when a test fails; it *survived* when they all pass.
+Before the mutants, the same tests run once on the unchanged copy: they must pass.
+
+Standard library only (``tasks.py`` imports nothing else); run it with the project's
+environment, which has pytest. Tests marked ``reference`` (brian2) run in
+``.venv-reference`` (``--reference-python`` to point elsewhere). Not part of CI: too slow.
+
+Public names: ``Mutant``, ``MUTANTS``, ``main``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+_TIMEOUT_S = 1800  # one mutant's tests; a hang counts as "timeout", not as caught
+
+
+@dataclass(frozen=True)
+class Mutant:
+    name: str  # short key (--only)
+    what: str  # the bug, in words
+    path: str  # file, relative to the repository root
+    find: str  # exact code that must occur exactly once
+    replace: str
+    tests: tuple[str, ...]  # pytest node ids or files that must catch it
+    reference: bool = False  # the tests run in the brian2 reference environment
+
+
+E2E = "tests/test_loop_e2e.py"
+MUTANTS: tuple[Mutant, ...] = (
+    # ---- the output guard, the watchdog, the teardown (the cell's safety)
+    Mutant(
+        "current-limit",
+        "current limit twice as high as set",
+        "clampcore/step.py",
+        "    if abs(total) > limit:",
+        "    if abs(total) > 2.0 * limit:",
+        ("tests/test_elements.py",),
+    ),
+    Mutant(
+        "non-finite-guard",
+        "a non-finite current is passed on instead of 0 pA",
+        "clampcore/step.py",
+        "    if not math.isfinite(total):",
+        "    if False:",
+        ("tests/test_elements.py", "tests/test_hostloop.py"),
+    ),
+    Mutant(
+        "implausible-v",
+        "implausible membrane potential (|V| > 200 mV) not flagged",
+        "clampcore/step.py",
+        "abs(v_mV) > loop_p[LP_V_FAULT_MV]",
+        "abs(v_mV) > 10.0 * loop_p[LP_V_FAULT_MV]",
+        ("tests/test_elements.py",),
+    ),
+    Mutant(
+        "rig-watchdog",
+        "simulated board's watchdog three times too slow",
+        "simulated_rig/board.py",
+        "now - st[S_LAST_RX_NS] >= st[S_WATCHDOG_US] * _NS_PER_US",
+        "now - st[S_LAST_RX_NS] >= 3 * st[S_WATCHDOG_US] * _NS_PER_US",
+        ("tests/test_rig.py",),
+    ),
+    Mutant(
+        "c-watchdog",
+        "C core's watchdog twice too slow",
+        "firmware_protocol/c/ccb_core.c",
+        "(uint32_t)(now - b->last_rx_us) >= b->watchdog_us",
+        "(uint32_t)(now - b->last_rx_us) >= 2u * b->watchdog_us",
+        ("tests/test_c_core.py",),
+    ),
+    Mutant(
+        "teardown-zero",
+        "the host's 0 pA command before STOP deleted",
+        "clampcore/engine.py",
+        "link.command_after(",
+        "(lambda *args, **kwargs: None)(",
+        (f"{E2E}::test_the_output_is_0_pA_by_the_hosts_command_before_stop",),
+    ),
+    Mutant(
+        "teardown-stale",
+        "the 0 pA command before STOP answers the sample already answered (rejected)",
+        "clampcore/board_link.py",
+        "        self.command_now(seq, newest, dac_counts)",
+        "        self.command_now(seq, last_counter, dac_counts)",
+        (f"{E2E}::test_the_output_is_0_pA_by_the_hosts_command_before_stop",),
+    ),
+    Mutant(
+        "zero-control",
+        "the zero-current control does nothing",
+        "clampcore/engine.py",
+        "self.shared.ctrl[CTRL_ZERO] = 1 if on else 0",
+        "self.shared.ctrl[CTRL_ZERO] = 0",
+        ("tests/test_gui.py::test_zero_current_control",),
+    ),
+    # ---- refusals before a start
+    Mutant(
+        "refuse-rate",
+        "a rate above the board's maximum is not refused",
+        "clampcore/engine.py",
+        "        if rate > hello.max_rate_hz:",
+        "        if rate > 10 * hello.max_rate_hz:",
+        ("tests/test_engine.py::test_refuses_a_rate_above_the_boards_maximum",),
+    ),
+    Mutant(
+        "refuse-calibration",
+        "a run without calibration on a real port is not refused",
+        "clampcore/engine.py",
+        "if not exp.amplifier_given and not allow_default_calibration:",
+        "if False:",
+        (f"{E2E}::test_refuses_to_start_without_calibration_on_a_real_port",),
+    ),
+    Mutant(
+        "refuse-limit",
+        "a current limit the board cannot represent is not refused",
+        "clampcore/engine.py",
+        "        if lo > -limit or hi < limit:",
+        "        if False:",
+        (f"{E2E}::test_refuses_a_limit_the_board_cannot_represent",),
+    ),
+    # ---- calibration
+    Mutant(
+        "junction-sign",
+        "liquid-junction correction added instead of subtracted on the host",
+        "clampcore/calibration.py",
+        "+ conv[C_VM_OFFSET] - conv[C_LJP]",
+        "+ conv[C_VM_OFFSET] + conv[C_LJP]",
+        ("tests/test_calibration.py",),
+    ),
+    Mutant(
+        "vm-offset-sign",
+        "membrane-potential offset subtracted instead of added on the host",
+        "clampcore/calibration.py",
+        "volts * conv[C_VM_SCALE] + conv[C_VM_OFFSET]",
+        "volts * conv[C_VM_SCALE] - conv[C_VM_OFFSET]",
+        ("tests/test_calibration.py",),
+    ),
+    Mutant(
+        "command-offset-sign",
+        "command offset added instead of subtracted on the host",
+        "clampcore/calibration.py",
+        "volts = (i_pA - conv[C_CMD_OFFSET]) / conv[C_CMD_SCALE]",
+        "volts = (i_pA + conv[C_CMD_OFFSET]) / conv[C_CMD_SCALE]",
+        ("tests/test_calibration.py",),
+    ),
+    Mutant(
+        "rounding",
+        "counts rounded half to even instead of floor(x + 1/2)",
+        "clampcore/calibration.py",
+        "c = math.floor((volts - min_V) * top / (max_V - min_V) + 0.5)",
+        "c = round((volts - min_V) * top / (max_V - min_V))",
+        ("tests/test_calibration.py",),
+    ),
+    # ---- CRC and COBS, both codecs, every C build
+    Mutant(
+        "py-crc",
+        "Python codec's CRC polynomial 0x1012 instead of 0x1021",
+        "firmware_protocol/codec.py",
+        "c = ((c << 1) ^ 0x1021) if c & 0x8000 else (c << 1)",
+        "c = ((c << 1) ^ 0x1012) if c & 0x8000 else (c << 1)",
+        ("tests/test_protocol_vectors.py",),
+    ),
+    Mutant(
+        "py-cobs-encode",
+        "Python COBS encoder closes a block at 253 bytes instead of 254",
+        "firmware_protocol/codec.py",
+        "            if code == 0xFF:",
+        "            if code == 0xFE:",
+        ("tests/test_protocol_codec.py",),
+    ),
+    Mutant(
+        "py-cobs-decode",
+        "Python COBS decoder adds a zero after a 0xFF block",
+        "firmware_protocol/codec.py",
+        "        zero = 1 if code != 0xFF else 0",
+        "        zero = 1",
+        # Not the fuzz test: inside a frame (at most 254 bytes) a 0xFF block is always the
+        # last one, so this bug only shows on longer data.
+        ("tests/test_protocol_codec.py",),
+    ),
+    Mutant(
+        "py-deframe-crc",
+        "Python deframer checks only the CRC's low byte",
+        "firmware_protocol/codec.py",
+        "if (c & 0xFF) != dbuf[fill - 2] or (c >> 8) != dbuf[fill - 1]:",
+        "if (c & 0xFF) != dbuf[fill - 2]:",
+        ("tests/test_protocol_fuzz.py",),
+    ),
+    Mutant(
+        "c-crc-table",
+        "C core's CRC table: one entry wrong (default build)",
+        "firmware_protocol/c/ccb_core.c",
+        "0x0000u, 0x1021u, 0x2042u,",
+        "0x0000u, 0x1021u, 0x2043u,",
+        ("tests/test_c_core.py",),
+    ),
+    Mutant(
+        "c-crc-bitwise",
+        "C core's bit-by-bit CRC (-DCCB_CRC_BITWISE): polynomial 0x1012",
+        "firmware_protocol/c/ccb_core.c",
+        "(uint16_t)((crc << 1) ^ 0x1021u)",
+        "(uint16_t)((crc << 1) ^ 0x1012u)",
+        ("tests/test_c_core.py",),
+    ),
+    Mutant(
+        "c-cobs-decode",
+        "C core's COBS decoder adds a zero after a 0xFF block",
+        "firmware_protocol/c/ccb_core.c",
+        "        zero = (code != 0xFFu);",
+        "        zero = 1;",
+        ("tests/test_c_core.py",),
+    ),
+    Mutant(
+        "c-small-buffer",
+        "C core's small-buffer build accepts frames longer than its buffer",
+        "firmware_protocol/c/ccb_core.c",
+        "        if (d->fill >= CCB_RX_MAX_PAYLOAD) {\n"
+        "            d->drop = CCB_FRAME_ERR_LONG;\n"
+        "            return 0;\n"
+        "        }\n"
+        "        d->buf[d->fill++] = byte;",
+        "        if (d->fill >= CCB_MAX_PAYLOAD) {\n"
+        "            d->drop = CCB_FRAME_ERR_LONG;\n"
+        "            return 0;\n"
+        "        }\n"
+        "        d->buf[d->fill++] = byte;",
+        ("tests/test_c_core.py::test_the_small_buffer_build_against_the_shared_vectors",),
+    ),
+    Mutant(
+        "c-pty-cell",
+        "C pty board's cell: injected current hyperpolarises",
+        "firmware_protocol/c/ports/pty_board.c",
+        "double v_inf_mV = r->e_mV + r->i_pA[i] / r->g_nS;",
+        "double v_inf_mV = r->e_mV - r->i_pA[i] / r->g_nS;",
+        ("tests/test_c_core_pty.py",),
+    ),
+    Mutant(
+        "rig-duplicates",
+        "simulated board applies a command older than the one in force",
+        "simulated_rig/board.py",
+        "st[S_HAVE_CMD] != 0 and not _newer(answers, st[S_CMD_ANSWERS])",
+        "st[S_HAVE_CMD] != 0 and False",
+        ("tests/test_rig.py",),
+    ),
+    # ---- elements: signs and time constants, spike detection
+    Mutant(
+        "leak-sign",
+        "leak current sign flipped",
+        "clampcore/elements/leak.py",
+        "return -p[P_G] * (v_mV - p[P_E])",
+        "return p[P_G] * (v_mV - p[P_E])",
+        ("tests/test_elements.py",),
+    ),
+    Mutant(
+        "noise-tau",
+        "OU noise correlation time 10% too long",
+        "clampcore/elements/noise.py",
+        "decay = decay_factor(s, S_DECAY, p[P_TAU], dt_ms)",
+        "decay = decay_factor(s, S_DECAY, 1.1 * p[P_TAU], dt_ms)",
+        ("tests/test_elements.py::test_ou_noise_correlation_time_to_within_two_percent",),
+    ),
+    Mutant(
+        "mg-block",
+        "Mg block constant 3.75 mM instead of 3.57",
+        "clampcore/elements/synapse.py",
+        "_MG_K_MM = 3.57",
+        "_MG_K_MM = 3.75",
+        ("tests/test_elements.py",),
+    ),
+    Mutant(
+        "refractory",
+        "threshold_reset clamp one sample longer than the refractory period",
+        "clampcore/elements/threshold_reset.py",
+        "math.ceil(p[P_REFRACTORY] / dt_ms - 1e-9)",
+        "math.ceil(p[P_REFRACTORY] / dt_ms - 1e-9) + 1",
+        ("tests/test_elements.py",),
+    ),
+    Mutant(
+        "spike-rearm",
+        "spike detector re-armed above threshold (one spike counted many times)",
+        "clampcore/step.py",
+        "    elif v_mV < threshold - loop_p[LP_SPIKE_HYSTERESIS_MV]:",
+        "    elif v_mV < threshold + loop_p[LP_SPIKE_HYSTERESIS_MV]:",
+        ("tests/test_elements.py",),
+    ),
+    Mutant(
+        "adex-jump",
+        "AdEx adaptation jump b halved",
+        "clampcore/elements/neuron.py",
+        "            w += p[P_B]",
+        "            w += 0.5 * p[P_B]",
+        ("tests/test_reference_brian2.py",),
+        reference=True,
+    ),
+    Mutant(
+        "hh-gna",
+        "Hodgkin-Huxley sodium conductance 110 instead of 120 mS/cm2",
+        "simulated_rig/cells.py",
+        '"gna_mS_per_cm2": 120.0,',
+        '"gna_mS_per_cm2": 110.0,',
+        ("tests/test_cells.py",),
+    ),
+    # ---- recorder, journal, NWB, the loop's logging, the commands
+    Mutant(
+        "recorder-changes",
+        "the recorder drops parameter changes",
+        "clampcore/recorder.py",
+        "            self.journal.event(self._describe(change))",
+        "            pass",
+        ("tests/test_engine.py::test_a_live_change_reaches_the_cell_and_the_recording",),
+    ),
+    Mutant(
+        "change-sample",
+        "a live change is logged five samples after the one it took effect at",
+        "clampcore/hostloop.py",
+        "applied[slot, APPLIED_SAMPLE] = sample",
+        "applied[slot, APPLIED_SAMPLE] = sample + 5",
+        ("tests/test_hostloop.py",),
+    ),
+    Mutant(
+        "lost-rows",
+        "the recorder does not count rows the ring overwrote",
+        "clampcore/recorder.py",
+        "self.lost_rows += written - self.layout.rows - start",
+        "self.lost_rows += 0",
+        ("tests/test_engine.py::test_recorder_counts_the_rows_the_ring_lapped",),
+    ),
+    Mutant(
+        "journal-events",
+        "the journal's flush never writes the events (parameter changes, faults)",
+        "clampcore/journal.py",
+        "        if self._events:\n            self._write_all(self._events_fd",
+        "        if False:\n            self._write_all(self._events_fd",
+        ("tests/test_journal.py",),
+    ),
+    Mutant(
+        "nwb-rate",
+        "NWB series written at half the sample rate",
+        "clampcore/nwb.py",
+        'common = {"rate": rate_hz, "starting_time": start_s}',
+        'common = {"rate": rate_hz / 2, "starting_time": start_s}',
+        ("tests/test_nwb.py",),
+    ),
+    Mutant(
+        "npz-time",
+        "simulate --out FILE.npz writes the time axis in ms",
+        "clampcore/offline.py",
+        "np.savez_compressed(path, t_s=self.t_s, **self.columns())",
+        "np.savez_compressed(path, t_s=self.t_s * 1000, **self.columns())",
+        ("tests/test_commands.py",),
+    ),
+    Mutant(
+        "extra-delay",
+        "extra_delay_samples ignored offline",
+        "clampcore/offline.py",
+        'delay = 1 + int(exp.loop["extra_delay_samples"])',
+        "delay = 1",
+        ("tests/test_engine.py::test_extra_delay_samples_put_the_command_in_force_later",),
+    ),
+    Mutant(
+        "latency",
+        "loop latency counted one sample short",
+        "clampcore/hostloop.py",
+        "latency = counter - answered_counter if answered_counter >= 0 else -1",
+        "latency = counter - answered_counter - 1 if answered_counter >= 0 else -1",
+        ("tests/test_hostloop.py",),
+    ),
+    # ---- validation, defaults, timing primitives
+    Mutant(
+        "limit-default",
+        "default current limit 5000 pA instead of 500",
+        "clampcore/schema.py",
+        '_f("max_current_pA", 500.0, "positive"),',
+        '_f("max_current_pA", 5000.0, "positive"),',
+        ("tests/test_experiment.py",),
+    ),
+    Mutant(
+        "refractory-default",
+        "default neuron refractory period 20 ms",
+        "clampcore/schema.py",
+        '        _f("refractory_ms", 2.0, "positive"),\n        # EIF/AdEx shape',
+        '        _f("refractory_ms", 20.0, "positive"),\n        # EIF/AdEx shape',
+        ("tests/test_defaults.py",),
+    ),
+    Mutant(
+        "sleep-until",
+        "sleep_until_ns wakes a second early",
+        "clampcore/sysio.py",
+        "    timespec[0] = deadline_ns // 1_000_000_000\n",
+        "    timespec[0] = deadline_ns // 1_000_000_000 - 1\n",
+        ("tests/test_realtime.py",),
+    ),
+)
+
+
+# --------------------------------------------------------------------- the runner
+def _occurrences(mutant: Mutant, root: Path) -> int:
+    path = root / mutant.path
+    return path.read_text(encoding="utf-8").count(mutant.find) if path.is_file() else 0
+
+
+def _copy_repository(dest: Path) -> None:
+    """Tracked and untracked-but-not-ignored files (git), else everything but caches."""
+    try:
+        listing = subprocess.run(
+            ["git", "ls-files", "-z", "--cached", "--others", "--exclude-standard"],
+            cwd=ROOT,
+            capture_output=True,
+            check=True,
+        ).stdout.decode()
+        files = [f for f in listing.split("\0") if f and (ROOT / f).is_file()]
+    except (OSError, subprocess.CalledProcessError):
+        files = []
+    if not files:
+        skip = shutil.ignore_patterns(
+            ".git", ".venv*", "__pycache__", ".numba-cache", ".pytest_cache", "*.so", "*.o"
+        )
+        shutil.copytree(ROOT, dest, ignore=skip, symlinks=True)
+        return
+    for f in files:
+        target = dest / f
+        target.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy2(ROOT / f, target)
+
+
+def _pytest(
+    python: str, repo: Path, tests: tuple[str, ...], reference: bool, cache: Path
+) -> tuple[str, str, float]:
+    """Run ``tests`` in ``repo``; returns (outcome, detail, seconds)."""
+    env = dict(os.environ)
+    env.update(
+        PYTHONPATH=str(repo),
+        NUMBA_CACHE_DIR=str(cache),
+        QT_QPA_PLATFORM="offscreen",
+        PYTHONDONTWRITEBYTECODE="1",
+    )
+    cmd = [python, "-m", "pytest", "-q", "-x", "-rf", "-p", "no:cacheprovider", *tests]
+    if reference:
+        env["CLAMPCORE_REQUIRE_BRIAN2"] = "1"
+        cmd += ["-p", "no:pytest-qt", "-m", "reference"]
+    start = time.monotonic()
+    try:
+        proc = subprocess.run(
+            cmd, cwd=repo, env=env, capture_output=True, text=True, timeout=_TIMEOUT_S
+        )
+    except subprocess.TimeoutExpired:
+        return "timeout", f"no result within {_TIMEOUT_S} s", time.monotonic() - start
+    seconds = time.monotonic() - start
+    out = proc.stdout + proc.stderr
+    if proc.returncode == 0:
+        return "passed", "", seconds
+    failed = re.findall(r"^(?:FAILED|ERROR) (\S+)", out, flags=re.MULTILINE)
+    if proc.returncode == 1 and failed:
+        return "failed", failed[0], seconds
+    tail = " / ".join(line for line in out.strip().splitlines()[-3:])
+    return "error", f"pytest exit {proc.returncode}: {tail[:300]}", seconds
+
+
+def _module(node: str) -> str:
+    return node.split("::")[0]
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    parser.add_argument("--list", action="store_true", help="list the mutants and exit")
+    parser.add_argument("--only", default="", help="comma-separated names (or parts of names)")
+    parser.add_argument("--skip-baseline", action="store_true", help="trust the unmutated run")
+    parser.add_argument(
+        "--reference-python",
+        default=str(ROOT / ".venv-reference" / "bin" / "python"),
+        help="python of the brian2 reference environment",
+    )
+    parser.add_argument("--table", help="also write the result table (Markdown) to this file")
+    args = parser.parse_args(argv)
+
+    chosen = [
+        m
+        for m in MUTANTS
+        if not args.only or any(part and part in m.name for part in args.only.split(","))
+    ]
+    problems = {}
+    for m in chosen:
+        n = _occurrences(m, ROOT)
+        if n != 1:
+            problems[m.name] = "pattern not found" if n == 0 else f"pattern ambiguous ({n}x)"
+    if args.list:
+        for m in chosen:
+            print(f"{m.name:<20} {problems.get(m.name, 'ok'):<20} {m.path}: {m.what}")
+        return 1 if problems else 0
+
+    rows: list[tuple[Mutant, str, str]] = []
+    with tempfile.TemporaryDirectory(prefix="clampcore-mutants-") as tmp:
+        repo = Path(tmp) / "repo"
+        _copy_repository(repo)
+
+        def python_for(m: Mutant) -> str:
+            return args.reference_python if m.reference else sys.executable
+
+        if not args.skip_baseline:
+            for reference in (False, True):
+                group = [m for m in chosen if m.reference == reference and m.name not in problems]
+                tests = tuple(dict.fromkeys(t for m in group for t in m.tests))
+                if not tests:
+                    continue
+                python = args.reference_python if reference else sys.executable
+                print(f"baseline: {len(tests)} test selections, unmutated ...", flush=True)
+                cache = Path(tmp) / f"cache-baseline-{reference}"
+                outcome, detail, secs = _pytest(python, repo, tests, reference, cache)
+                if outcome != "passed":
+                    print(f"the unmutated tests do not pass ({outcome}: {detail}); stopping")
+                    return 2
+                print(f"baseline passed in {secs:.0f} s", flush=True)
+
+        for k, m in enumerate(chosen, 1):
+            if m.name in problems:
+                rows.append((m, "NOT APPLIED", problems[m.name]))
+                print(f"[{k}/{len(chosen)}] {m.name}: {problems[m.name]}", flush=True)
+                continue
+            target = repo / m.path
+            original = target.read_text(encoding="utf-8")
+            target.write_text(original.replace(m.find, m.replace), encoding="utf-8")
+            try:
+                cache = Path(tmp) / f"cache-{k}"
+                outcome, detail, secs = _pytest(python_for(m), repo, m.tests, m.reference, cache)
+                shutil.rmtree(cache, ignore_errors=True)
+            finally:
+                target.write_text(original, encoding="utf-8")
+            verdict = {"failed": "caught", "passed": "SURVIVED"}.get(outcome, outcome.upper())
+            rows.append((m, verdict, detail))
+            print(f"[{k}/{len(chosen)}] {m.name}: {verdict} {detail} ({secs:.0f} s)", flush=True)
+
+    lines = ["| deliberate bug | in | caught by (first failing test) |", "|---|---|---|"]
+    for m, verdict, detail in rows:
+        by = detail.removeprefix("tests/") if verdict == "caught" else f"**{verdict}** {detail}"
+        what = m.what.replace("|", "\\|")  # a literal bar inside a Markdown table cell
+        lines.append(f"| {what} | `{m.path}` | {by.strip()} |")
+    caught = sum(1 for _, v, _ in rows if v == "caught")
+    summary = f"{caught} of {len(rows)} mutants caught, {len(rows) - caught} not"
+    killers = {_module(d) for _, v, d in rows if v == "caught"}
+    modules = sorted(p.relative_to(ROOT).as_posix() for p in (ROOT / "tests").glob("test_*.py"))
+    unkilled = [m for m in modules if m not in killers]
+    table = "\n".join(lines)
+    print("\n" + table + "\n\n" + summary)
+    if len(chosen) == len(MUTANTS):
+        print(
+            "test modules that caught no mutant: " + (", ".join(unkilled) if unkilled else "none")
+        )
+    if args.table:
+        Path(args.table).write_text(table + "\n\n" + summary + "\n", encoding="utf-8")
+    return 0 if caught == len(rows) else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())
