@@ -116,6 +116,8 @@ class RunOptions:
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
     rig_faults: dict[str, Any] = field(default_factory=dict)
+    # Extra fields for the recording's metadata (e.g. the stability guard's "stability").
+    extra_meta: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass
@@ -377,7 +379,7 @@ class Engine:
             port = self._rig.path
             source = "simulated rig"
         self.shared = SharedRun.create(self.layout)
-        meta = recording_meta(exp, source, seed=self.options.seed)
+        meta = recording_meta(exp, source, seed=self.options.seed, **self.options.extra_meta)
         self.recorder = Recorder(self.shared, self.program, journal_path, meta)
         max_samples = round(duration_s * exp.loop["rate_hz"]) if duration_s else 0
         ctx = mp.get_context("spawn")
