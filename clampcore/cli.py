@@ -8,6 +8,8 @@
     clampcore recover JOURNAL [--out FILE.nwb]  NWB from what a crashed run left
     clampcore gui [EXPERIMENT] [--port PORT]    the tuning window
     clampcore demo                              an example on the simulated rig
+    clampcore characterize --port PORT [--out DIR]   measure the cell (clampcore.characterize)
+    clampcore fit CHARACTERIZATION.json [--out FILE]  a virtual neuron like it (clampcore.cellfit)
 
 Public names: ``main``.
 """
@@ -233,7 +235,12 @@ def _parser() -> argparse.ArgumentParser:
 
 
 # Commands that live in their own modules; each module has ``add_parser(sub, name)``.
-_EXTRA_COMMANDS: dict[str, str] = {"rig": "simulated_rig.cli", "gui": "gui.app"}
+_EXTRA_COMMANDS: dict[str, str] = {
+    "rig": "simulated_rig.cli",
+    "gui": "gui.app",
+    "characterize": "clampcore.characterize",
+    "fit": "clampcore.cellfit",
+}
 
 
 def main(argv: list[str] | None = None) -> int:
