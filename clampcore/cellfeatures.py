@@ -20,7 +20,8 @@ Every value comes with its unit, how it was measured and a fit quality
 - **Spikes**: detected as upward crossings of the loop's ``spike_threshold_mV``
   (re-armed ``spike_hysteresis_mV`` below it); peak = the maximum before re-arming;
   threshold = V where dV/dt reaches 20 mV/ms, going back from the steepest point of
-  the upstroke (within 5 ms before the peak) to where it falls below (a
+  the upstroke (within 5 ms before the peak) to where it falls below (slopes of
+  successive samples taken at their midpoints, the crossing interpolated; a
   dV/dt criterion: 10–20 V/s is customary, common practice; eFEL's default is
   10 mV/ms); height = peak − threshold; width = full width at half height;
   trough = the minimum after the peak (the reset of an imposed threshold–reset rule,
@@ -31,8 +32,9 @@ Every value comes with its unit, how it was measured and a fit quality
   step with a spike (resolution: the step increment) and, from the ramp, the current
   at its first spike; **f–I slope**: least-squares line through the steps that fired.
 - **ISI CV and adaptation**: over the step with the most spikes (at least 4): CV =
-  SD/mean of the intervals; adaptation index = mean of (ISI_{i+1} − ISI_i)/(ISI_{i+1} +
-  ISI_i) over consecutive pairs (the definition of eFEL's ``adaptation_index`` family).
+  sample SD/mean of the intervals; adaptation index = mean of (ISI_{i+1} − ISI_i)/
+  (ISI_{i+1} + ISI_i) over consecutive pairs from the second interval on (the first is
+  shaped by the onset; the definition of eFEL's ``adaptation_index2``).
   The noise segment's rate and ISI CV are reported too.
 
 Public names: ``characterise``, ``analyse_passive``, ``analyse_active``,
@@ -234,7 +236,12 @@ def spike_features(v_mV: np.ndarray, dt_ms: float, peaks: np.ndarray) -> dict[st
             continue
         onset = i + 1
         out["onset"][j] = onset
-        thr = v_mV[onset]
+        # dvdt[i] is the slope over (t_i, t_i+1], i.e. at t_i + dt/2: interpolate the time
+        # where it crosses the criterion, and V there
+        d0, d1 = dvdt[i], dvdt[onset]
+        frac = (DVDT_THRESHOLD_MV_PER_MS - d0) / (d1 - d0) if d1 > d0 else 1.0
+        t_cross = i + 0.5 + min(max(frac, 0.0), 1.0)
+        thr = float(np.interp(t_cross, np.arange(v_mV.size), v_mV))
         out["threshold_mV"][j] = thr
         out["height_mV"][j] = v_mV[p] - thr
         half = thr + 0.5 * (v_mV[p] - thr)
@@ -252,8 +259,13 @@ def _isi_stats(times_ms: np.ndarray) -> tuple[float, float]:
     isi = np.diff(times_ms)
     if isi.size < 2:
         return float("nan"), float("nan")
-    cv = float(np.std(isi) / np.mean(isi))
-    adapt = float(np.mean(np.diff(isi) / (isi[1:] + isi[:-1])))
+    cv = float(np.std(isi, ddof=1) / np.mean(isi))  # sample SD
+    later = isi[1:]  # from the second interval on: the first is shaped by the onset
+    adapt = (
+        float(np.mean(np.diff(later) / (later[1:] + later[:-1])))
+        if later.size >= 2
+        else float("nan")
+    )
     return cv, adapt
 
 
@@ -356,7 +368,7 @@ def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, A
         values["adaptation_index"] = value(
             adapt,
             "1",
-            "mean (ISI[i+1]-ISI[i])/(ISI[i+1]+ISI[i])",
+            "mean (ISI[i+1]-ISI[i])/(ISI[i+1]+ISI[i]) from the second interval on",
             step_pA=float(amps_a[best]),
             first_isi_ms=float(isi[0]),
             last_isi_ms=float(isi[-1]),

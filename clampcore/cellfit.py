@@ -41,13 +41,13 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from scipy import optimize
 
 # A single exponential describes the step response when its fits reach this mean R².
 SINGLE_EXPONENTIAL_R2 = 0.9
 # AdEx v_peak when the cell's spikes have no measurable peak (imposed spikes): 0 mV, as in
 # Naud, Marcille, Clopath & Gerstner 2008 (Biol Cybern 99:335).
 DEFAULT_V_PEAK_MV = 0.0
+_INVALID_COST = 1e6  # a candidate the neuron element would refuse (V_T outside reset..peak)
 _ADEX_MAX_EVALS = 400  # Nelder–Mead evaluations: enough to settle 5 parameters here
 
 
@@ -126,6 +126,8 @@ def fit_lif(values: dict[str, Any], rate_hz: float) -> dict[str, Any]:
     p = passive_parameters(values)
     p["threshold_mV"] = _v(values, "spike_threshold")
     p["reset_mV"] = min(_v(values, "spike_trough"), p["threshold_mV"] - 0.5)
+    from scipy import optimize
+
     amps, rates, step_ms = _fi_data(values)
     fired = rates > 0
     dt_ms = 1000.0 / rate_hz
@@ -156,6 +158,8 @@ def fit_lif(values: dict[str, Any], rate_hz: float) -> dict[str, Any]:
 
 def fit_adex(values: dict[str, Any], rate_hz: float, lif: dict[str, Any]) -> dict[str, Any]:
     """The AdEx neuron element fitted to the f–I curve and the adaptation."""
+    from scipy import optimize
+
     amps, rates, step_ms = _fi_data(values)
     base = dict(lif["neuron"])
     base["model"] = "adex"
@@ -181,8 +185,8 @@ def fit_adex(values: dict[str, Any], rate_hz: float, lif: dict[str, Any]) -> dic
 
     def evaluate(x: np.ndarray) -> tuple[float, dict[str, float]]:
         neuron = neuron_of(x)
-        if not neuron["v_peak_mV"] > neuron["threshold_mV"]:
-            return 1e6, {}
+        if not neuron["v_peak_mV"] > neuron["threshold_mV"] > neuron["reset_mV"]:
+            return _INVALID_COST, {}
         counts, times = simulate_fi(neuron, sim_amps, step_ms, rate_hz)
         model_rates = counts[: amps.size] / (step_ms / 1000.0)
         cost = float(np.mean(((model_rates - rates) / scale_hz) ** 2))
@@ -251,6 +255,9 @@ def neuron_toml(fits: dict[str, Any], name: str, source: str) -> str:
 
 
 def _command(args: argparse.Namespace) -> int:
+    from clampcore.characterize import require_analysis
+
+    require_analysis("fit")
     path = Path(args.characterization)
     if not path.is_file():
         raise ValueError(

@@ -16,7 +16,7 @@ unit, method and fit quality, and which recordings it came from) and the one-pag
 report ``characterization.png`` / ``.pdf``. The experiment's own elements (a
 virtual leak, a threshold_reset...) stay in force; the stability guard applies.
 
-Public names: ``characterize``, ``add_parser``, ``DEFAULT_EXPERIMENT``.
+Public names: ``characterize``, ``add_parser``, ``require_analysis``, ``DEFAULT_EXPERIMENT``.
 """
 
 from __future__ import annotations
@@ -29,7 +29,6 @@ from pathlib import Path
 from typing import Any
 
 from clampcore import stability
-from clampcore.cellfeatures import characterise
 from clampcore.experiment import load_experiment
 from clampcore.protocols import active_protocol, passive_protocol, run_protocol
 
@@ -53,6 +52,9 @@ def characterize(
 
     Returns the JSON document (``values``, ``recordings``, ``protocol_s``, ``analysis_s``).
     """
+    require_analysis("characterize")
+    from clampcore.cellfeatures import characterise
+
     exp = load_experiment(experiment)
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -101,6 +103,17 @@ def characterize(
         doc["report"] = [str(png), str(pdf)]
         (out_dir / JSON_NAME).write_text(json.dumps(doc, indent=1), encoding="utf-8")
     return doc
+
+
+def require_analysis(command: str) -> None:
+    """A one-line error when the analysis extra (scipy, matplotlib) is not installed."""
+    import importlib.util
+
+    missing = [m for m in ("scipy", "matplotlib") if importlib.util.find_spec(m) is None]
+    if missing:
+        raise RuntimeError(
+            f"clampcore {command} needs {' and '.join(missing)}: pip install 'clampcore[analysis]'"
+        )
 
 
 def _report(result: dict, run_p: Any, run_a: Any, out_dir: Path, doc: dict) -> tuple[Path, Path]:
