@@ -3,9 +3,10 @@
 Every value comes with its unit, how it was measured and a fit quality
 (``value(...)`` entries of the result's ``values`` dict). Methods:
 
-- **Resting potential**: mean V over the 100 ms before every passive step (SD as quality).
+- **Resting potential**: mean V over the 100 ms before the first passive step (SD and
+  the drift to the protocol's end as quality).
 - **Input resistance**: slope of the steady-state V–I relation of the hyperpolarising
-  steps (steady state: mean over the last third of each step; least squares,
+  steps (steady state: mean over the last third of each step, from rest; least squares,
   ``scipy.stats.linregress``; R² and the slope's standard error as quality).
 - **Membrane time constant**: ``V(t) = A + B·exp(−t/τ)`` fitted to each step's onset
   (``scipy.optimize.curve_fit``) over the whole step; mean over steps (R² of the
@@ -38,7 +39,7 @@ Every value comes with its unit, how it was measured and a fit quality
   The noise segment's rate and ISI CV are reported too.
 
 Public names: ``characterise``, ``analyse_passive``, ``analyse_active``,
-``detect_spikes``, ``spike_features``, ``value``, ``DVDT_THRESHOLD_MV_PER_MS``.
+``detect_spikes``, ``spike_features``, ``isi_stats``, ``value``, ``DVDT_THRESHOLD_MV_PER_MS``.
 """
 
 from __future__ import annotations
@@ -89,15 +90,20 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     v = run.v_mV
     steps = run.protocol.of_kind("step")
     n_base = round(BASELINE_MS / dt)
-    amps, dv_ss, bases, taus, r2s, fits = [], [], [], [], [], []
+    amps, dv_ss, taus, r2s, fits = [], [], [], [], []
     onsets = []
+    # Rest: before the first step. Later steps are measured from it too: the gap between
+    # steps need not be long enough for a slow membrane to settle (200 ms: 4 tau at 50 ms).
+    first = run.index(steps[0].start_ms)
+    rest = float(np.mean(v[first - n_base : first]))
+    rest_sd = float(np.std(v[first - n_base : first]))
+    drift = float(np.mean(v[-n_base:])) - rest  # the protocol's end, long after its last step
     for seg in steps:
         on, off = run.index(seg.start_ms), run.index(seg.end_ms)
-        base = float(np.mean(v[on - n_base : on]))
+        base = float(np.mean(v[max(0, on - 10) : on + 1]))  # V as the step begins
         ss = float(np.mean(v[off - (off - on) // 3 : off]))
-        amps.append(seg.amplitude_pA)
-        bases.append(base)
-        dv_ss.append(ss - base)
+        amps.append(seg.delta_pA)
+        dv_ss.append(ss - rest)
         t = np.arange(off - on) * dt  # sample on is the last one before the step acts
         y = v[on:off]
         guess_tau = max(dt, float(t[np.argmax(np.abs(y - y[0]) >= 0.63 * abs(ss - base))]))
@@ -128,7 +134,7 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     if pulses:
         onsets = [v[run.index(p.start_ms) : run.index(p.end_ms) + 1] for p in pulses]
         onsets = [o - o[0] for o in onsets]
-        amps_on = [p.amplitude_pA for p in pulses]
+        amps_on = [p.delta_pA for p in pulses]
     else:
         amps_on = amps
     n_on = max(MIN_ONSET_SAMPLES, round(max(ONSET_MS, ONSET_TAU_SHARE * tau) / dt))
@@ -138,20 +144,13 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     coef, cov = np.polyfit(t_on, mean_resp, 2, cov="unscaled" if n_on < 3 else True)
     c_onset_pF = 1.0 / coef[1]  # (mV/ms)/pA -> pF
     slope_rel_se = float(np.sqrt(cov[1, 1]) / abs(coef[1])) if n_on >= 3 else float("nan")
-    rest = float(np.mean(bases))
     values = {
         "resting_potential": value(
             rest,
             "mV",
-            f"mean V over {BASELINE_MS:g} ms before each passive step",
-            sd_mV=float(
-                np.std(
-                    [
-                        np.std(v[run.index(s.start_ms) - n_base : run.index(s.start_ms)])
-                        for s in steps
-                    ]
-                )
-            ),
+            f"mean V over the {BASELINE_MS:g} ms before the first passive step",
+            sd_mV=rest_sd,
+            drift_mV=drift,
         ),
         "input_resistance": value(
             r_MOhm,
@@ -189,7 +188,7 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
         "dv_mV": dv_a,
         "intercept_mV": reg.intercept,
         "fits": fits,
-        "steps": [(s.start_ms, s.end_ms, s.amplitude_pA) for s in steps],
+        "steps": [(s.start_ms, s.end_ms, s.delta_pA) for s in steps],
     }
     return {"values": values, "figure": figure}
 
@@ -255,7 +254,8 @@ def spike_features(v_mV: np.ndarray, dt_ms: float, peaks: np.ndarray) -> dict[st
     return out
 
 
-def _isi_stats(times_ms: np.ndarray) -> tuple[float, float]:
+def isi_stats(times_ms: np.ndarray) -> tuple[float, float]:
+    """(CV, adaptation index) of the intervals between ``times_ms`` (see the docstring)."""
     isi = np.diff(times_ms)
     if isi.size < 2:
         return float("nan"), float("nan")
@@ -280,7 +280,7 @@ def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, A
     for seg in steps:
         on, off = run.index(seg.start_ms), run.index(seg.end_ms)
         inside = (peaks >= on) & (peaks < off)
-        amps.append(seg.amplitude_pA)
+        amps.append(seg.delta_pA)
         counts.append(int(inside.sum()))
         rates.append(inside.sum() / (seg.duration_ms / 1000.0))
         spike_sets.append(np.flatnonzero(inside))
@@ -327,7 +327,7 @@ def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, A
             i_first,
             "pA",
             f"ramp current at its first spike ({seg.duration_ms:g} ms ramp)",
-            ramp_slope_pA_per_s=seg.amplitude_pA / seg.duration_ms * 1000.0,
+            ramp_slope_pA_per_s=seg.delta_pA / seg.duration_ms * 1000.0,
         )
     spikes_ok = ~np.isnan(feats["height_mV"])
     n_sp = int(peaks.size)
@@ -360,7 +360,7 @@ def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, A
     best = int(np.argmax(counts_a)) if counts_a.size else 0
     train_times_ms = peaks[spike_sets[best]] * dt if counts_a.size else np.zeros(0)
     if train_times_ms.size >= 4:
-        cv, adapt = _isi_stats(train_times_ms)
+        cv, adapt = isi_stats(train_times_ms)
         isi = np.diff(train_times_ms)
         values["isi_cv"] = value(
             cv, "1", f"SD/mean of the intervals at {amps_a[best]:g} pA", n_intervals=int(isi.size)
@@ -385,11 +385,11 @@ def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, A
         seg = noise[0]
         on, off = run.index(seg.start_ms), run.index(seg.end_ms)
         in_noise = peaks[(peaks >= on) & (peaks < off)] * dt
-        cv, _ = _isi_stats(in_noise) if in_noise.size >= 3 else (float("nan"), 0.0)
+        cv, _ = isi_stats(in_noise) if in_noise.size >= 3 else (float("nan"), 0.0)
         values["noise_rate"] = value(
             in_noise.size / (seg.duration_ms / 1000.0),
             "Hz",
-            f"spikes during the noise current (mean {seg.amplitude_pA:g} pA, SD {seg.sd_pA:g} pA)",
+            f"spikes during the noise current (mean {seg.delta_pA:g} pA, SD {seg.sd_pA:g} pA)",
             n_spikes=int(in_noise.size),
         )
         values["noise_isi_cv"] = value(cv, "1", "SD/mean of the intervals during the noise current")
@@ -398,7 +398,7 @@ def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, A
         "rates_hz": rates_a,
         "peaks": peaks,
         "features": feats,
-        "steps": [(s.start_ms, s.end_ms, s.amplitude_pA) for s in steps],
+        "steps": [(s.start_ms, s.end_ms, s.delta_pA) for s in steps],
         "train_step": best,
         "train_times_ms": train_times_ms,
     }

@@ -30,7 +30,7 @@ from typing import Any
 
 from clampcore import stability
 from clampcore.experiment import load_experiment
-from clampcore.protocols import active_protocol, passive_protocol, run_protocol
+from clampcore.protocols import active_protocol, dac_quantiser, passive_protocol, run_protocol
 
 DEFAULT_EXPERIMENT = Path(__file__).resolve().parent.parent / "examples" / "hh_cell.toml"
 JSON_NAME = "characterization.json"
@@ -69,7 +69,8 @@ def characterize(
         _, g_nS = stability.cell_conductance(exp.cell, exp.dt_ms)
         r_estimate_MOhm = 1000.0 / g_nS
     where = "offline" if port is None else f"port {port}"
-    passive = passive_protocol(r_estimate_MOhm, limit)
+    dac = dac_quantiser(exp)
+    passive = passive_protocol(r_estimate_MOhm, limit, dac=dac)
     log(f"passive protocol: steps and pulses, {passive.duration_ms / 1000:g} s ({where})")
     run_p = run_protocol(exp, passive, port, out_dir / "passive.nwb", seed, rig_clock, quantise)
     t0 = time.perf_counter()
@@ -78,7 +79,7 @@ def characterize(
     r_measured = first["values"]["input_resistance"]["value"]
     if r_measured is None or not r_measured > 0 or not math.isfinite(r_measured):
         raise RuntimeError(f"input resistance could not be measured ({r_measured!r} MOhm)")
-    active = active_protocol(r_measured, limit, seed=seed)
+    active = active_protocol(r_measured, limit, seed=seed, dac=dac)
     log(f"active protocol: steps, ramp, noise, {active.duration_ms / 1000:g} s ({where})")
     run_a = run_protocol(exp, active, port, out_dir / "active.nwb", seed, rig_clock, quantise)
     t0 = time.perf_counter()

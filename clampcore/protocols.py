@@ -3,7 +3,7 @@
 Two protocols, each one run (one NWB recording):
 
 - ``passive``: a baseline, then a family of hyperpolarising steps (300 ms on, 200 ms
-  off), sized so the largest one moves V by about −3 mV from an estimate of the
+  off), from 40% to 100% of a step that moves V by about −4 mV according to an estimate of the
   input resistance; small enough to keep a cell near rest, where it is close to
   linear, and out of anode-break spikes (the Hodgkin–Huxley model cell fires a rebound
   spike after 300 ms at −5 mV: measured here), large enough to stand above the noise;
@@ -21,12 +21,19 @@ Each stimulus is a ``current`` element added to the experiment's own elements
 analysis reads back exactly what was commanded. Total protocol time with the
 default sizes: about 3.2 s + 17 s.
 
+Amplitudes are put on the DAC's grid (``dac_quantiser``: the simulated rig's 16-bit
+converters; a hardware board with other converters rounds them again, by at most half
+its step) and each segment knows the board's own 0 pA, so the analysis uses the
+current change the cell really received: at 400 pA/V a DAC step is 0.12 pA, 10% of
+the smallest passive step of a 500 MΩ cell.
+
 A protocol runs on a port through ``clampcore.engine.Engine`` (``"sim"``: the
 simulated rig) or, with ``port=None``, offline through ``clampcore.simulate``
 against the experiment's model cell.
 
 Public names: ``Segment``, ``Protocol``, ``ProtocolRun``, ``passive_protocol``,
-``active_protocol``, ``protocol_experiment``, ``run_protocol``, ``ELEMENT_PREFIX``.
+``active_protocol``, ``protocol_experiment``, ``run_protocol``, ``dac_quantiser``,
+``ELEMENT_PREFIX``.
 """
 
 from __future__ import annotations
@@ -38,11 +45,21 @@ from typing import Any
 
 import numpy as np
 
+from clampcore.calibration import (
+    DEFAULT_BOARD_ADC,
+    DEFAULT_BOARD_DAC,
+    conversion_array,
+    counts_to_pA,
+    pA_to_counts,
+)
 from clampcore.experiment import Experiment, load_experiment
 
 ELEMENT_PREFIX = "protocol_"
 # Passive steps: the largest moves V by this much (see the module docstring).
-PASSIVE_TARGET_MV = -3.0
+PASSIVE_TARGET_MV = -4.0
+# The smallest passive step is this share of the largest: small steps sit close to the
+# ADC's resolution (0.03 mV of membrane at 100 mV/V, 16 bits over +-10 V).
+PASSIVE_SMALLEST_SHARE = 0.4
 # Short hyperpolarising pulses for the capacitance at the onset: 1 ms, worth -20 mV at
 # steady state (a cell with tau >= 1 ms moves at most 63% of it), every 20 ms (10 tau
 # of a fast cell: measured tau 1.5 ms for the Hodgkin-Huxley model cell at 30 pF).
@@ -67,10 +84,16 @@ class Segment:
     amplitude_pA: float
     sd_pA: float = 0.0
     seed: int = 0
+    baseline_pA: float = 0.0  # the command the board applies for 0 pA (DAC rounding)
 
     @property
     def end_ms(self) -> float:
         return self.start_ms + self.duration_ms
+
+    @property
+    def delta_pA(self) -> float:
+        """The change of current the cell receives (amplitude minus the board's zero)."""
+        return self.amplitude_pA - self.baseline_pA
 
     def element(self) -> dict[str, Any]:
         """The ``current`` element that plays this segment."""
@@ -107,6 +130,19 @@ class Protocol:
         return [s for s in self.segments if s.kind == kind]
 
 
+def _identity(i_pA: float) -> float:
+    return float(i_pA)
+
+
+def dac_quantiser(experiment: Any) -> Any:
+    """pA -> the current the board really applies (the 16-bit converters of the simulated
+    rig and the experiment's ``[amplifier]`` scaling): step amplitudes on the DAC's grid
+    make the applied steps exact, and their baseline (the board's 0 pA) known."""
+    exp = load_experiment(experiment)
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, exp.amplifier)
+    return lambda i_pA: float(counts_to_pA(conv, pA_to_counts(conv, float(i_pA))))
+
+
 def _cap(amplitudes: np.ndarray, limit_pA: float) -> np.ndarray:
     return np.clip(amplitudes, -limit_pA, limit_pA)
 
@@ -119,20 +155,22 @@ def passive_protocol(
     gap_ms: float = 200.0,
     lead_ms: float = 200.0,
     n_pulses: int = 25,
+    dac: Any = None,
 ) -> Protocol:
     """Hyperpolarising steps and short pulses from an input-resistance estimate (MΩ)."""
     if not r_estimate_MOhm > 0:
         raise ValueError(f"input resistance estimate {r_estimate_MOhm!r} MOhm: must be > 0")
     top_pA = PASSIVE_TARGET_MV / r_estimate_MOhm * 1000.0  # mV / MΩ = nA
-    amps = _cap(top_pA * np.arange(1, n_steps + 1) / n_steps, limit_pA)
+    amps = _cap(top_pA * np.linspace(PASSIVE_SMALLEST_SHARE, 1.0, n_steps), limit_pA)
+    q = dac or _identity
     segs = []
     t = lead_ms
     for i, amp in enumerate(amps):
-        segs.append(Segment(f"hyper_{i + 1}", "step", t, step_ms, round(float(amp), 3)))
+        segs.append(Segment(f"hyper_{i + 1}", "step", t, step_ms, q(amp), baseline_pA=q(0.0)))
         t += step_ms + gap_ms
-    pulse_pA = float(_cap(np.array([PULSE_TARGET_MV / r_estimate_MOhm * 1000.0]), limit_pA)[0])
+    pulse_pA = q(float(_cap(np.array([PULSE_TARGET_MV / r_estimate_MOhm * 1000.0]), limit_pA)[0]))
     for i in range(n_pulses):
-        segs.append(Segment(f"pulse_{i + 1}", "pulse", t, PULSE_MS, round(pulse_pA, 3)))
+        segs.append(Segment(f"pulse_{i + 1}", "pulse", t, PULSE_MS, pulse_pA, baseline_pA=q(0.0)))
         t += PULSE_PERIOD_MS
     return Protocol("passive", tuple(segs), t + gap_ms)
 
@@ -147,6 +185,7 @@ def active_protocol(
     ramp_ms: float = 4000.0,
     noise_ms: float = 4000.0,
     seed: int = 0,
+    dac: Any = None,
 ) -> Protocol:
     """Depolarising steps, a slow ramp and a seeded noise current."""
     if not r_estimate_MOhm > 0:
@@ -156,8 +195,10 @@ def active_protocol(
     inc_pA = max(1.0, math.floor(top_pA / n_steps))
     segs = []
     t = lead_ms
+    q = dac or _identity
     for i in range(n_steps):
-        segs.append(Segment(f"depol_{i + 1}", "step", t, step_ms, inc_pA * (i + 1)))
+        amp = q(inc_pA * (i + 1))
+        segs.append(Segment(f"depol_{i + 1}", "step", t, step_ms, amp, baseline_pA=q(0.0)))
         t += step_ms + gap_ms
     ramp_top = min(1.25 * inc_pA * n_steps, limit_pA)
     segs.append(Segment("ramp", "ramp", t, ramp_ms, ramp_top))

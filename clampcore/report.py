@@ -71,7 +71,7 @@ def write_report(
         trace = passive.v_mV[on : on + 4 * n_on + 1]
         ax.plot(
             np.arange(trace.size) * passive.dt_ms,
-            (trace - trace[0]) / seg.amplitude_pA,
+            (trace - trace[0]) / seg.delta_pA,
             lw=0.5,
             color="0.5",
         )
