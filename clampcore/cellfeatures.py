@@ -17,7 +17,10 @@ Every value comes with its unit, how it was measured and a fit quality
   (the least-squares response per pA) over the first 0.3 ms or 0.1·τ, whichever is
   longer (at least 3 samples, at most the pulse):
   the method for a cell whose step response is not one exponential
-  (Hodgkin–Huxley), since at the onset only the capacitor charges.
+  (Hodgkin–Huxley), since at the onset only the capacitor charges. On a port, onsets
+  during which a command came late or a sample was lost are left out (the recording's
+  latency and sample counter say which): a stall of the host turns a 1 ms pulse into
+  anything.
 - **Spikes**: detected as upward crossings of the loop's ``spike_threshold_mV``
   (re-armed ``spike_hysteresis_mV`` below it); peak = the maximum before re-arming;
   threshold = V where dV/dt reaches 20 mV/ms, going back from the steepest point of
@@ -63,7 +66,10 @@ ONSET_MS = 0.3
 # ... or a tenth of the fitted tau where that is longer (less noise; the quadratic's
 # error at 0.1 tau is below 0.2% for one exponential: the cubic term, (t/tau)^2/6).
 ONSET_TAU_SHARE = 0.1
-TROUGH_WINDOW_MS = 50.0  # where the trough after a spike is sought, at most
+TROUGH_WINDOW_MS = 50.0
+# A step's onset is fitted only if the first 10 ms came on time (each command in force at
+# the next sample, no sample lost); pulses likewise over their whole length.
+ON_TIME_MS = 10.0  # where the trough after a spike is sought, at most
 
 
 def value(v: float | None, unit: str, method: str, **quality: Any) -> dict[str, Any]:
@@ -91,7 +97,7 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     steps = run.protocol.of_kind("step")
     n_base = round(BASELINE_MS / dt)
     amps, dv_ss, taus, r2s, fits = [], [], [], [], []
-    onsets = []
+    onsets, step_onset_amps = [], []
     # Rest: before the first step. Later steps are measured from it too: the gap between
     # steps need not be long enough for a slow membrane to settle (200 ms: 4 tau at 50 ms).
     first = run.index(steps[0].start_ms)
@@ -107,6 +113,10 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
         t = np.arange(off - on) * dt  # sample on is the last one before the step acts
         y = v[on:off]
         guess_tau = max(dt, float(t[np.argmax(np.abs(y - y[0]) >= 0.63 * abs(ss - base))]))
+        if not run.on_time(on, min(off - on - 1, round(ON_TIME_MS / dt))):
+            continue  # a late command or a lost sample shapes the onset: no fit
+        onsets.append(v[on:off] - base)
+        step_onset_amps.append(seg.delta_pA)
         try:
             popt, _ = optimize.curve_fit(
                 _exp_model,
@@ -121,23 +131,32 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
         except (RuntimeError, ValueError):
             taus.append(float("nan"))
             r2s.append(float("nan"))
-        onsets.append(v[on:off] - base)
     amps_a = np.array(amps)
     dv_a = np.array(dv_ss)
     reg = stats.linregress(amps_a, dv_a)
     r_MOhm = reg.slope * 1000.0  # mV/pA = GΩ
-    tau = float(np.nanmean(taus))
+    tau = float(np.nanmean(taus)) if taus else float("nan")
     c_pF = tau / r_MOhm * 1000.0
     # onset: the pulses' (else the steps') summed response over their summed current,
     # the least-squares mean response per pA
-    pulses = run.protocol.of_kind("pulse")
+    pulses = [
+        p
+        for p in run.protocol.of_kind("pulse")
+        if run.on_time(run.index(p.start_ms), run.index(p.end_ms) - run.index(p.start_ms))
+    ]
     if pulses:
         onsets = [v[run.index(p.start_ms) : run.index(p.end_ms) + 1] for p in pulses]
         onsets = [o - o[0] for o in onsets]
         amps_on = [p.delta_pA for p in pulses]
     else:
-        amps_on = amps
-    n_on = max(MIN_ONSET_SAMPLES, round(max(ONSET_MS, ONSET_TAU_SHARE * tau) / dt))
+        amps_on = step_onset_amps
+    if not onsets:
+        raise ValueError(
+            "no step or pulse began on time (late commands or lost samples at every onset): "
+            "the loop cannot keep up; try a lower rate_hz"
+        )
+    tau_for_window = tau if math.isfinite(tau) else 0.0
+    n_on = max(MIN_ONSET_SAMPLES, round(max(ONSET_MS, ONSET_TAU_SHARE * tau_for_window) / dt))
     n_on = min(n_on, min(o.size for o in onsets) - 1)  # within the pulse
     mean_resp = np.sum([o[: n_on + 1] for o in onsets], axis=0) / float(np.sum(amps_on))
     t_on = np.arange(n_on + 1) * dt

@@ -235,14 +235,33 @@ class ProtocolRun:
     spike_threshold_mV: float
     nwb_path: Path | None = None
     experiment: Experiment | None = field(default=None, repr=False)
+    # On a port: the board's sample number of each recorded row (a sample the host never
+    # received leaves a gap) and the latency of the command in force there, in samples.
+    sample_n: np.ndarray | None = None
+    latency_samples: np.ndarray | None = None
 
     @property
     def dt_ms(self) -> float:
         return 1000.0 / self.rate_hz
 
     def index(self, t_ms: float) -> int:
-        """First sample at or after ``t_ms`` (a current element is on from there)."""
-        return math.ceil(t_ms / self.dt_ms - 1e-9)
+        """First recorded row at or after ``t_ms`` (a current element is on from there)."""
+        n = math.ceil(t_ms / self.dt_ms - 1e-9)
+        if self.sample_n is None:
+            return n
+        return int(np.searchsorted(self.sample_n, n))
+
+    def on_time(self, row: int, n_rows: int) -> bool:
+        """Whether rows ``row + 1 .. row + n_rows`` each follow the one before (no sample
+        missing) under the command of the sample before (latency 1: the timing model)."""
+        if self.sample_n is None:
+            return True
+        lo, hi = row + 1, row + n_rows + 1
+        if hi > self.v_mV.size:
+            return False
+        gaps_ok = bool(np.all(np.diff(self.sample_n[row:hi]) == 1))
+        lat = self.latency_samples
+        return gaps_ok and (lat is None or bool(np.all(lat[lo:hi] == 1)))
 
 
 def run_protocol(
@@ -265,6 +284,7 @@ def run_protocol(
         v, i_total = rec.v_mV, rec.i_pA
         stim = np.sum([rec.i_element_pA[n] for n in names], axis=0)
         nwb = rec.save(out) if out is not None else None
+        sample_n = latency = None
     else:
         from clampcore.engine import Engine, RunOptions
         from clampcore.nwb import read_nwb_summary
@@ -285,7 +305,10 @@ def run_protocol(
             )
         rec_nwb = read_nwb_summary(result.nwb_path)
         v, i_total = rec_nwb["v_mV"], rec_nwb["i_pA"]
-        stim = np.sum([rec_nwb["columns"][f"i_pA/{n}"] for n in names], axis=0)
+        cols = rec_nwb["columns"]
+        stim = np.sum([cols[f"i_pA/{n}"] for n in names], axis=0)
+        counter = np.asarray(cols["sample_counter"], dtype=np.int64)
+        sample_n, latency = counter - counter[0], cols.get("latency_samples")
         nwb = result.nwb_path
         if v.size < round(duration_s * exp.loop["rate_hz"]):
             raise RuntimeError(
@@ -301,4 +324,6 @@ def run_protocol(
         spike_threshold_mV=float(exp.loop["spike_threshold_mV"]),
         nwb_path=Path(nwb) if nwb is not None else None,
         experiment=exp,
+        sample_n=sample_n,
+        latency_samples=latency,
     )
