@@ -81,6 +81,12 @@ def value(v: float | None, unit: str, method: str, **quality: Any) -> dict[str, 
     return {"value": v, "unit": unit, "method": method, "quality": q}
 
 
+def _nan_stat(fn: Any, xs: list[float]) -> float:
+    """``fn`` over the finite values of ``xs``; NaN (without a warning) when there are none."""
+    finite = [x for x in xs if math.isfinite(x)]
+    return float(fn(finite)) if finite else float("nan")
+
+
 def _exp_model(t: np.ndarray, a: float, b: float, tau: float) -> np.ndarray:
     return a + b * np.exp(-t / tau)
 
@@ -135,7 +141,7 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     dv_a = np.array(dv_ss)
     reg = stats.linregress(amps_a, dv_a)
     r_MOhm = reg.slope * 1000.0  # mV/pA = GΩ
-    tau = float(np.nanmean(taus)) if taus else float("nan")
+    tau = _nan_stat(np.nanmean, taus)
     c_pF = tau / r_MOhm * 1000.0
     # onset: the pulses' (else the steps') summed response over their summed current,
     # the least-squares mean response per pA
@@ -183,15 +189,15 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
             tau,
             "ms",
             "single exponential fitted to each step onset (curve_fit), mean",
-            r_squared_mean=float(np.nanmean(r2s)),
-            sd_ms=float(np.nanstd(taus)),
+            r_squared_mean=_nan_stat(np.nanmean, r2s),
+            sd_ms=_nan_stat(np.nanstd, taus),
             n_fits=len(taus),
         ),
         "capacitance": value(
             c_pF,
             "pF",
             "tau / input resistance",
-            relative_sd=float(np.nanstd(taus) / tau) if tau else float("nan"),
+            relative_sd=_nan_stat(np.nanstd, taus) / tau if tau else float("nan"),
         ),
         "capacitance_onset": value(
             c_onset_pF,
