@@ -8,7 +8,8 @@ the same run, is reading both NWB recordings back (what any analysis of them cos
 at least). Prints medians; ``--update-docs`` copies the report's PNG to
 ``docs/characterization.png`` (the README's figure).
 
-    .venv/bin/python bench/bench_characterize.py [--offline] [--update-docs]
+    .venv/bin/python bench/bench_characterize.py [--offline] [--rig-clock wall|lockstep]
+                                                 [--update-docs]
 
 Public names: ``main``.
 """
@@ -46,12 +47,14 @@ def main() -> None:
 
     parser = argparse.ArgumentParser()
     parser.add_argument("--offline", action="store_true")
+    parser.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall")
     parser.add_argument("--update-docs", action="store_true")
     args = parser.parse_args()
     with tempfile.TemporaryDirectory(prefix="clampcore-bench-") as tmp:
         out = Path(tmp)
         t0 = time.perf_counter()
-        doc = characterize(DEFAULT_EXPERIMENT, None if args.offline else "sim", out, log=print)
+        port = None if args.offline else "sim"
+        doc = characterize(DEFAULT_EXPERIMENT, port, out, rig_clock=args.rig_clock, log=print)
         wall_s = time.perf_counter() - t0
         runs = {}
         for name in ("passive", "active"):
@@ -72,7 +75,8 @@ def main() -> None:
             lambda: write_report(result, runs["passive"], runs["active"], out / "again"), 3
         )
         fit = _median_s(lambda: fit_neurons(doc), 3)
-        print(f"\ncharacterisation of {DEFAULT_EXPERIMENT.name} ({doc['source']})")
+        clock = "" if args.offline else f", {args.rig_clock} clock"
+        print(f"\ncharacterisation of {DEFAULT_EXPERIMENT.name} ({doc['source']}{clock})")
         print(f"{'measurement':<44}{'median':>10}{'vs baseline':>13}")
         rows = [
             ("protocol time (both protocols)", doc["protocol_s"], None),

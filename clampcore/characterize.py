@@ -88,9 +88,7 @@ def characterize(
     doc = {
         "values": result["values"],
         "recordings": {"passive": str(run_p.nwb_path), "active": str(run_a.nwb_path)},
-        "source": "offline simulation"
-        if port is None
-        else ("simulated rig" if port == "sim" else port),
+        "source": _source(port, rig_clock),
         "experiment": str(getattr(exp, "path", None) or "(given as data)"),
         "cell_model": dict(exp.cell),
         "rate_hz": float(exp.loop["rate_hz"]),
@@ -104,6 +102,12 @@ def characterize(
         doc["report"] = [str(png), str(pdf)]
         (out_dir / JSON_NAME).write_text(json.dumps(doc, indent=1), encoding="utf-8")
     return doc
+
+
+def _source(port: str | None, rig_clock: str) -> str:
+    if port is None:
+        return "offline simulation"
+    return f"simulated rig, {rig_clock} clock" if port == "sim" else port
 
 
 def require_analysis(command: str) -> None:

@@ -68,6 +68,8 @@ def write_report(
     pulses = passive.protocol.of_kind("pulse") or passive.protocol.of_kind("step")
     for seg in pulses:
         on = passive.index(seg.start_ms)
+        if not passive.on_time(on, n_on):
+            continue  # left out of the analysis too
         trace = passive.v_mV[on : on + 4 * n_on + 1]
         ax.plot(
             np.arange(trace.size) * passive.dt_ms,
@@ -77,7 +79,9 @@ def write_report(
         )
     c_on = values["capacitance_onset"]["value"]
     ax.plot([0, n_on * passive.dt_ms], [0, n_on * passive.dt_ms / c_on], "r--", lw=1.2)
-    ax.set(title=f"pulse onsets per pA: C = {c_on:.4g} pF", xlabel="ms", ylabel="mV/pA")
+    ax.set(
+        title=f"{int(q['n_pulses'])} onsets per pA: C = {c_on:.4g} pF", xlabel="ms", ylabel="mV/pA"
+    )
 
     if active is not None:
         fa = result["figure"]["active"]
@@ -92,7 +96,7 @@ def write_report(
         for k in sorted(picks):
             start, end, amp = fa["steps"][k]
             sel = (ta >= start - 50) & (ta < end + 100)
-            ax.plot(ta[sel] - start, active.v_mV[sel], lw=0.6, label=f"{amp:g} pA")
+            ax.plot(ta[sel] - start, active.v_mV[sel], lw=0.6, label=f"{amp:.4g} pA")
         ax.legend(loc="upper right", fontsize=8)
         ax.set(title="depolarising steps", xlabel="ms from step", ylabel="mV")
 
@@ -101,7 +105,7 @@ def write_report(
         slope = values["fi_slope"]["value"]
         rheo = values["rheobase"]["value"]
         ax.set(
-            title=f"f–I: rheobase {rheo:g} pA, slope {slope:.3g} Hz/nA"
+            title=f"f–I: rheobase {rheo:.4g} pA, slope {slope:.3g} Hz/nA"
             if slope is not None and rheo is not None
             else "f–I",
             xlabel="pA",

@@ -363,7 +363,7 @@ def test_characterize_on_the_simulated_rig_equals_offline(imposed, tmp_path):
     offline simulation's (the lockstep rig and clampcore.simulate share one timing model)."""
     doc, _ = imposed
     rig = characterize(IMPOSED, "sim", tmp_path, rig_clock="lockstep", log=_quiet)
-    assert rig["source"] == "simulated rig"
+    assert rig["source"] == "simulated rig, lockstep clock"
     for name, entry in doc["values"].items():
         if entry["value"] is None:
             assert rig["values"][name]["value"] is None, name
