@@ -143,6 +143,13 @@ def dac_quantiser(experiment: Any) -> Any:
     return lambda i_pA: float(counts_to_pA(conv, pA_to_counts(conv, float(i_pA))))
 
 
+def _passive_pA(dv_mV: float, r_estimate_MOhm: float) -> float:
+    """The current that moves a passive membrane of this input resistance by ``dv_mV``."""
+    if not r_estimate_MOhm > 0:
+        raise ValueError(f"input resistance estimate {r_estimate_MOhm!r} MOhm: must be > 0")
+    return dv_mV / r_estimate_MOhm * 1000.0  # mV / MΩ = nA
+
+
 def _cap(amplitudes: np.ndarray, limit_pA: float) -> np.ndarray:
     return np.clip(amplitudes, -limit_pA, limit_pA)
 
@@ -158,9 +165,7 @@ def passive_protocol(
     dac: Any = None,
 ) -> Protocol:
     """Hyperpolarising steps and short pulses from an input-resistance estimate (MΩ)."""
-    if not r_estimate_MOhm > 0:
-        raise ValueError(f"input resistance estimate {r_estimate_MOhm!r} MOhm: must be > 0")
-    top_pA = PASSIVE_TARGET_MV / r_estimate_MOhm * 1000.0  # mV / MΩ = nA
+    top_pA = _passive_pA(PASSIVE_TARGET_MV, r_estimate_MOhm)
     amps = _cap(top_pA * np.linspace(PASSIVE_SMALLEST_SHARE, 1.0, n_steps), limit_pA)
     q = dac or _identity
     segs = []
@@ -168,7 +173,9 @@ def passive_protocol(
     for i, amp in enumerate(amps):
         segs.append(Segment(f"hyper_{i + 1}", "step", t, step_ms, q(amp), baseline_pA=q(0.0)))
         t += step_ms + gap_ms
-    pulse_pA = q(float(_cap(np.array([PULSE_TARGET_MV / r_estimate_MOhm * 1000.0]), limit_pA)[0]))
+    pulse_pA = q(
+        float(_cap(np.array([_passive_pA(PULSE_TARGET_MV, r_estimate_MOhm)]), limit_pA)[0])
+    )
     for i in range(n_pulses):
         segs.append(Segment(f"pulse_{i + 1}", "pulse", t, PULSE_MS, pulse_pA, baseline_pA=q(0.0)))
         t += PULSE_PERIOD_MS
@@ -188,9 +195,7 @@ def active_protocol(
     dac: Any = None,
 ) -> Protocol:
     """Depolarising steps, a slow ramp and a seeded noise current."""
-    if not r_estimate_MOhm > 0:
-        raise ValueError(f"input resistance estimate {r_estimate_MOhm!r} MOhm: must be > 0")
-    top_pA = min(ACTIVE_TARGET_MV / r_estimate_MOhm * 1000.0, limit_pA)
+    top_pA = min(_passive_pA(ACTIVE_TARGET_MV, r_estimate_MOhm), limit_pA)
     # equal increments, rounded to 1 pA so the family reads well
     inc_pA = max(1.0, math.floor(top_pA / n_steps))
     segs = []

@@ -275,7 +275,9 @@ def test_spike_features_match_efel(hh):
         ours = spike_features(vv, dt, peaks)
         assert peaks.size == f["spike_count"][0]
         np.testing.assert_allclose(ours["peak_mV"], f["peak_voltage"], atol=1e-6)
-        np.testing.assert_allclose(ours["trough_mV"], f["min_AHP_values"], atol=1e-6)
+        # the last trough: eFEL seeks it up to the stimulus' end, we up to 50 ms after the
+        # peak (past the step's end): compare the others
+        np.testing.assert_allclose(ours["trough_mV"][:-1], f["min_AHP_values"][:-1], atol=1e-6)
         # eFEL takes the first sample past the criterion, we interpolate: within one sample
         k = np.asarray(f["AP_begin_indices"])
         assert np.all((ours["threshold_mV"] >= vv[k - 1]) & (ours["threshold_mV"] <= vv[k + 1]))
