@@ -40,9 +40,8 @@ def main() -> None:
     """Print the benchmark's figures."""
     from clampcore.cellfeatures import characterise
     from clampcore.cellfit import fit_neurons
-    from clampcore.characterize import DEFAULT_EXPERIMENT, characterize
+    from clampcore.characterize import DEFAULT_EXPERIMENT, characterize, reanalyse
     from clampcore.nwb import read_nwb_summary
-    from clampcore.protocols import Protocol, ProtocolRun, Segment
     from clampcore.report import write_report
 
     parser = argparse.ArgumentParser()
@@ -56,24 +55,13 @@ def main() -> None:
         port = None if args.offline else "sim"
         doc = characterize(DEFAULT_EXPERIMENT, port, out, rig_clock=args.rig_clock, log=print)
         wall_s = time.perf_counter() - t0
-        runs = {}
-        for name in ("passive", "active"):
-            rec = read_nwb_summary(Path(doc["recordings"][name]))
-            segs = tuple(Segment(**s) for s in doc["protocols"][name])
-            proto = Protocol(name, segs, rec["n_samples"] * 1000.0 / rec["rate_hz"])
-            cols = rec["columns"]
-            stim = sum(cols[f"i_pA/protocol_{s.name}"] for s in segs)
-            runs[name] = ProtocolRun(
-                proto, rec["rate_hz"], rec["v_mV"], stim, rec["i_pA"], -20.0, None
-            )
+        _, passive, active = reanalyse(doc)
         baseline = _median_s(
             lambda: [read_nwb_summary(Path(p)) for p in doc["recordings"].values()]
         )
-        analysis = _median_s(lambda: characterise(runs["passive"], runs["active"]))
-        result = characterise(runs["passive"], runs["active"])
-        report = _median_s(
-            lambda: write_report(result, runs["passive"], runs["active"], out / "again"), 3
-        )
+        analysis = _median_s(lambda: characterise(passive, active))
+        result = characterise(passive, active)
+        report = _median_s(lambda: write_report(result, passive, active, out / "again"), 3)
         fit = _median_s(lambda: fit_neurons(doc), 3)
         clock = "" if args.offline else f", {args.rig_clock} clock"
         print(f"\ncharacterisation of {DEFAULT_EXPERIMENT.name} ({doc['source']}{clock})")

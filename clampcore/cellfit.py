@@ -1,8 +1,9 @@
 """``clampcore fit``: a virtual neuron that behaves like the characterised cell.
 
-    clampcore fit CHARACTERIZATION.json [--out NEURON.toml] [--name NAME]
+    clampcore fit CHARACTERIZATION.json [--out NEURON.toml] [--name NAME] [--from-recordings]
 
-From the values ``clampcore characterize`` measured (its JSON):
+From the values ``clampcore characterize`` measured (its JSON; with
+``--from-recordings``, analysed again from the NWB recordings it names):
 
 - **LIF** (``neuron`` element, ``model = "lif"``): ``C``, ``g_L = 1/R`` and
   ``E_L`` = resting potential from the passive values (``C = τ/R`` when one
@@ -269,6 +270,10 @@ def _command(args: argparse.Namespace) -> int:
         raise ValueError(f"{path}: not JSON ({exc})") from exc
     if not isinstance(doc, dict) or "values" not in doc:
         raise ValueError(f"{path}: not a characterisation (no 'values')")
+    if args.from_recordings:
+        from clampcore.characterize import reanalyse
+
+        doc["values"] = reanalyse(doc)[0]["values"]
     fits = fit_neurons(doc, adex=not args.lif_only)
     text = neuron_toml(fits, args.name, path.name)
     if args.out:
@@ -284,4 +289,9 @@ def add_parser(sub: Any, name: str) -> None:
     p.add_argument("--out", help="write the [[element]] blocks to this TOML file")
     p.add_argument("--name", default="fitted", help="element name prefix (default: fitted)")
     p.add_argument("--lif-only", action="store_true", help="skip the AdEx fit")
+    p.add_argument(
+        "--from-recordings",
+        action="store_true",
+        help="analyse the NWB recordings the JSON names again instead of reading its values",
+    )
     p.set_defaults(func=_command)

@@ -16,7 +16,8 @@ unit, method and fit quality, and which recordings it came from) and the one-pag
 report ``characterization.png`` / ``.pdf``. The experiment's own elements (a
 virtual leak, a threshold_reset...) stay in force; the stability guard applies.
 
-Public names: ``characterize``, ``add_parser``, ``require_analysis``, ``DEFAULT_EXPERIMENT``.
+Public names: ``characterize``, ``reanalyse``, ``add_parser``, ``require_analysis``,
+``DEFAULT_EXPERIMENT``.
 """
 
 from __future__ import annotations
@@ -102,6 +103,24 @@ def characterize(
         doc["report"] = [str(png), str(pdf)]
         (out_dir / JSON_NAME).write_text(json.dumps(doc, indent=1), encoding="utf-8")
     return doc
+
+
+def reanalyse(doc: dict[str, Any]) -> tuple[dict[str, Any], Any, Any]:
+    """Analyse again the NWB recordings a characterisation document names.
+
+    Returns (the analysis, the passive run, the active run); the protocols come from the
+    document, the data from the recordings.
+    """
+    require_analysis("characterize")
+    from clampcore.cellfeatures import characterise
+    from clampcore.protocols import Protocol, Segment, read_protocol_run
+
+    runs = []
+    for name in ("passive", "active"):
+        segs = tuple(Segment(**seg) for seg in doc["protocols"][name])
+        proto = Protocol(name, segs, max(seg.end_ms for seg in segs))
+        runs.append(read_protocol_run(Path(doc["recordings"][name]), proto))
+    return characterise(runs[0], runs[1]), runs[0], runs[1]
 
 
 def _source(port: str | None, rig_clock: str) -> str:

@@ -32,7 +32,8 @@ simulated rig) or, with ``port=None``, offline through ``clampcore.simulate``
 against the experiment's model cell.
 
 Public names: ``Segment``, ``Protocol``, ``ProtocolRun``, ``passive_protocol``,
-``active_protocol``, ``protocol_experiment``, ``run_protocol``, ``dac_quantiser``,
+``active_protocol``, ``protocol_experiment``, ``run_protocol``, ``read_protocol_run``,
+``dac_quantiser``,
 ``ELEMENT_PREFIX``.
 """
 
@@ -292,7 +293,6 @@ def run_protocol(
         sample_n = latency = None
     else:
         from clampcore.engine import Engine, RunOptions
-        from clampcore.nwb import read_nwb_summary
 
         if out is None:
             raise ValueError("a run on a port needs an output path for its recording")
@@ -308,18 +308,15 @@ def run_protocol(
             raise RuntimeError(
                 f"protocol {protocol.name!r} failed: {result.error or 'no recording'}"
             )
-        rec_nwb = read_nwb_summary(result.nwb_path)
-        v, i_total = rec_nwb["v_mV"], rec_nwb["i_pA"]
-        cols = rec_nwb["columns"]
-        stim = np.sum([cols[f"i_pA/{n}"] for n in names], axis=0)
-        counter = np.asarray(cols["sample_counter"], dtype=np.int64)
-        sample_n, latency = counter - counter[0], cols.get("latency_samples")
-        nwb = result.nwb_path
-        if v.size < round(duration_s * exp.loop["rate_hz"]):
+        run = read_protocol_run(result.nwb_path, protocol)
+        expected = round(duration_s * exp.loop["rate_hz"])
+        if run.sample_n is None or run.sample_n[-1] + 1 < expected:
             raise RuntimeError(
                 f"protocol {protocol.name!r} ended early ({result.exit_reason}): "
-                f"{v.size} of {round(duration_s * exp.loop['rate_hz'])} samples"
+                f"{run.v_mV.size} of {expected} samples"
             )
+        run.experiment = exp
+        return run
     return ProtocolRun(
         protocol=protocol,
         rate_hz=float(exp.loop["rate_hz"]),
@@ -331,4 +328,37 @@ def run_protocol(
         experiment=exp,
         sample_n=sample_n,
         latency_samples=latency,
+    )
+
+
+def read_protocol_run(nwb_path: Path, protocol: Protocol) -> ProtocolRun:
+    """A protocol's recording read back from its NWB file (the protocol's own currents from
+    its elements' recorded currents; the loop's settings from the stored experiment)."""
+    from clampcore.nwb import read_nwb_summary
+
+    rec = read_nwb_summary(Path(nwb_path))
+    cols = rec["columns"]
+    names = [f"i_pA/{ELEMENT_PREFIX}{s.name}" for s in protocol.segments]
+    missing = [n for n in names if n not in cols]
+    if missing:
+        raise ValueError(
+            f"{nwb_path}: not a recording of protocol {protocol.name!r} ({missing[0]})"
+        )
+    exp = load_experiment(rec["experiment_text"])
+    counter = cols.get("sample_counter")
+    sample_n = None
+    if counter is not None:
+        counter = np.asarray(counter, dtype=np.int64)
+        sample_n = counter - counter[0]
+    return ProtocolRun(
+        protocol=protocol,
+        rate_hz=float(rec["rate_hz"]),
+        v_mV=np.asarray(rec["v_mV"], dtype=float),
+        stimulus_pA=np.sum([cols[n] for n in names], axis=0),
+        i_total_pA=np.asarray(rec["i_pA"], dtype=float),
+        spike_threshold_mV=float(exp.loop["spike_threshold_mV"]),
+        nwb_path=Path(nwb_path),
+        experiment=exp,
+        sample_n=sample_n,
+        latency_samples=cols.get("latency_samples"),
     )

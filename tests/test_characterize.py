@@ -23,7 +23,7 @@ from scipy import optimize, stats
 import clampcore
 from clampcore.cellfeatures import analyse_passive, detect_spikes, isi_stats, spike_features
 from clampcore.cellfit import fit_neurons, neuron_toml, simulate_fi
-from clampcore.characterize import DEFAULT_EXPERIMENT, characterize
+from clampcore.characterize import DEFAULT_EXPERIMENT, characterize, reanalyse
 from clampcore.cli import main
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.protocols import dac_quantiser, passive_protocol, run_protocol
@@ -382,3 +382,23 @@ def test_cli_errors_are_one_line(tmp_path, capsys):
     assert main(["fit", str(tmp_path / "none.json")]) == 1
     err = capsys.readouterr().err.strip()
     assert err.startswith("clampcore: ") and "not found" in err and "\n" not in err
+
+
+def test_reanalysis_of_the_recordings_gives_the_same_values(imposed, capsys):
+    """The NWB recordings hold everything the analysis needs: read back, same values."""
+    doc, out = imposed
+    again = reanalyse(doc)[0]["values"]
+    for name, entry in doc["values"].items():
+        if entry["value"] is None:
+            assert again[name]["value"] is None, name
+            continue
+        np.testing.assert_allclose(again[name]["value"], entry["value"], rtol=1e-9, err_msg=name)
+    toml_path = out / "neuron.toml"
+    argv = ["fit", str(out / "characterization.json"), "--from-recordings", "--lif-only"]
+    assert main([*argv, "--out", str(toml_path)]) == 0
+    text = toml_path.read_text()
+    assert "f-I error RMS" in text and 'model = "lif"' in text
+    assert (
+        clampcore.load_experiment("[loop]\nrate_hz = 10000\n" + text).elements[0]["kind"]
+        == "neuron"
+    )
