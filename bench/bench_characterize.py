@@ -63,8 +63,7 @@ def main() -> None:
         result = characterise(passive, active)
         report = _median_s(lambda: write_report(result, passive, active, out / "again"), 3)
         fit = _median_s(lambda: fit_neurons(doc), 3)
-        clock = "" if args.offline else f", {args.rig_clock} clock"
-        print(f"\ncharacterisation of {DEFAULT_EXPERIMENT.name} ({doc['source']}{clock})")
+        print(f"\ncharacterisation of {DEFAULT_EXPERIMENT.name} ({doc['source']})")
         print(f"{'measurement':<44}{'median':>10}{'vs baseline':>13}")
         rows = [
             ("protocol time (both protocols)", doc["protocol_s"], None),
