@@ -59,11 +59,7 @@ def characterize(
     exp = load_experiment(experiment)
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    delay = 1 + int(exp.loop["extra_delay_samples"]) if port is None else None
-    if delay is None:
-        delay = (
-            stability.DEFAULT_DELAY_SAMPLES if port == "sim" else stability.HARDWARE_DELAY_SAMPLES
-        )
+    delay = stability.default_delay_samples(exp, port)
     stability.guard(stability.assess(exp, delay), False, "a stable experiment")
     limit = float(exp.loop["max_current_pA"])
     if r_estimate_MOhm is None:

@@ -6,6 +6,7 @@
     clampcore rig [EXPERIMENT] [--rate HZ] [--clock wall|lockstep] [--log FILE]
     clampcore ports                             serial ports with their USB identity
     clampcore recover JOURNAL [--out FILE.nwb]  NWB from what a crashed run left
+    clampcore show RUN.nwb [--from S --to S] [--out FIG.png]   summary and figure
     clampcore gui [EXPERIMENT] [--port PORT]    the tuning window
     clampcore demo                              an example on the simulated rig
     clampcore characterize --port PORT [--out DIR]   measure the cell (clampcore.characterize)
@@ -76,6 +77,7 @@ def _run(args: argparse.Namespace) -> int:
         realtime_priority=args.realtime,
         rig_clock=args.rig_clock,
         rig_log=Path(args.rig_log) if args.rig_log else None,
+        keep_journal=args.keep_journal,
         extra_meta={"stability": report.as_meta()},
     )
     result = run_with_status(Engine(args.experiment, args.port, options), args.duration, args.out)
@@ -122,6 +124,8 @@ def run_with_status(engine: Any, duration_s: float | None, out: str | None) -> A
         print(scheduling_text(result.scheduling))
     if result.nwb_path:
         print(f"recording: {result.nwb_path}")
+    if result.journal_path and result.journal_path.exists():
+        print(f"journal kept: {result.journal_path}")
     return result
 
 
@@ -150,19 +154,28 @@ def _ports(args: argparse.Namespace) -> int:
 
 
 def _recover(args: argparse.Namespace) -> int:
-    from clampcore.nwb import journal_to_nwb
+    from clampcore.nwb import convert_journal
 
     journal = Path(args.journal)
     out = Path(args.out) if args.out else journal.with_suffix(".nwb")
-    journal_to_nwb(journal, out, overwrite=True)
-    print(f"wrote {out}")
+    _, removed = convert_journal(journal, out, keep_journal=args.keep_journal)
+    print(f"wrote {out}" + ("; journal checked against it and removed" if removed else ""))
     return 0
+
+
+def _show(args: argparse.Namespace) -> int:
+    from clampcore.show import show
+
+    return show(Path(args.recording), args.from_s, args.to_s, args.out)
 
 
 def _demo(args: argparse.Namespace) -> int:
     from clampcore.demo import run_demo
 
     return run_demo(Path(args.out_dir), args.duration)
+
+
+_KEEP_JOURNAL_HELP = "keep the journal after the NWB file was written and checked"
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -189,7 +202,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("experiment")
     p.add_argument("--port", required=True, help="device path, pyserial URL, or 'sim'")
     p.add_argument("--duration", type=float, default=None, help="seconds (default: until Ctrl-C)")
-    p.add_argument("--out", help="recording path (.nwb; a .journal folder is kept beside it)")
+    p.add_argument("--out", help="recording path (.nwb; its journal goes once the file is checked)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--watchdog-ms", type=float, default=20.0, help="board watchdog (default 20)")
     p.add_argument("--spin-us", type=float, default=30.0, help="spin before sleeping (µs)")
@@ -209,6 +222,7 @@ def _parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
     p.add_argument("--rig-log", help="for 'sim': the rig's ground-truth log")
+    p.add_argument("--keep-journal", action="store_true", help=_KEEP_JOURNAL_HELP)
     stability.add_options(p)
     p.set_defaults(func=_run)
 
@@ -218,7 +232,15 @@ def _parser() -> argparse.ArgumentParser:
     p = sub.add_parser("recover", help="convert what a crashed run left to NWB")
     p.add_argument("journal")
     p.add_argument("--out")
+    p.add_argument("--keep-journal", action="store_true", help=_KEEP_JOURNAL_HELP)
     p.set_defaults(func=_recover)
+
+    p = sub.add_parser("show", help="summarise a recording and plot it (or a slice of it)")
+    p.add_argument("recording", help="an NWB file written by clampcore")
+    p.add_argument("--from", dest="from_s", type=float, default=None, help="start, s")
+    p.add_argument("--to", dest="to_s", type=float, default=None, help="end, s")
+    p.add_argument("--out", help="figure path (.png; default: beside the recording)")
+    p.set_defaults(func=_show)
 
     p = sub.add_parser("demo", help="run an example on the simulated rig and plot it")
     p.add_argument("--out-dir", default="demo-output")

@@ -23,7 +23,7 @@ import numpy as np
 
 from clampcore.experiment import Experiment
 from clampcore.journal import Journal, JournalData, read_journal
-from clampcore.nwb import journal_to_nwb, write_nwb
+from clampcore.nwb import convert_journal, write_nwb
 from clampcore.program import Program
 from clampcore.shared import MAIL_TO_LOOP, RingLayout, SharedRun
 
@@ -145,10 +145,15 @@ class Recorder:
         }
 
     def stop(
-        self, final_meta: dict[str, Any] | None = None, nwb_path: Path | None = None
+        self,
+        final_meta: dict[str, Any] | None = None,
+        nwb_path: Path | None = None,
+        keep_journal: bool = False,
     ) -> Path | None:
         """Drain the rest, close the journal, convert it to NWB; returns the NWB path.
 
+        The journal is removed once the NWB file has been read back and checked against
+        it, unless ``keep_journal``; a failed check raises ``NwbError`` and keeps both.
         A run that recorded no sample (it never started) leaves no files: returns None.
         """
         self._stop.set()
@@ -165,7 +170,8 @@ class Recorder:
             shutil.rmtree(self.path, ignore_errors=True)
             return None
         out = nwb_path or self.path.with_suffix(".nwb")
-        return journal_to_nwb(self.path, Path(out), overwrite=True)
+        path, _ = convert_journal(self.path, Path(out), keep_journal=keep_journal)
+        return path
 
 
 def _slot_names(program: Program) -> dict[tuple[str, int, int], tuple[str, str]]:

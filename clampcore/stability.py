@@ -44,7 +44,9 @@ then ``g* = q*·g_cell/(1 − r)``.
 lockstep the command is in force at the next sample; offline ``1 +
 extra_delay_samples``), the measured latency on hardware (``clampcore run``
 prints it after each run). The board evaluating the current law from its own V
-(protocol v2): ``D`` is the board's ADC-to-DAC step, ``delay_samples`` (default 1).
+(protocol v2, ``[loop] mode = "law"``): ``D`` is the board's ADC-to-DAC step,
+``delay_samples`` (default 1: the board writes the DAC in the tick of its ADC reading,
+PROTOCOL.md §10.3), whatever the link's latency.
 
 Which conductances count: every enabled element acting on the recorded cell —
 ``leak`` with its signed ``g_nS`` (always on: it also sets the static limit),
@@ -59,7 +61,8 @@ follow, so the instantaneous conductance is the relevant one — or measured val
 Public names: ``StabilityError``, ``StabilityReport``, ``levin_may_bound``,
 ``largest_stable_q``, ``stability_bound``, ``max_stable_conductance_nS``,
 ``virtual_conductances_nS``, ``cell_conductance``, ``assess``, ``guard``,
-``simulate_difference``, ``DEFAULT_DELAY_SAMPLES``, ``WARN_FRACTION``.
+``simulate_difference``, ``default_delay_samples``, ``add_options``, ``from_args``,
+``DEFAULT_DELAY_SAMPLES``, ``HARDWARE_DELAY_SAMPLES``, ``WARN_FRACTION``.
 """
 
 from __future__ import annotations
@@ -327,14 +330,31 @@ OVERRIDE_OPTION = "--override-stability"
 HARDWARE_DELAY_SAMPLES = 2
 
 
+def default_delay_samples(experiment: Any, port: str | None) -> int:
+    """The loop delay D the guard assumes, in samples (see the module docstring).
+
+    Law mode (the board evaluates the current law): the board's own step, the current of
+    sample k driving the cell over (t_k, t_k+1] (PROTOCOL.md §10.3), whatever the link.
+    Current mode: offline 1 + extra_delay_samples; the simulated rig 1; hardware
+    ``HARDWARE_DELAY_SAMPLES``.
+    """
+    exp = load_experiment(experiment)
+    if exp.loop.get("mode") == "law":
+        return DEFAULT_DELAY_SAMPLES
+    if port is None:
+        return 1 + int(exp.loop["extra_delay_samples"])
+    return DEFAULT_DELAY_SAMPLES if port == "sim" else HARDWARE_DELAY_SAMPLES
+
+
 def add_options(parser: Any, guard_option: bool = True) -> None:
     """The stability options of ``check``, ``run`` and ``simulate``."""
     parser.add_argument(
         "--delay-samples",
         type=int,
         default=None,
-        help="loop delay in samples for the stability guard (default: 1 + extra_delay_samples "
-        f"offline, 1 on the simulated rig, {HARDWARE_DELAY_SAMPLES} on hardware)",
+        help="loop delay in samples for the stability guard (default: law mode 1, the board's "
+        "own step; current mode 1 + extra_delay_samples offline, 1 on the simulated rig, "
+        f"{HARDWARE_DELAY_SAMPLES} on hardware)",
     )
     parser.add_argument(
         "--cell-capacitance-pF",
@@ -367,10 +387,7 @@ def from_args(args: Any, experiment: Any, port: str | None = None) -> StabilityR
     exp = load_experiment(experiment)
     delay = args.delay_samples
     if delay is None:
-        if port is None:
-            delay = 1 + int(exp.loop["extra_delay_samples"])
-        else:
-            delay = DEFAULT_DELAY_SAMPLES if port == "sim" else HARDWARE_DELAY_SAMPLES
+        delay = default_delay_samples(exp, port)
     if delay < 1:
         raise ValueError(f"--delay-samples {delay}: must be 1 or more")
     report = assess(exp, delay, args.cell_c_pF, args.cell_g_nS)

@@ -15,6 +15,7 @@ from clampcore.engine import Engine, RunOptions
 from clampcore.nwb import read_nwb_summary
 from clampcore.stability import (
     assess,
+    default_delay_samples,
     largest_stable_q,
     levin_may_bound,
     max_stable_conductance_nS,
@@ -175,3 +176,29 @@ def test_run_refuses_before_touching_the_board(tmp_path, capsys):
     path = _write(tmp_path, -2.0 * G_CELL_NS)
     assert main(["run", str(path), "--port", "sim", "--duration", "0.01"]) == 1
     assert "UNSTABLE (static)" in capsys.readouterr().err
+
+
+def test_default_delay_follows_where_the_current_is_computed():
+    law = _feedback_experiment(10.0)
+    law["loop"]["mode"] = "law"
+    # the board evaluates the law in the tick of its ADC reading (PROTOCOL.md §10.3)
+    assert default_delay_samples(law, "/dev/ttyACM0") == 1
+    assert default_delay_samples(_feedback_experiment(10.0), "/dev/ttyACM0") == 2
+    assert default_delay_samples(_feedback_experiment(10.0, 4), None) == 4
+    assert default_delay_samples(_feedback_experiment(10.0), "sim") == 1
+
+
+def test_bound_holds_for_the_board_evaluated_law_offline():
+    """Law mode: the board's arithmetic (float32, converter counts) with its one-step delay."""
+    g_max = max_stable_conductance_nS(C_PF, G_CELL_NS, DT_MS, 1)
+    devs = {}
+    for factor in (0.9, 1.1):
+        exp = _feedback_experiment(factor * g_max)
+        exp["loop"]["mode"] = "law"
+        rec = clampcore.simulate(exp, 0.05)
+        assert "law mode" in rec.source
+        devs[factor] = _deviation(rec.v_mV, factor * g_max)
+    # settled within a few ADC steps (0.03 mV each): the loop gain turns one step into
+    # about g x 0.03 mV = 54 pA, so the quantised clamp keeps a small limit cycle
+    assert devs[0.9][-100:].max() < 0.1
+    assert devs[1.1][-100:].max() > 10 * devs[1.1][:2].max()

@@ -22,7 +22,8 @@ event from rest has peak g_max.
 
 Sources: ``poisson`` (at most one event a sample, probability
 1 - exp(-rate dt)), ``train`` (listed times, each counted at the sample nearest
-to it), ``cell`` (the recorded cell's detected spikes, same sample) and a
+to it), ``cell`` (the recorded cell's detected spikes, ``delay_ms`` later: the same
+sample by default) and a
 virtual neuron (its spike of the previous sample).
 
 Public names: ``COLUMNS``, the ``SRC_*`` and ``KIN_*`` codes, ``synapse_events``,
@@ -59,6 +60,7 @@ P_SOURCE_ROW = 13  # row of the presynaptic neuron element
 P_RATE = 14
 P_TRAIN_START = 15  # first index of this synapse's times in the program's trains array
 P_TRAIN_COUNT = 16
+P_DELAY = 17  # cell source: synaptic delay in whole samples (from delay_ms)
 COLUMNS = {
     "g_max_nS": P_G_MAX,
     "e_mV": P_E,
