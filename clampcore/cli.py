@@ -9,6 +9,8 @@
     clampcore show RUN.nwb [--from S --to S] [--out FIG.png]   summary and figure
     clampcore gui [EXPERIMENT] [--port PORT]    the tuning window
     clampcore demo                              an example on the simulated rig
+    clampcore characterize --port PORT [--out DIR]   measure the cell (clampcore.characterize)
+    clampcore fit CHARACTERIZATION.json [--out FILE]  a virtual neuron like it (clampcore.cellfit)
 
 Public names: ``main``.
 """
@@ -21,6 +23,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
+from clampcore import stability
 from clampcore.experiment import ExperimentError, load_experiment
 from clampcore.realtime import LOOP_FIFO_PRIORITY
 
@@ -42,13 +45,18 @@ def _check(args: argparse.Namespace) -> int:
         elif el["kind"] in ("neuron", "current"):
             extra = f" {el.get('model') or el.get('waveform')}"
         print(f"  {el['kind']:<16} {el['name']}{extra}{state}")
+    report = stability.from_args(args, exp, args.port)
+    print("\n".join(report.lines()))
     return 0
 
 
 def _simulate(args: argparse.Namespace) -> int:
     from clampcore.offline import simulate
 
+    report = stability.from_args(args, args.experiment)
+    print("\n".join(report.lines()[1:]))
     rec = simulate(args.experiment, args.duration, seed=args.seed)
+    rec.extra["stability"] = report.as_meta()
     print(rec.summary_text())
     if args.out:
         path = rec.save(args.out)
@@ -59,6 +67,8 @@ def _simulate(args: argparse.Namespace) -> int:
 def _run(args: argparse.Namespace) -> int:
     from clampcore.engine import Engine, RunOptions
 
+    report = stability.from_args(args, args.experiment, args.port)
+    print("\n".join(report.lines()[1:]))
     options = RunOptions(
         seed=args.seed,
         watchdog_ms=args.watchdog_ms,
@@ -68,6 +78,7 @@ def _run(args: argparse.Namespace) -> int:
         rig_clock=args.rig_clock,
         rig_log=Path(args.rig_log) if args.rig_log else None,
         keep_journal=args.keep_journal,
+        extra_meta={"stability": report.as_meta()},
     )
     result = run_with_status(Engine(args.experiment, args.port, options), args.duration, args.out)
     return 0 if result.error is None else 1
@@ -175,6 +186,8 @@ def _parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("check", help="validate an experiment file and summarise it")
     p.add_argument("experiment")
+    p.add_argument("--port", default=None, help="the port the run will use (sets the delay)")
+    stability.add_options(p, guard_option=False)
     p.set_defaults(func=_check)
 
     p = sub.add_parser("simulate", help="run an experiment offline against its model cell")
@@ -182,6 +195,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--duration", type=float, default=2.0, help="seconds (default 2)")
     p.add_argument("--out", help="write .nwb or .npz")
     p.add_argument("--seed", type=int, default=0)
+    stability.add_options(p)
     p.set_defaults(func=_simulate)
 
     p = sub.add_parser("run", help="run an experiment on a board (or 'sim')")
@@ -209,6 +223,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
     p.add_argument("--rig-log", help="for 'sim': the rig's ground-truth log")
     p.add_argument("--keep-journal", action="store_true", help=_KEEP_JOURNAL_HELP)
+    stability.add_options(p)
     p.set_defaults(func=_run)
 
     p = sub.add_parser("ports", help="list serial ports with their USB identity")
@@ -242,7 +257,12 @@ def _parser() -> argparse.ArgumentParser:
 
 
 # Commands that live in their own modules; each module has ``add_parser(sub, name)``.
-_EXTRA_COMMANDS: dict[str, str] = {"rig": "simulated_rig.cli", "gui": "gui.app"}
+_EXTRA_COMMANDS: dict[str, str] = {
+    "rig": "simulated_rig.cli",
+    "gui": "gui.app",
+    "characterize": "clampcore.characterize",
+    "fit": "clampcore.cellfit",
+}
 
 
 def main(argv: list[str] | None = None) -> int:

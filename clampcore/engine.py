@@ -147,6 +147,8 @@ class RunOptions:
     rig_link: str | None = None  # for port "sim": a link model (clampcore.links), wall clock only
     # "current" or "law" (PROTOCOL.md §10) instead of the experiment's [loop] mode; None: as set.
     mode: str | None = None
+    # Extra fields for the recording's metadata (e.g. the stability guard's "stability").
+    extra_meta: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass
@@ -513,7 +515,7 @@ class Engine:
             port = self._rig.path
             source = "simulated rig"
         self.shared = SharedRun.create(self.layout)
-        meta = recording_meta(exp, source, seed=self.options.seed)
+        meta = recording_meta(exp, source, seed=self.options.seed, **self.options.extra_meta)
         self.recorder = Recorder(self.shared, self.program, journal_path, meta)
         max_samples = round(duration_s * exp.loop["rate_hz"]) if duration_s else 0
         ctx = mp.get_context("spawn")

@@ -49,7 +49,9 @@ def recording_meta(experiment: Experiment, source: str, **extra: Any) -> dict[st
 
 def write_recording_nwb(recording: Any, path: Path) -> Path:
     """Write an offline ``clampcore.simulate.Recording`` as NWB."""
-    meta = recording_meta(recording.experiment, recording.source, seed=recording.seed)
+    meta = recording_meta(
+        recording.experiment, recording.source, seed=recording.seed, **recording.extra
+    )
     meta["summary"] = recording.summary()
     data = JournalData(meta=meta, columns=recording.columns(), events=[], complete=True)
     write_nwb(Path(path), data, overwrite=True)

@@ -1,0 +1,364 @@
+"""Current-clamp characterisation protocols, run through the normal loop and recording path.
+
+Two protocols, each one run (one NWB recording):
+
+- ``passive``: a baseline, then a family of hyperpolarising steps (300 ms on, 200 ms
+  off), from 40% to 100% of a step that moves V by about −4 mV according to an estimate of the
+  input resistance; small enough to keep a cell near rest, where it is close to
+  linear, and out of anode-break spikes (the Hodgkin–Huxley model cell fires a rebound
+  spike after 300 ms at −5 mV: measured here), large enough to stand above the noise;
+  then 25 short hyperpolarising pulses (1 ms, every 20 ms) for the capacitance from
+  the onset slope.
+- ``active``: a family of depolarising steps (500 ms on, 300 ms off, equal increments
+  up to a top step worth about +40 mV of passive depolarisation: typical neurons fire
+  15–25 mV above rest, common practice), a slow ramp (4 s, 0 to 1.25× the top step)
+  and a seeded coloured-noise current (4 s, mean at half the top step, SD a fifth
+  of it, correlation time 5 ms), each capped at the experiment's current limit.
+
+Each stimulus is a ``current`` element added to the experiment's own elements
+(so a virtual ``threshold_reset`` or ``leak`` in the file stays in force), named
+``protocol_<segment>``; the recording stores each element's current, so the
+analysis reads back exactly what was commanded. Total protocol time with the
+default sizes: about 3.2 s + 17 s.
+
+Amplitudes are put on the DAC's grid (``dac_quantiser``: the simulated rig's 16-bit
+converters; a hardware board with other converters rounds them again, by at most half
+its step) and each segment knows the board's own 0 pA, so the analysis uses the
+current change the cell really received: at 400 pA/V a DAC step is 0.12 pA, 10% of
+the smallest passive step of a 500 MΩ cell.
+
+A protocol runs on a port through ``clampcore.engine.Engine`` (``"sim"``: the
+simulated rig) or, with ``port=None``, offline through ``clampcore.simulate``
+against the experiment's model cell.
+
+Public names: ``Segment``, ``Protocol``, ``ProtocolRun``, ``passive_protocol``,
+``active_protocol``, ``protocol_experiment``, ``run_protocol``, ``read_protocol_run``,
+``dac_quantiser``,
+``ELEMENT_PREFIX``.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from clampcore.calibration import (
+    DEFAULT_BOARD_ADC,
+    DEFAULT_BOARD_DAC,
+    conversion_array,
+    counts_to_pA,
+    pA_to_counts,
+)
+from clampcore.experiment import Experiment, load_experiment
+
+ELEMENT_PREFIX = "protocol_"
+# Passive steps: the largest moves V by this much (see the module docstring).
+PASSIVE_TARGET_MV = -4.0
+# The smallest passive step is this share of the largest: small steps sit close to the
+# ADC's resolution (0.03 mV of membrane at 100 mV/V, 16 bits over +-10 V).
+PASSIVE_SMALLEST_SHARE = 0.4
+# Short hyperpolarising pulses for the capacitance at the onset: 1 ms, worth -20 mV at
+# steady state (a cell with tau >= 1 ms moves at most 63% of it), every 20 ms (10 tau
+# of a fast cell: measured tau 1.5 ms for the Hodgkin-Huxley model cell at 30 pF).
+PULSE_TARGET_MV = -20.0
+PULSE_MS = 1.0
+PULSE_PERIOD_MS = 20.0
+# Active steps: the top step's passive depolarisation (see the module docstring).
+ACTIVE_TARGET_MV = 40.0
+# Noise correlation time: a few ms, like synaptic background (common practice).
+NOISE_TAU_MS = 5.0
+
+
+@dataclass(frozen=True)
+class Segment:
+    """One stimulus: ``kind`` step, pulse (a short step), ramp (0 to amplitude) or noise
+    (coloured, SD ``sd_pA``)."""
+
+    name: str
+    kind: str
+    start_ms: float
+    duration_ms: float
+    amplitude_pA: float
+    sd_pA: float = 0.0
+    seed: int = 0
+    baseline_pA: float = 0.0  # the command the board applies for 0 pA (DAC rounding)
+
+    @property
+    def end_ms(self) -> float:
+        return self.start_ms + self.duration_ms
+
+    @property
+    def delta_pA(self) -> float:
+        """The change of current the cell receives (amplitude minus the board's zero)."""
+        return self.amplitude_pA - self.baseline_pA
+
+    def element(self) -> dict[str, Any]:
+        """The ``current`` element that plays this segment."""
+        el: dict[str, Any] = {
+            "kind": "current",
+            "name": ELEMENT_PREFIX + self.name,
+            "start_ms": self.start_ms,
+            "duration_ms": self.duration_ms,
+        }
+        if self.kind in ("step", "pulse"):
+            el.update(waveform="step", amplitude_pA=self.amplitude_pA)
+        elif self.kind == "ramp":
+            el.update(waveform="ramp", amplitude_pA=self.amplitude_pA)
+        elif self.kind == "noise":
+            el.update(
+                waveform="coloured",
+                amplitude_pA=self.sd_pA,
+                offset_pA=self.amplitude_pA,
+                tau_ms=NOISE_TAU_MS,
+                seed=self.seed,
+            )
+        else:
+            raise ValueError(f"segment {self.name!r}: unknown kind {self.kind!r}")
+        return el
+
+
+@dataclass(frozen=True)
+class Protocol:
+    name: str
+    segments: tuple[Segment, ...]
+    duration_ms: float
+
+    def of_kind(self, kind: str) -> list[Segment]:
+        return [s for s in self.segments if s.kind == kind]
+
+
+def _identity(i_pA: float) -> float:
+    return float(i_pA)
+
+
+def dac_quantiser(experiment: Any) -> Any:
+    """pA -> the current the board really applies (the 16-bit converters of the simulated
+    rig and the experiment's ``[amplifier]`` scaling): step amplitudes on the DAC's grid
+    make the applied steps exact, and their baseline (the board's 0 pA) known."""
+    exp = load_experiment(experiment)
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, exp.amplifier)
+    return lambda i_pA: float(counts_to_pA(conv, pA_to_counts(conv, float(i_pA))))
+
+
+def _passive_pA(dv_mV: float, r_estimate_MOhm: float) -> float:
+    """The current that moves a passive membrane of this input resistance by ``dv_mV``."""
+    if not r_estimate_MOhm > 0:
+        raise ValueError(f"input resistance estimate {r_estimate_MOhm!r} MOhm: must be > 0")
+    return dv_mV / r_estimate_MOhm * 1000.0  # mV / MΩ = nA
+
+
+def _cap(amplitudes: np.ndarray, limit_pA: float) -> np.ndarray:
+    return np.clip(amplitudes, -limit_pA, limit_pA)
+
+
+def passive_protocol(
+    r_estimate_MOhm: float,
+    limit_pA: float,
+    n_steps: int = 5,
+    step_ms: float = 300.0,
+    gap_ms: float = 200.0,
+    lead_ms: float = 200.0,
+    n_pulses: int = 25,
+    dac: Any = None,
+) -> Protocol:
+    """Hyperpolarising steps and short pulses from an input-resistance estimate (MΩ)."""
+    top_pA = _passive_pA(PASSIVE_TARGET_MV, r_estimate_MOhm)
+    amps = _cap(top_pA * np.linspace(PASSIVE_SMALLEST_SHARE, 1.0, n_steps), limit_pA)
+    q = dac or _identity
+    segs = []
+    t = lead_ms
+    for i, amp in enumerate(amps):
+        segs.append(Segment(f"hyper_{i + 1}", "step", t, step_ms, q(amp), baseline_pA=q(0.0)))
+        t += step_ms + gap_ms
+    pulse_pA = q(
+        float(_cap(np.array([_passive_pA(PULSE_TARGET_MV, r_estimate_MOhm)]), limit_pA)[0])
+    )
+    for i in range(n_pulses):
+        segs.append(Segment(f"pulse_{i + 1}", "pulse", t, PULSE_MS, pulse_pA, baseline_pA=q(0.0)))
+        t += PULSE_PERIOD_MS
+    return Protocol("passive", tuple(segs), t + gap_ms)
+
+
+def active_protocol(
+    r_estimate_MOhm: float,
+    limit_pA: float,
+    n_steps: int = 10,
+    step_ms: float = 500.0,
+    gap_ms: float = 300.0,
+    lead_ms: float = 200.0,
+    ramp_ms: float = 4000.0,
+    noise_ms: float = 4000.0,
+    seed: int = 0,
+    dac: Any = None,
+) -> Protocol:
+    """Depolarising steps, a slow ramp and a seeded noise current."""
+    top_pA = min(_passive_pA(ACTIVE_TARGET_MV, r_estimate_MOhm), limit_pA)
+    # equal increments, rounded to 1 pA so the family reads well
+    inc_pA = max(1.0, math.floor(top_pA / n_steps))
+    segs = []
+    t = lead_ms
+    q = dac or _identity
+    for i in range(n_steps):
+        amp = q(inc_pA * (i + 1))
+        segs.append(Segment(f"depol_{i + 1}", "step", t, step_ms, amp, baseline_pA=q(0.0)))
+        t += step_ms + gap_ms
+    ramp_top = min(1.25 * inc_pA * n_steps, limit_pA)
+    segs.append(Segment("ramp", "ramp", t, ramp_ms, ramp_top))
+    t += ramp_ms + gap_ms
+    mean = 0.5 * inc_pA * n_steps
+    sd = min(0.2 * inc_pA * n_steps, (limit_pA - mean) / 4)  # 4 SD inside the limit
+    segs.append(Segment("noise", "noise", t, noise_ms, mean, sd_pA=sd, seed=seed))
+    t += noise_ms + gap_ms
+    return Protocol("active", tuple(segs), t)
+
+
+def protocol_experiment(base: Any, protocol: Protocol) -> Experiment:
+    """The base experiment with the protocol's current elements added."""
+    exp = load_experiment(base)
+    data = exp.to_dict()
+    taken = {el["name"] for el in data["element"]}
+    for seg in protocol.segments:
+        el = seg.element()
+        if el["name"] in taken:
+            raise ValueError(f"element {el['name']!r}: the name is reserved for the protocol")
+        data["element"].append(el)
+    return load_experiment(data)
+
+
+@dataclass
+class ProtocolRun:
+    """What a protocol recorded: V, the protocol's own current, and where it is stored."""
+
+    protocol: Protocol
+    rate_hz: float
+    v_mV: np.ndarray
+    stimulus_pA: np.ndarray
+    i_total_pA: np.ndarray
+    spike_threshold_mV: float
+    nwb_path: Path | None = None
+    experiment: Experiment | None = field(default=None, repr=False)
+    # On a port: the board's sample number of each recorded row (a sample the host never
+    # received leaves a gap) and the latency of the command in force there, in samples.
+    sample_n: np.ndarray | None = None
+    latency_samples: np.ndarray | None = None
+
+    @property
+    def dt_ms(self) -> float:
+        return 1000.0 / self.rate_hz
+
+    def index(self, t_ms: float) -> int:
+        """First recorded row at or after ``t_ms`` (a current element is on from there)."""
+        n = math.ceil(t_ms / self.dt_ms - 1e-9)
+        if self.sample_n is None:
+            return n
+        return int(np.searchsorted(self.sample_n, n))
+
+    def on_time(self, row: int, n_rows: int) -> bool:
+        """Whether rows ``row + 1 .. row + n_rows`` each follow the one before (no sample
+        missing) under the command of the sample before (latency 1: the timing model)."""
+        if self.sample_n is None:
+            return True
+        lo, hi = row + 1, row + n_rows + 1
+        if hi > self.v_mV.size:
+            return False
+        gaps_ok = bool(np.all(np.diff(self.sample_n[row:hi]) == 1))
+        lat = self.latency_samples
+        return gaps_ok and (lat is None or bool(np.all(lat[lo:hi] == 1)))
+
+
+def run_protocol(
+    base: Any,
+    protocol: Protocol,
+    port: str | None,
+    out: Path | None = None,
+    seed: int = 0,
+    rig_clock: str = "wall",
+    quantise: bool = True,
+) -> ProtocolRun:
+    """Run ``protocol`` on ``port`` (None: offline) and read back what it recorded."""
+    exp = protocol_experiment(base, protocol)
+    duration_s = protocol.duration_ms / 1000.0
+    names = [ELEMENT_PREFIX + s.name for s in protocol.segments]
+    if port is None:
+        from clampcore.offline import simulate
+
+        rec = simulate(exp, duration_s, seed=seed, quantise=quantise)
+        v, i_total = rec.v_mV, rec.i_pA
+        stim = np.sum([rec.i_element_pA[n] for n in names], axis=0)
+        nwb = rec.save(out) if out is not None else None
+        sample_n = latency = None
+    else:
+        from clampcore.engine import Engine, RunOptions
+
+        if out is None:
+            raise ValueError("a run on a port needs an output path for its recording")
+        engine = Engine(exp, port, RunOptions(seed=seed, rig_clock=rig_clock))
+        engine.start(duration_s=duration_s, out=out)
+        try:
+            while not engine.wait(0.5):
+                pass
+        except KeyboardInterrupt:
+            pass
+        result = engine.finish()
+        if result.error or result.nwb_path is None:
+            raise RuntimeError(
+                f"protocol {protocol.name!r} failed: {result.error or 'no recording'}"
+            )
+        run = read_protocol_run(result.nwb_path, protocol)
+        expected = round(duration_s * exp.loop["rate_hz"])
+        if run.sample_n is None or run.sample_n[-1] + 1 < expected:
+            raise RuntimeError(
+                f"protocol {protocol.name!r} ended early ({result.exit_reason}): "
+                f"{run.v_mV.size} of {expected} samples"
+            )
+        run.experiment = exp
+        return run
+    return ProtocolRun(
+        protocol=protocol,
+        rate_hz=float(exp.loop["rate_hz"]),
+        v_mV=np.asarray(v, dtype=float),
+        stimulus_pA=np.asarray(stim, dtype=float),
+        i_total_pA=np.asarray(i_total, dtype=float),
+        spike_threshold_mV=float(exp.loop["spike_threshold_mV"]),
+        nwb_path=Path(nwb) if nwb is not None else None,
+        experiment=exp,
+        sample_n=sample_n,
+        latency_samples=latency,
+    )
+
+
+def read_protocol_run(nwb_path: Path, protocol: Protocol) -> ProtocolRun:
+    """A protocol's recording read back from its NWB file (the protocol's own currents from
+    its elements' recorded currents; the loop's settings from the stored experiment)."""
+    from clampcore.nwb import read_nwb_summary
+
+    rec = read_nwb_summary(Path(nwb_path))
+    cols = rec["columns"]
+    names = [f"i_pA/{ELEMENT_PREFIX}{s.name}" for s in protocol.segments]
+    missing = [n for n in names if n not in cols]
+    if missing:
+        raise ValueError(
+            f"{nwb_path}: not a recording of protocol {protocol.name!r} ({missing[0]})"
+        )
+    exp = load_experiment(rec["experiment_text"])
+    counter = cols.get("sample_counter")
+    sample_n = None
+    if counter is not None:
+        counter = np.asarray(counter, dtype=np.int64)
+        sample_n = counter - counter[0]
+    return ProtocolRun(
+        protocol=protocol,
+        rate_hz=float(rec["rate_hz"]),
+        v_mV=np.asarray(rec["v_mV"], dtype=float),
+        stimulus_pA=np.sum([cols[n] for n in names], axis=0),
+        i_total_pA=np.asarray(rec["i_pA"], dtype=float),
+        spike_threshold_mV=float(exp.loop["spike_threshold_mV"]),
+        nwb_path=Path(nwb_path),
+        experiment=exp,
+        sample_n=sample_n,
+        latency_samples=cols.get("latency_samples"),
+    )
