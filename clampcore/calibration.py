@@ -15,7 +15,7 @@ applies. All four are compiled and read one float64 array ``conv`` built by
 
 Public names: ``Converter``, ``DEFAULT_BOARD_ADC``, ``DEFAULT_BOARD_DAC``,
 ``conversion_array``, ``counts_to_mV``, ``pA_to_counts``, ``mV_to_counts``,
-``counts_to_pA``, ``current_range_pA``.
+``counts_to_pA``, ``current_range_pA``, ``current_limit_problem``.
 """
 
 from __future__ import annotations
@@ -97,3 +97,18 @@ def current_range_pA(conv: np.ndarray) -> tuple[float, float]:
     """The lowest and highest current the DAC and amplifier can command, pA."""
     ends = (counts_to_pA(conv, 0.0), counts_to_pA(conv, conv[C_DAC_TOP]))
     return min(ends), max(ends)
+
+
+def current_limit_problem(conv: np.ndarray, max_current_pA: float) -> str | None:
+    """Why ``max_current_pA`` cannot be honoured through these converters, or None.
+
+    The rule for every run, live or offline: the DAC and amplifier must reach ±limit, or a
+    command inside the limit would be clipped silently at the converter.
+    """
+    lo, hi = current_range_pA(conv)
+    if lo > -max_current_pA or hi < max_current_pA:
+        return (
+            f"the board and amplifier can command {lo:.0f}..{hi:.0f} pA, "
+            f"which cannot represent max_current_pA = ±{max_current_pA:g}"
+        )
+    return None

@@ -31,7 +31,7 @@ def run_demo(out_dir: Path, duration_s: float = 5.0, example: str = "imposed_lif
     exp = example_path(example)
     print(f"clampcore demo: {exp.name} on the simulated rig for {duration_s:g} s")
     engine = Engine(exp, "sim")
-    result = run_with_status(engine, duration_s, str(out_dir / "demo.nwb"))
+    result = run_with_status(engine, duration_s, str(out_dir / "demo.nwb"), force=True)
     if result.nwb_path is None:
         return 1
     problems = validate_nwb(result.nwb_path)

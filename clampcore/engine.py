@@ -29,7 +29,9 @@ from __future__ import annotations
 import contextlib
 import ctypes
 import ctypes.util
+import math
 import multiprocessing as mp
+import shutil
 import signal
 import tempfile
 import time
@@ -41,7 +43,7 @@ from typing import Any
 import numpy as np
 
 from clampcore.board_link import BoardError, BoardLink, board_converters
-from clampcore.calibration import conversion_array, current_range_pA, pA_to_counts
+from clampcore.calibration import conversion_array, current_limit_problem, pA_to_counts
 from clampcore.elements import KIND_NEURON
 from clampcore.experiment import Experiment, load_experiment
 from clampcore.health import loop_health
@@ -62,13 +64,14 @@ from clampcore.hostloop import (
 )
 from clampcore.program import MAIL_TARGETS, Program, build_program, check_live_change
 from clampcore.realtime import fifo_scheduling, hold_cpu_dma_latency_zero
-from clampcore.recorder import Recorder, recording_meta
+from clampcore.recorder import Recorder, check_free_space, recording_meta
 from clampcore.shared import (
     CTRL_EXIT,
     CTRL_STATE,
     CTRL_STOP,
     CTRL_WRITTEN,
     CTRL_ZERO,
+    LAT_BINS,
     STATE_FAILED,
     STATE_RUNNING,
     STATE_STARTING,
@@ -141,6 +144,30 @@ class RunResult:
 SPIN_SHARE = 0.25
 
 
+def nwb_path_for(out: Path | str) -> Path:
+    """The NWB path of ``--out``: the user's name, with ``.nwb`` added unless it ends so
+    (``slice1.cell2`` gives ``slice1.cell2.nwb``, never ``slice1.nwb``)."""
+    out = Path(out)
+    return out if out.suffix.lower() == ".nwb" else out.with_name(out.name + ".nwb")
+
+
+def _check_outputs(nwb_path: Path, journal_path: Path, force: bool) -> None:
+    """Refuse to overwrite a recording unless ``force``; never lose an unconverted journal."""
+    if nwb_path.is_dir():
+        raise EngineError(f"{nwb_path} is a folder: choose a file name for --out")
+    if nwb_path.exists() and not force:
+        raise EngineError(f"{nwb_path} exists: choose another --out, or pass --force to replace it")
+    if journal_path.exists() and any(journal_path.iterdir()):
+        if not (journal_path / "final.json").is_file() or not nwb_path.exists():
+            raise EngineError(
+                f"{journal_path} holds a recording that was never converted: run "
+                f"`clampcore recover {journal_path}` or choose another --out"
+            )
+        if not force:
+            raise EngineError(f"{journal_path} exists: choose another --out, or pass --force")
+        shutil.rmtree(journal_path)  # a finished run's journal; its NWB is replaced too
+
+
 def _neuron_rows(program: Program) -> np.ndarray:
     return np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], dtype=np.int64)
 
@@ -184,13 +211,9 @@ def _loop_process(
             )
         adc, dac = board_converters(hello)
         conv = conversion_array(adc, dac, exp.amplifier)
-        lo, hi = current_range_pA(conv)
-        limit = exp.loop["max_current_pA"]
-        if lo > -limit or hi < limit:
-            raise EngineError(
-                f"refusing to start: the board and amplifier can command {lo:.0f}..{hi:.0f} pA, "
-                f"which cannot represent max_current_pA = ±{limit:g}"
-            )
+        problem = current_limit_problem(conv, exp.loop["max_current_pA"])
+        if problem:
+            raise EngineError(f"refusing to start: {problem}")
         rate = round(exp.loop["rate_hz"])
         if rate > hello.max_rate_hz:
             raise EngineError(
@@ -340,16 +363,30 @@ class Engine:
         self._tmpdir: tempfile.TemporaryDirectory[str] | None = None
         self.t_start = 0.0
         self.result: RunResult | None = None
+        self.force = False
 
     # ------------------------------------------------------------------ lifecycle
-    def start(self, duration_s: float | None = None, out: Path | str | None = None) -> None:
-        """Start the loop (and the rig for port "sim") and the recorder; returns at once."""
+    def start(
+        self,
+        duration_s: float | None = None,
+        out: Path | str | None = None,
+        force: bool = False,
+    ) -> None:
+        """Start the loop (and the rig for port "sim") and the recorder; returns at once.
+
+        Refuses (``EngineError``, ``RecordingError``) a duration that is not a finite number
+        of seconds > 0, an existing recording at ``out`` unless ``force``, and a recording
+        that will not fit on its disk.
+        """
         exp = self.experiment
+        if duration_s is not None and not (math.isfinite(duration_s) and duration_s > 0):
+            raise EngineError(f"duration {duration_s!r} s: must be a finite number of seconds > 0")
         out_path = Path(out) if out else Path(time.strftime("clampcore-run-%Y%m%d-%H%M%S.nwb"))
-        self.nwb_path = out_path.with_suffix(".nwb")
-        journal_path = out_path.with_suffix(".journal")
-        if journal_path.exists() and any(journal_path.iterdir()):
-            raise EngineError(f"{journal_path} already holds a recording: choose another --out")
+        self.nwb_path = nwb_path_for(out_path)
+        journal_path = self.nwb_path.with_suffix(".journal")
+        self.force = force
+        _check_outputs(self.nwb_path, journal_path, force)
+        check_free_space(self.nwb_path.parent, exp, duration_s)
         self._tmpdir = tempfile.TemporaryDirectory(prefix="clampcore-")
         try:
             self._start(exp, journal_path, duration_s)
@@ -481,7 +518,9 @@ class Engine:
             self._rig.stop()
         status = self.status()
         final = {
-            "exit_reason": report.get("error") or EXIT_MESSAGES.get(report["exit_code"], "?"),
+            "exit_reason": report.get("error")
+            or self.recorder.error
+            or EXIT_MESSAGES.get(report["exit_code"], "?"),
             "summary": status,
             "board": report.get("board"),
             "board_final_status": report.get("board_status"),
@@ -492,10 +531,13 @@ class Engine:
         }
         nwb = None
         try:
-            nwb = self.recorder.stop(final, self.nwb_path)
+            nwb = self.recorder.stop(final, self.nwb_path, overwrite=self.force)
         finally:
             self.shared.close()
         timing = self.recorder.final_meta.get("timing", {})
+        error = report.get("error")
+        if self.recorder.error:
+            error = f"{error}; {self.recorder.error}" if error else self.recorder.error
         self.result = RunResult(
             exit_reason=final["exit_reason"],
             exit_code=int(report["exit_code"]),
@@ -505,7 +547,7 @@ class Engine:
             timing=timing,
             summary=status,
             board_status=report.get("board_status"),
-            error=report.get("error"),
+            error=error,
             scheduling=final["scheduling"],
         )
         if self._tmpdir is not None:
@@ -521,18 +563,31 @@ class Engine:
         out["state"] = int(self.shared.ctrl[CTRL_STATE])
         out["written"] = int(self.shared.ctrl[CTRL_WRITTEN])
         out["zero_held"] = bool(self.shared.ctrl[CTRL_ZERO])
+        out["recording_error"] = self.recorder.error if self.recorder is not None else None
         return out
 
 
 def status_line(s: dict[str, Any], rate_hz: float) -> str:
-    """The one-line live status."""
+    """The one-line live status (what the board reports included: late commands, samples
+    under its watchdog, frames it rejected)."""
+    if s.get("recording_error"):
+        return "RECORDING FAILED: 0 pA commanded, stopping (see the message below)"
     if not s or s["samples"] == 0:
         return "starting: connecting to the board and loading the compiled loop"
+    last_bin = LAT_BINS - 1  # the live histogram's last bin holds that many samples or more
+
+    def lat(value: float) -> str:
+        if value != value:  # NaN: nothing answered yet
+            return "-"
+        return f">={last_bin}" if value >= last_bin else f"{value:.0f}"
+
     return (
         f"t {s['elapsed_s']:6.1f} s | {rate_hz / 1000:g} kHz "
-        f"| latency p50 {s['latency_p50_samples']:.0f} "
-        f"p99 {s['latency_p99_samples']:.0f} samples | turnaround p50 {s['turnaround_p50_us']:.0f} "
-        f"p99 {s['turnaround_p99_us']:.0f} µs | late {s['late']} missing {s['missing']} "
+        f"| latency p50 {lat(s['latency_p50_samples'])} "
+        f"p99 {lat(s['latency_p99_samples'])} samples | turnaround p50 "
+        f"{s['turnaround_p50_us']:.0f} p99 {s['turnaround_p99_us']:.0f} µs "
+        f"| late {s['late']} missing {s['missing']} watchdog {s['watchdog']} "
+        f"rejected {s.get('rx_errors', 0)} "
         f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "
         f"({s['firing_rate_hz']:.1f} Hz)" + (" | ZERO CURRENT" if s["zero_held"] else "")
     )
