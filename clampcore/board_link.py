@@ -73,10 +73,23 @@ class BoardLink:
             else:
                 # The baud rate is ignored by USB CDC boards and pseudo-terminals; 2 Mbaud
                 # covers 20 kHz x ~22-byte frames for a real UART (common practice).
+                # exclusive: pyserial takes an flock(2) on POSIX, so a second run (or any
+                # program that asks for the lock) cannot open the port while this one holds
+                # it; Windows opens COM ports exclusively by itself.
                 self.serial = serial.Serial(
-                    port, baudrate=2_000_000, timeout=0.05, write_timeout=1.0
+                    port,
+                    baudrate=2_000_000,
+                    timeout=0.05,
+                    write_timeout=1.0,
+                    exclusive=True if os.name == "posix" else None,
                 )
         except (serial.SerialException, OSError, ValueError) as exc:
+            if "exclusively lock" in str(exc):
+                raise BoardError(
+                    port,
+                    "cannot open the port",
+                    "another program holds it (a second clampcore run?); stop that one first",
+                ) from exc
             raise BoardError(port, "cannot open the port", str(exc)) from exc
         self._seq = _CONTROL_SEQ_START
         self._pending = b""

@@ -253,17 +253,28 @@ class TimingWatch:
         )
 
 
-def _hint_second_interrupt(journal: Path | None) -> Callable[[int, Any], None]:
-    def handler(signum: int, frame: Any) -> None:
-        where = f" `clampcore recover {journal}`" if journal else " `clampcore recover JOURNAL`"
+def _interrupt_handlers(
+    journal: Path | None,
+) -> tuple[Callable[[int, Any], None], Callable[[int, Any], None]]:
+    """The handler of the first Ctrl-C / SIGTERM: it installs the second one's, then stops
+    the run. The second (and any later) only says that the recording is being written and
+    how to rebuild it if the program is killed now."""
+
+    def again(signum: int, frame: Any) -> None:
+        where = f"`clampcore recover {journal}`" if journal else "`clampcore recover JOURNAL`"
         print(
             "\nalready stopping: the recording is being written, please wait. If this program "
-            f"is killed now, the journal keeps every sample and{where} rebuilds the NWB file",
+            f"is killed now, the journal keeps every sample and {where} rebuilds the NWB file",
             file=sys.stderr,
             flush=True,
         )
 
-    return handler
+    def first(signum: int, frame: Any) -> None:
+        signal.signal(signal.SIGINT, again)
+        signal.signal(signal.SIGTERM, again)
+        raise KeyboardInterrupt
+
+    return first, again
 
 
 def run_with_status(
@@ -282,10 +293,11 @@ def run_with_status(
 
     rate = float(engine.experiment.loop["rate_hz"])
     watch = watch or TimingWatch()
-    # SIGTERM (e.g. `kill`) stops the run as cleanly as Ctrl-C does.
-    signal.signal(signal.SIGTERM, _interrupt)
-    signal.signal(signal.SIGINT, _interrupt)
     engine.start(duration_s=duration_s, out=out, force=force)
+    # SIGTERM (e.g. `kill`) stops the run as cleanly as Ctrl-C does.
+    first, again = _interrupt_handlers(getattr(engine.recorder, "path", None))
+    signal.signal(signal.SIGINT, first)
+    signal.signal(signal.SIGTERM, first)
     tty = sys.stdout.isatty()
     try:
         while not engine.wait(0.5):
@@ -297,9 +309,8 @@ def run_with_status(
                 print(("\n" if tty else "") + warning, file=sys.stderr, flush=True)
     except KeyboardInterrupt:
         print("\nstopping: 0 pA first, then the board, then the recording", flush=True)
-    hint = _hint_second_interrupt(getattr(engine.recorder, "path", None))
-    signal.signal(signal.SIGINT, hint)
-    signal.signal(signal.SIGTERM, hint)
+    signal.signal(signal.SIGINT, again)  # from here on nothing interrupts the writing
+    signal.signal(signal.SIGTERM, again)
     try:
         result = engine.finish()
     finally:
@@ -341,10 +352,6 @@ def scheduling_text(scheduling: dict[str, Any]) -> str:
     fifo = f"SCHED_FIFO {prio}" if prio else "ordinary scheduling"
     dma = "held at 0" if scheduling.get("cpu_dma_latency_held") else "not held"
     return f"loop process: {fifo}; /dev/cpu_dma_latency {dma} (see README, timing options)"
-
-
-def _interrupt(signum: int, frame: Any) -> None:
-    raise KeyboardInterrupt
 
 
 def _ports(args: argparse.Namespace) -> int:

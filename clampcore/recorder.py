@@ -38,7 +38,13 @@ from clampcore.shared import CTRL_STOP, CTRL_ZERO, MAIL_TO_LOOP, RingLayout, Sha
 FLUSH_INTERVAL_S = 0.25  # the issue asks for at least two flushes a second
 OPEN_ENDED_S = 600.0  # a run without --duration must have room for ten minutes (issue #11)
 SPACE_CHECK_S = 2.0  # how often a running recorder re-checks the free space
-SPACE_MARGIN_S = 10.0  # stop while at least this many seconds more would still fit
+# Stop while this many seconds more (journal and NWB) would still fit: what two more
+# checks' worth of recording take, so a check never comes too late.
+SPACE_MARGIN_S = 2 * SPACE_CHECK_S
+# On a stop the loop commands 0 pA this long before the board is stopped (the engine and a
+# failing recorder both): many times the command latency (1-2 samples on hardware, up to
+# ~15 on a loaded machine: README, Benchmarks), short enough not to be noticed.
+ZERO_BEFORE_STOP_S = 0.05
 _JOURNAL_ITEM_BYTES = 8  # one float64 per column and sample (journal.py, samples.f64)
 
 
@@ -75,7 +81,9 @@ def check_free_space(
     """
     seconds = OPEN_ENDED_S if duration_s is None else float(duration_s)
     needed = bytes_per_second(experiment) * seconds
-    folder = Path(folder)
+    folder = Path(folder).absolute()
+    while not folder.exists() and folder != folder.parent:  # the journal creates it later
+        folder = folder.parent
     try:
         free = float(shutil.disk_usage(folder).free)
     except OSError as exc:
@@ -187,6 +195,7 @@ class Recorder:
                 "0 pA and stop"
             )
         self.shared.ctrl[CTRL_ZERO] = 1
+        time.sleep(ZERO_BEFORE_STOP_S)  # 0 pA from the loop first, then the stop
         self.shared.ctrl[CTRL_STOP] = 1
 
     def _check_space(self) -> None:
@@ -199,7 +208,7 @@ class Recorder:
         # The NWB file of what is recorded (at most the journal's size) plus a margin.
         needed = self.journal.rows_written * self._row_bytes + SPACE_MARGIN_S * 2 * (
             self._row_bytes * self._rate_hz
-        )
+        )  # 2x: journal and NWB, as in bytes_per_second
         if free < needed:
             self.fail(
                 f"the disk of {self.path} is almost full: {_mb(free)} free, "
@@ -274,7 +283,7 @@ class Recorder:
         out = Path(nwb_path or self.path.with_suffix(".nwb"))
         try:
             return journal_to_nwb(self.path, out, overwrite=overwrite)
-        except (NwbError, OSError) as exc:
+        except (NwbError, OSError, RuntimeError) as exc:  # h5py reports a full disk so
             kept = self.journal.rows_written
             self.error = (
                 (self.error + "; " if self.error else "")
