@@ -105,7 +105,7 @@ class BoardLink:
             fd = self.serial.fileno()
         except (AttributeError, NotImplementedError, serial.SerialException):
             return None
-        # pyserial leaves O_NONBLOCK set (REALTIME-NOTES): clear it for blocking reads.
+        # pyserial opens with O_NONBLOCK (DEVELOPERS.md, Figures): clear it for blocking reads.
         flags = fcntl.fcntl(fd, fcntl.F_GETFL)
         fcntl.fcntl(fd, fcntl.F_SETFL, flags & ~os.O_NONBLOCK)
         return fd

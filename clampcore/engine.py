@@ -94,10 +94,10 @@ class RunOptions:
 
     seed: int = 0
     # The board's watchdog: no command for this long and it outputs 0 pA. Several times
-    # the worst scheduling stall measured on these machines (~4 ms, REALTIME-NOTES).
+    # the worst scheduling stall measured on these machines (~4 ms; DEVELOPERS.md, Figures).
     watchdog_ms: float = 20.0
     # Spin this long for input before sleeping in poll(): waking a sleeping reader costs
-    # 50-90 µs here (REALTIME-NOTES). Longer spins starve the other processes on a 2-core
+    # 50-90 µs here (DEVELOPERS.md, Figures). Longer spins starve the other processes on a 2-core
     # machine: 30 µs gave the fewest late commands against the simulated rig (bench_loop.py).
     spin_us: float = 30.0
     # The loop stops if the board sends nothing for this long (a vanished board).

@@ -65,7 +65,7 @@ ST_LAT_HIST = 16  # latency histogram in samples: bins 0..LAT_BINS-1 (last bin: 
 LAT_BINS = 16
 ST_TURN_HIST = ST_LAT_HIST + LAT_BINS  # turnaround histogram, TURN_BIN_US wide bins
 TURN_BINS = 200
-TURN_BIN_US = 5.0  # 5 µs bins up to 1 ms: the pty round trip is 5-100 µs (REALTIME-NOTES)
+TURN_BIN_US = 5.0  # 5 µs bins up to 1 ms: the pty round trip is 5-100 µs (DEVELOPERS.md, Figures)
 N_STATS = ST_TURN_HIST + TURN_BINS
 
 MAILBOX_SLOTS = 1024
