@@ -590,15 +590,18 @@ def status_line(s: dict[str, Any], rate_hz: float) -> str:
     last_bin = LAT_BINS - 1  # the live histogram's last bin holds that many samples or more
 
     def lat(value: float) -> str:
-        if value != value:  # NaN: nothing answered yet
+        if value != value:  # NaN: nothing answered yet (a stop during start-up)
             return "-"
         return f">={last_bin}" if value >= last_bin else f"{value:.0f}"
+
+    def us(value: float) -> str:
+        return "-" if value != value else f"{value:.0f}"
 
     return (
         f"t {s['elapsed_s']:6.1f} s | {rate_hz / 1000:g} kHz "
         f"| latency p50 {lat(s['latency_p50_samples'])} "
         f"p99 {lat(s['latency_p99_samples'])} samples | turnaround p50 "
-        f"{s['turnaround_p50_us']:.0f} p99 {s['turnaround_p99_us']:.0f} µs "
+        f"{us(s['turnaround_p50_us'])} p99 {us(s['turnaround_p99_us'])} µs "
         f"| late {s['late']} missing {s['missing']} watchdog {s['watchdog']} "
         f"rejected {s.get('rx_errors', 0)} "
         f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "

@@ -508,3 +508,82 @@ def test_loader_loads_or_names_element_and_field(case):
             else:
                 assert exc.where == f"section [{where}]"
                 assert exc.field == field
+
+
+# --------------------------------------------------------------------------- the window
+
+
+def test_gui_without_a_display_says_so_and_does_not_abort(tmp_path):
+    env = {k: v for k, v in os.environ.items()
+           if k not in ("DISPLAY", "WAYLAND_DISPLAY", "QT_QPA_PLATFORM")}  # fmt: skip
+    env["PYTHONPATH"] = str(ROOT)
+    done = subprocess.run([sys.executable, "-m", "clampcore", "gui"], env=env,
+                          capture_output=True, text=True, timeout=120)  # fmt: skip
+    if "needs PySide6" in done.stderr:
+        pytest.skip("the window's extra is not installed")
+    assert done.returncode == 1  # not 134 (SIGABRT from Qt)
+    assert "no display" in done.stderr and "QT_QPA_PLATFORM=offscreen" in done.stderr
+    assert len(done.stderr.strip().splitlines()) == 1
+
+
+def test_display_problem_rules():
+    from gui.app import display_problem
+
+    if sys.platform != "linux":
+        pytest.skip("the check applies to Linux")
+    assert display_problem({"QT_QPA_PLATFORM": "offscreen"}) is None
+    assert "no display" in display_problem({})
+    assert "WAYLAND_DISPLAY" in display_problem({"QT_QPA_PLATFORM": "wayland"})
+    assert display_problem({"WAYLAND_DISPLAY": "wayland-0"}) is None
+
+
+# --------------------------------------------------------------------------- live status
+
+
+def _stats(samples: int, late: int, latency_bin: int) -> dict:
+    from clampcore.health import loop_health
+    from clampcore.shared import LAT_BINS, N_STATS, ST_LAT_HIST, ST_LATE, ST_SAMPLES
+
+    st_ = np.zeros(N_STATS)
+    st_[ST_SAMPLES] = samples
+    st_[ST_LATE] = late
+    st_[ST_LAT_HIST + min(latency_bin, LAT_BINS - 1)] = samples
+    out = loop_health(st_, 10000.0)
+    out.update(state=1, written=samples, zero_held=False, recording_error=None)
+    return out
+
+
+def test_status_line_has_no_nan_and_shows_the_histograms_last_bin():
+    from clampcore.engine import status_line
+
+    starting = status_line(_stats(0, 0, 1), 10000.0)
+    assert "nan" not in starting.lower()
+    line = status_line(_stats(5000, 0, 40), 10000.0)  # 40 samples: beyond the last bin
+    assert "p99 >=15" in line and "nan" not in line.lower()
+    assert "watchdog 0 rejected 0" in line
+
+
+def test_timing_warning_once_past_the_threshold():
+    from clampcore.cli import TimingWatch
+
+    watch = TimingWatch(late_percent=5.0, latency_samples=8)
+    assert watch.check(_stats(10000, 0, 1), 10000.0) is None  # first status: no interval yet
+    assert watch.check(_stats(20000, 100, 1), 10000.0) is None  # 1% late, latency 1: fine
+    warning = watch.check(_stats(30000, 1100, 1), 10000.0)  # 10% late in this interval
+    assert warning and "10.0% of commands came late" in warning
+    assert watch.check(_stats(40000, 5000, 1), 10000.0) is None  # warned once only
+    watch = TimingWatch(late_percent=5.0, latency_samples=8)
+    watch.check(_stats(10000, 0, 1), 10000.0)
+    assert "latency p99" in watch.check(_stats(20000, 0, 12), 10000.0)
+
+
+def test_rejected_commands_show_live(tmp_path):
+    """Commands corrupted on the way to the board: it flags RX_ERROR in its samples, the
+    live status counts them."""
+    faults = {"corrupt_rx": 0.01}
+    engine = Engine(EXAMPLE, "sim", RunOptions(rig_clock="wall", rig_faults=faults, seed=2))
+    engine.start(duration_s=1.0, out=tmp_path / "rx.nwb")
+    assert engine.wait(120.0)
+    result = engine.finish()
+    assert result.summary["rx_errors"] > 0
+    assert result.board_status["bad_frames"] > 0
