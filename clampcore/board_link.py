@@ -185,6 +185,29 @@ class BoardLink:
         """Send one COMMAND at once (used to command 0 pA before stopping)."""
         self.send(codec.Command(answers_counter % 2**32, (dac_counts,)), seq=seq % 0x10000)
 
+    def zero_now(self, seq: int, answered: int, zero_counts: int, wait_s: float = 0.02) -> bool:
+        """Command ``zero_counts`` (0 pA) and wait (up to ``wait_s`` each) until a sample
+        reports it in force; returns whether one did.
+
+        It answers the first sample newer than ``answered``: the board rejects a command
+        that does not answer a newer sample than the one in force (PROTOCOL.md, section
+        5.2), which the loop's last answer usually is.
+        """
+        newest = answered
+        try:
+            for _seq, message in self._frames(time.monotonic() + wait_s):
+                if isinstance(message, codec.Sample) and message.counter > answered % 2**32:
+                    newest = answered + (message.counter - answered % 2**32)
+                    break
+        except BoardError:
+            pass  # nothing more to read: answer the last sample seen
+        self.command_now(seq, newest, zero_counts)
+        with contextlib.suppress(BoardError):
+            for _seq, message in self._frames(time.monotonic() + wait_s):
+                if isinstance(message, codec.Sample) and message.cmd_seq == seq % 0x10000:
+                    return True
+        return False
+
     def take_unread(self) -> bytes:
         """Bytes read while waiting for a reply but not yet used (e.g. the first sample)."""
         data, self._pending = self._pending, b""

@@ -64,7 +64,7 @@ from clampcore.hostloop import (
 )
 from clampcore.program import MAIL_TARGETS, Program, build_program, check_live_change
 from clampcore.realtime import fifo_scheduling, hold_cpu_dma_latency_zero
-from clampcore.recorder import ZERO_BEFORE_STOP_S, Recorder, check_free_space, recording_meta
+from clampcore.recorder import Recorder, check_free_space, recording_meta
 from clampcore.shared import (
     CTRL_EXIT,
     CTRL_STATE,
@@ -261,7 +261,7 @@ def _loop_process(
             if started:
                 # Safety first: 0 pA, then stop the board.
                 with contextlib.suppress(BoardError, OSError, NameError):
-                    link.command_now(
+                    link.zero_now(
                         int(arrays.lk[LK_NEXT_SEQ]), int(max(arrays.lk[LK_LAST_COUNTER], 0)), zero
                     )
                 with contextlib.suppress(BoardError, OSError):
@@ -486,18 +486,6 @@ class Engine:
             self.experiment.element(element)[field_name] = value
         return number
 
-    def _settle_at_zero(self) -> None:
-        """0 pA first: the loop commands 0 pA for ``ZERO_BEFORE_STOP_S`` before the stop
-        request, so the board applies a 0 pA command before STOP (which then writes its
-        fault value, PROTOCOL.md); a loop that ended by itself is left alone."""
-        assert self.shared is not None
-        if not self.running:
-            return
-        self.shared.ctrl[CTRL_ZERO] = 1
-        deadline = time.monotonic() + ZERO_BEFORE_STOP_S
-        while self.running and time.monotonic() < deadline:
-            time.sleep(0.005)
-
     def wait(self, timeout_s: float | None = None) -> bool:
         """Wait for the loop to end by itself; True if it has."""
         if self._proc is None:
@@ -510,7 +498,6 @@ class Engine:
         if self.result is not None:
             return self.result
         assert self._proc is not None and self.recorder is not None and self.shared is not None
-        self._settle_at_zero()
         self.request_stop()
         report: dict[str, Any] = {"exit_code": EXIT_STOP_REQUEST, "error": None}
         if self._conn.poll(timeout_s):

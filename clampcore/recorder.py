@@ -41,9 +41,9 @@ SPACE_CHECK_S = 2.0  # how often a running recorder re-checks the free space
 # Stop while this many seconds more (journal and NWB) would still fit: what two more
 # checks' worth of recording take, so a check never comes too late.
 SPACE_MARGIN_S = 2 * SPACE_CHECK_S
-# On a stop the loop commands 0 pA this long before the board is stopped (the engine and a
-# failing recorder both): many times the command latency (1-2 samples on hardware, up to
-# ~15 on a loaded machine: README, Benchmarks), short enough not to be noticed.
+# A failing recorder has the loop command 0 pA this long before it asks for the stop:
+# many times the command latency (1-2 samples on hardware, up to ~15 on a loaded machine:
+# README, Benchmarks), so the board applies 0 pA from the loop itself.
 ZERO_BEFORE_STOP_S = 0.05
 _JOURNAL_ITEM_BYTES = 8  # one float64 per column and sample (journal.py, samples.f64)
 

@@ -388,9 +388,7 @@ def test_two_runs_on_one_port(capsys, tmp_path):
     assert result.error is None, result.error
     assert result.summary["missing"] == 0 and result.summary["bad_frames"] == 0
     assert result.board_status["bad_frames"] == 0
-    # At most the engine's own last 0 pA command, sent after the loop's last answer, is
-    # refused as a duplicate (PROTOCOL.md section 5.2); the loop had commanded 0 pA already.
-    assert result.board_status["rejected"] <= 1
+    assert result.board_status["rejected"] == 0
     _assert_no_sample_lost(result.nwb_path, tmp_path / "first.journal")
     _assert_left_at_zero(log)
 
