@@ -63,7 +63,6 @@ class _Parser(argparse.ArgumentParser):
 
 
 def real_option(
-    option: str,
     low: float,
     high: float = math.inf,
     low_open: bool = False,
@@ -90,7 +89,7 @@ def real_option(
     return parse
 
 
-def int_option(option: str, low: int, high: int) -> Callable[[str], int]:
+def int_option(low: int, high: int) -> Callable[[str], int]:
     """An argparse type: an integer in [low, high]."""
 
     def parse(text: str) -> int:
@@ -386,21 +385,36 @@ def _demo(args: argparse.Namespace) -> int:
     return run_demo(Path(args.out_dir), args.duration)
 
 
-def add_run_options(p: argparse.ArgumentParser) -> None:
-    """Options that `run` and the window share."""
+def _add_bounded(
+    p: argparse.ArgumentParser,
+    option: str,
+    bounds: tuple[float, float],
+    unit: str,
+    default: float,
+    what: str,
+) -> None:
+    lo, hi = bounds
+    p.add_argument(
+        option,
+        type=real_option(lo, hi, unit=unit),
+        default=default,
+        help=f"{what}, {lo:g}..{hi:g} {unit} (default {default:g})",
+    )
+
+
+def _add_seed(p: argparse.ArgumentParser) -> None:
     p.add_argument(
         "--seed",
-        type=int_option("--seed", *SEED_RANGE),
+        type=int_option(*SEED_RANGE),
         default=0,
         help=f"random seed, {SEED_RANGE[0]}..{SEED_RANGE[1]} (default 0)",
     )
-    lo, hi = WATCHDOG_MS_RANGE
-    p.add_argument(
-        "--watchdog-ms",
-        type=real_option("--watchdog-ms", lo, hi, unit="ms"),
-        default=20.0,
-        help=f"board watchdog, {lo:g}..{hi:g} ms (default 20)",
-    )
+
+
+def add_run_options(p: argparse.ArgumentParser) -> None:
+    """Options that `run` and the window share."""
+    _add_seed(p)
+    _add_bounded(p, "--watchdog-ms", WATCHDOG_MS_RANGE, "ms", 20.0, "board watchdog")
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -409,7 +423,7 @@ def _parser() -> argparse.ArgumentParser:
         "--debug", action="store_true", help="print the traceback of an error (for bug reports)"
     )
     sub = parser.add_subparsers(dest="command", required=True)
-    duration = real_option("--duration", 0.0, low_open=True, unit="seconds")
+    duration = real_option(0.0, low_open=True, unit="seconds")
 
     p = sub.add_parser("check", help="validate an experiment file and summarise it")
     p.add_argument("experiment")
@@ -419,12 +433,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("experiment")
     p.add_argument("--duration", type=duration, default=2.0, help="seconds (default 2)")
     p.add_argument("--out", help="write .nwb or .npz (other names get .npz added)")
-    p.add_argument(
-        "--seed",
-        type=int_option("--seed", *SEED_RANGE),
-        default=0,
-        help=f"random seed, {SEED_RANGE[0]}..{SEED_RANGE[1]} (default 0)",
-    )
+    _add_seed(p)
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
     p.set_defaults(func=_simulate)
 
@@ -439,16 +448,10 @@ def _parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--force", action="store_true", help="replace an existing recording at --out")
     add_run_options(p)
-    lo, hi = SPIN_US_RANGE
-    p.add_argument(
-        "--spin-us",
-        type=real_option("--spin-us", lo, hi, unit="µs"),
-        default=30.0,
-        help=f"spin before sleeping, {lo:g}..{hi:g} µs (default 30)",
-    )
+    _add_bounded(p, "--spin-us", SPIN_US_RANGE, "µs", 30.0, "spin before sleeping")
     p.add_argument(
         "--realtime",
-        type=int_option("--realtime", *PRIORITY_RANGE),
+        type=int_option(*PRIORITY_RANGE),
         default=0,
         metavar="PRIO",
         help="SCHED_FIFO priority of the loop, where permitted (e.g. "
@@ -462,14 +465,14 @@ def _parser() -> argparse.ArgumentParser:
     )
     p.add_argument(
         "--warn-late-percent",
-        type=real_option("--warn-late-percent", 0.0, 100.0, low_open=True, unit="%"),
+        type=real_option(0.0, 100.0, low_open=True, unit="%"),
         default=WARN_LATE_PERCENT,
         help="warn once when more than this share of commands comes late within a status "
         f"interval (default {WARN_LATE_PERCENT:g})",
     )
     p.add_argument(
         "--warn-latency-samples",
-        type=int_option("--warn-latency-samples", 1, 15),
+        type=int_option(1, 15),
         default=WARN_LATENCY_SAMPLES,
         help="warn once when the latency p99 of a status interval reaches this many samples "
         f"(default {WARN_LATENCY_SAMPLES}; 15 is the live histogram's last bin)",
@@ -491,7 +494,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--out-dir", default="demo-output")
     p.add_argument(
         "--duration",
-        type=real_option("--duration", 0.0, 600.0, low_open=True, unit="seconds"),
+        type=real_option(0.0, 600.0, low_open=True, unit="seconds"),
         default=5.0,
     )
     p.set_defaults(func=_demo)
