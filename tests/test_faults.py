@@ -503,9 +503,11 @@ def test_loader_loads_or_names_element_and_field(case):
                 if field not in ("kind", "name"):
                     # the field itself, or one it is checked against (reset below threshold)
                     assert exc.field is not None
-            else:
-                assert exc.where == f"section [{where}]"
+            elif exc.where == f"section [{where}]":
                 assert exc.field == field
+            else:  # a valid but different loop rate can make an element's field invalid
+                assert where == "loop" and exc.where.startswith("element")
+                assert exc.field is not None
 
 
 # --------------------------------------------------------------------------- the window
@@ -585,3 +587,22 @@ def test_rejected_commands_show_live(tmp_path):
     result = engine.finish()
     assert result.summary["rx_errors"] > 0
     assert result.board_status["bad_frames"] > 0
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow,
+          HealthCheck.function_scoped_fixture])  # fmt: skip
+@given(st.lists(st.tuples(st.integers(0, 10_000), st.binary(max_size=4)), min_size=1, max_size=4))
+def test_corrupted_experiment_files_load_or_say_why(tmp_path, edits):
+    """Byte-level corruption of a real experiment file (replace a few bytes anywhere, also
+    with invalid UTF-8): it loads, or an ExperimentError names the file or the place."""
+    data = bytearray(EXAMPLE.read_bytes())
+    for position, junk in edits:
+        at = position % (len(data) + 1)
+        data[at : at + len(junk)] = junk
+    path = tmp_path / "corrupted.toml"
+    path.write_bytes(bytes(data))
+    try:
+        load_experiment(path)
+    except ExperimentError as exc:
+        assert exc.where in str(exc)
+        assert "corrupted.toml" in str(exc) or exc.where.startswith(("element", "section", "["))
