@@ -298,14 +298,16 @@ def run_with_status(
     signal.signal(signal.SIGINT, first)
     signal.signal(signal.SIGTERM, first)
     tty = sys.stdout.isatty()
+    warned: set[str] = set()
     try:
         while not engine.wait(0.5):
             status = engine.status()
             line = status_line(status, rate)
             print(("\r" + line) if tty else line, end="" if tty else "\n", flush=True)
-            warning = watch.check(status, rate)
-            if warning:
-                print(("\n" if tty else "") + warning, file=sys.stderr, flush=True)
+            for warning in (watch.check(status, rate), status.get("recording_warning")):
+                if warning and warning not in warned:
+                    warned.add(warning)
+                    print(("\n" if tty else "") + warning, file=sys.stderr, flush=True)
     except KeyboardInterrupt:
         print("\nstopping: 0 pA first, then the board, then the recording", flush=True)
     signal.signal(signal.SIGINT, again)  # from here on nothing interrupts the writing
@@ -315,7 +317,8 @@ def run_with_status(
     finally:
         signal.signal(signal.SIGINT, signal.default_int_handler)
         signal.signal(signal.SIGTERM, signal.SIG_DFL)
-    print(("\n" if tty else "") + status_line(result.summary, rate))
+    if result.samples:
+        print(("\n" if tty else "") + status_line(result.summary, rate))
     if result.error:
         print(f"clampcore: {result.error}", file=sys.stderr)  # the reason, printed once
     else:

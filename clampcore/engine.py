@@ -415,7 +415,7 @@ class Engine:
             source = "simulated rig"
         self.shared = SharedRun.create(self.layout)
         meta = recording_meta(exp, source, seed=self.options.seed)
-        self.recorder = Recorder(self.shared, self.program, journal_path, meta)
+        self.recorder = Recorder(self.shared, self.program, journal_path, meta, duration_s)
         max_samples = round(duration_s * exp.loop["rate_hz"]) if duration_s else 0
         ctx = mp.get_context("spawn")
         self._conn, child_conn = ctx.Pipe(duplex=False)
@@ -564,6 +564,7 @@ class Engine:
         out["written"] = int(self.shared.ctrl[CTRL_WRITTEN])
         out["zero_held"] = bool(self.shared.ctrl[CTRL_ZERO])
         out["recording_error"] = self.recorder.error if self.recorder is not None else None
+        out["recording_warning"] = self.recorder.warning if self.recorder is not None else None
         return out
 
 

@@ -155,6 +155,7 @@ class Recorder:
         program: Program,
         journal_path: Path,
         meta: dict[str, Any],
+        duration_s: float | None = None,
     ) -> None:
         self.shared = shared
         self.program = program
@@ -173,6 +174,9 @@ class Recorder:
         self._row_bytes = self.layout.columns * _JOURNAL_ITEM_BYTES
         self._rate_hz = float(program.experiment.loop["rate_hz"])
         self._next_space_check = 0.0
+        self._duration_s = duration_s  # None: open-ended
+        # Said once, while the run goes on: the disk will not hold the rest of the run.
+        self.warning: str | None = None
 
     def start(self) -> None:
         self._thread.start()
@@ -213,6 +217,17 @@ class Recorder:
             self.fail(
                 f"the disk of {self.path} is almost full: {_mb(free)} free, "
                 f"{_mb(needed)} kept for the NWB file and a margin"
+            )
+            return
+        elapsed_s = self.journal.rows_written / self._rate_hz
+        rest_s = OPEN_ENDED_S if self._duration_s is None else self._duration_s - elapsed_s
+        if self.warning is None and free < needed + max(rest_s, 0.0) * 2 * (
+            self._row_bytes * self._rate_hz
+        ):
+            span = "ten more minutes" if self._duration_s is None else "the rest of the run"
+            self.warning = (
+                f"warning: the disk of {self.path} has {_mb(free)} free, not enough for {span}; "
+                "the run will be stopped (0 pA first) while its NWB file still fits"
             )
 
     def drain(self) -> None:

@@ -606,3 +606,31 @@ def test_corrupted_experiment_files_load_or_say_why(tmp_path, edits):
     except ExperimentError as exc:
         assert exc.where in str(exc)
         assert "corrupted.toml" in str(exc) or exc.where.startswith(("element", "section", "["))
+
+
+def test_low_disk_space_is_warned_once_while_the_run_goes_on(tmp_path, monkeypatch):
+    """An open-ended run whose disk holds less than ten more minutes: one warning, the run
+    goes on (it is stopped only when just its NWB file and a margin still fit)."""
+    from clampcore import recorder
+
+    usage = shutil.disk_usage(tmp_path)
+    per_s = recorder.bytes_per_second(load_experiment(EXAMPLE))
+    calls = []
+
+    def fake_usage(path):
+        calls.append(path)  # the start-up check sees plenty, the recorder 60 s worth
+        return usage._replace(free=int(per_s * (3600 if len(calls) == 1 else 60)))
+
+    monkeypatch.setattr(recorder.shutil, "disk_usage", fake_usage)
+    engine = Engine(EXAMPLE, "sim", RunOptions(rig_clock="wall"))
+    engine.start(duration_s=None, out=tmp_path / "low.nwb")
+    _wait_for_rows(engine, 5000)
+    deadline = time.monotonic() + 30
+    while not engine.status()["recording_warning"]:
+        assert time.monotonic() < deadline, "no warning"
+        time.sleep(0.1)
+    warning = engine.status()["recording_warning"]
+    assert "not enough for ten more minutes" in warning and "0 pA first" in warning
+    assert engine.running  # the run goes on
+    result = engine.finish()
+    assert result.error is None and result.nwb_path is not None
