@@ -19,11 +19,12 @@ import os
 import time
 from typing import Any
 
+import numpy as np
 import serial
 from serial.tools import list_ports as _list_ports
 
 from clampcore.calibration import Converter
-from firmware_protocol import codec
+from firmware_protocol import boardlaw, codec, lawmsg
 
 _CONTROL_SEQ_START = 0x8000  # control frames count from here; commands use their own numbers
 _REPLY_TIMEOUT_S = 2.0  # a board answers a control message within a few ms; 2 s is generous
@@ -112,10 +113,15 @@ class BoardLink:
 
     # ------------------------------------------------------------------ messages
     def send(self, message: Any, seq: int | None = None) -> int:
+        """Send a protocol message, or a ``(msg_type, body)`` pair of protocol v2 (§10)."""
         if seq is None:
             seq = self._seq
             self._seq = _CONTROL_SEQ_START + ((self._seq + 1 - _CONTROL_SEQ_START) % 0x7FFF)
-        self._write(codec.encode_message(message, seq), type(message).__name__)
+        if isinstance(message, tuple):
+            msg_type, body = message
+            self._write(lawmsg.frame_bytes(msg_type, seq, body), f"message 0x{msg_type:02X}")
+        else:
+            self._write(codec.encode_message(message, seq), type(message).__name__)
         return seq
 
     def _write(self, data: bytes, what: str = "a delimiter") -> None:
@@ -185,9 +191,11 @@ class BoardLink:
         """Send one COMMAND at once (used to command 0 pA before stopping)."""
         self.send(codec.Command(answers_counter % 2**32, (dac_counts,)), seq=seq % 0x10000)
 
-    def zero_now(self, seq: int, answered: int, zero_counts: int, wait_s: float = 0.02) -> bool:
-        """Command ``zero_counts`` (0 pA) and wait (up to ``wait_s`` each) until a sample
-        reports it in force; returns whether one did.
+    def zero_command_now(
+        self, seq: int, answered: int, zero_counts: int, wait_s: float = 0.02
+    ) -> bool:
+        """Current mode: command ``zero_counts`` (0 pA) and wait (up to ``wait_s`` each)
+        until a sample reports it in force; returns whether one did.
 
         It answers the first sample newer than ``answered``: the board rejects a command
         that does not answer a newer sample than the one in force (PROTOCOL.md, section
@@ -205,6 +213,45 @@ class BoardLink:
         with contextlib.suppress(BoardError):
             for _seq, message in self._frames(time.monotonic() + wait_s):
                 if isinstance(message, codec.Sample) and message.cmd_seq == seq % 0x10000:
+                    return True
+        return False
+
+    def law_setup(self, rules: bytes, tables: list[bytes]) -> bool:
+        """Give the board its rules and Mg block table (PROTOCOL.md §10); False when the
+        board does not evaluate laws (a version-1 board ignores both, §5.5)."""
+        try:
+            reply = self.request((lawmsg.MSG_BOARD_RULES, rules), codec.Status, timeout_s=0.5)
+        except BoardError:
+            return False
+        if reply.result != codec.RESULT_OK:
+            raise BoardError(self.port, "board rules refused", f"board result code {reply.result}")
+        for body in tables:
+            reply = self.request((lawmsg.MSG_BLOCK_TABLE, body), codec.Status)
+            if reply.result != codec.RESULT_OK:
+                raise BoardError(self.port, "block table refused", f"result {reply.result}")
+        return True
+
+    def zero_now(self, confirm_s: float = 0.2) -> bool:
+        """Ask a law-evaluating board for 0 pA at once, ahead of any queued law, and wait
+        (at most ``confirm_s``) for a sample that shows it applied; True when one did."""
+        self.send((lawmsg.MSG_ZERO, lawmsg.ZERO_ON))
+        fields = np.zeros(lawmsg.N_FIELDS, dtype=np.int64)
+        adc, dac, flags = (np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64) for _ in range(3))
+        deadline = time.monotonic() + confirm_s
+        while time.monotonic() < deadline:
+            try:
+                data = self.serial.read(max(1, self.serial.in_waiting))
+            except (serial.SerialException, OSError) as exc:
+                raise BoardError(self.port, "reading", str(exc)) from exc
+            self._pending += data
+            while b"\x00" in self._pending:
+                wire, self._pending = self._pending.split(b"\x00", 1)
+                try:
+                    payload = np.frombuffer(codec.decode_wire(wire), dtype=np.uint8)
+                except codec.FrameError:
+                    continue
+                n = lawmsg.decode_samples(payload, payload.size, fields, adc, dac, flags)
+                if n > 0 and np.any(flags[:n] & boardlaw.BF_FLAG_ZERO):
                     return True
         return False
 

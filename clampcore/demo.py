@@ -1,9 +1,9 @@
 """The demo: an example experiment on the simulated rig, recorded and plotted.
 
 Runs ``examples/imposed_lif.toml`` (a passive model cell turned into an
-integrate-and-fire neuron) through the whole real path: simulated board on a
-pseudo-terminal, loop process, live status, NWB recording, and a PNG of V, I
-and spikes.
+integrate-and-fire neuron) in law mode (PROTOCOL.md §10) through the whole real
+path: simulated board on a pseudo-terminal, loop process, live status, NWB
+recording, and a PNG of V, I and spikes.
 
 Public names: ``run_demo``, ``example_path``.
 """
@@ -14,7 +14,8 @@ import shutil
 from pathlib import Path
 
 from clampcore.cli import run_with_status
-from clampcore.engine import Engine
+from clampcore.engine import Engine, RunOptions
+from clampcore.law import LAW_MODE
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.plot import plot_recording
 
@@ -29,8 +30,11 @@ def run_demo(out_dir: Path, duration_s: float = 5.0, example: str = "imposed_lif
     out_dir.mkdir(parents=True, exist_ok=True)
     shutil.rmtree(out_dir / "demo.journal", ignore_errors=True)  # the demo's own last run
     exp = example_path(example)
-    print(f"clampcore demo: {exp.name} on the simulated rig for {duration_s:g} s")
-    engine = Engine(exp, "sim")
+    print(
+        f"clampcore demo: {exp.name} on the simulated rig for {duration_s:g} s, law mode "
+        "(the board evaluates the current law at its own V)"
+    )
+    engine = Engine(exp, "sim", RunOptions(mode=LAW_MODE))
     result = run_with_status(engine, duration_s, str(out_dir / "demo.nwb"), force=True)
     if result.nwb_path is None:
         return 1

@@ -62,7 +62,21 @@ from clampcore.hostloop import (
     process_rx,
     record_turnaround,
 )
-from clampcore.program import MAIL_TARGETS, Program, build_program, check_live_change
+from clampcore.law import CURRENT_MODE, LAW_MODE, board_arrays, law_scale
+from clampcore.lawloop import (
+    LawLinkArrays,
+    law_fd_loop,
+    new_law_link,
+    process_rx_law,
+    top_up_laws,
+)
+from clampcore.program import (
+    MAIL_TARGETS,
+    Program,
+    build_program,
+    check_live_change,
+    delay_samples,
+)
 from clampcore.realtime import fifo_scheduling, hold_cpu_dma_latency_zero
 from clampcore.recorder import Recorder, check_free_space, recording_meta
 from clampcore.shared import (
@@ -80,6 +94,7 @@ from clampcore.shared import (
     RingLayout,
     SharedRun,
 )
+from firmware_protocol.lawmsg import rules_body, table_bodies
 
 _PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
 
@@ -119,6 +134,9 @@ class RunOptions:
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
     rig_faults: dict[str, Any] = field(default_factory=dict)
+    rig_link: str | None = None  # for port "sim": a link model (clampcore.links), wall clock only
+    # "current" or "law" (PROTOCOL.md §10) instead of the experiment's [loop] mode; None: as set.
+    mode: str | None = None
 
 
 @dataclass
@@ -134,6 +152,8 @@ class RunResult:
     error: str | None = None
     # What the loop process got: SCHED_FIFO priority (0 = ordinary) and cpu_dma_latency.
     scheduling: dict[str, Any] = field(default_factory=dict)
+    mode: str = "current"  # how the current was computed: "current" or "law" (PROTOCOL.md §10)
+    notice: str | None = None  # e.g. why law mode fell back to current mode
 
 
 # The loop spins for input at most this share of a sample period before sleeping in
@@ -142,6 +162,10 @@ class RunResult:
 # spin left the window 11 redraws/s, capped about 22; bench_gui.py --realtime 50
 # --rig-realtime 60).
 SPIN_SHARE = 0.25
+# Law mode's shortest look-ahead: covers a pseudo-terminal's measured turnaround (median
+# 2.7 µs, p99.9 33 µs; README, Benchmarks) and a high-speed USB board's 125 µs microframes
+# many times over; a full-speed USB board needs about 2 ms (1 ms frames both ways).
+MIN_LEAD_MS = 1.0
 
 
 def nwb_path_for(out: Path | str) -> Path:
@@ -195,7 +219,7 @@ def _loop_process(
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides when to stop
     _die_with_parent()
     report: dict[str, Any] = {"exit_code": 0, "error": None, "board_status": None}
-    shared = link = None
+    shared = link = law = None
     started = False
     try:
         program = build_program(exp_text, seed=options.seed)
@@ -227,27 +251,40 @@ def _loop_process(
         arrays = new_link(zero)
         loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
         loop_args += (shared.mailbox, shared.applied, shared.stats)
-        _compile_before_start(arrays, loop_args)
+        law = None
+        report["mode"] = CURRENT_MODE
+        if (options.mode or exp.loop["mode"]) == LAW_MODE:
+            law = _law_setup(link, program, conv, loop_args, options)
+            report["mode"] = LAW_MODE if law is not None else CURRENT_MODE
+            if law is None:
+                report["notice"] = (
+                    "the board does not evaluate the current law (it ignored BOARD_RULES): "
+                    "running in current mode, where every current is computed from a V one "
+                    "link round trip old (PROTOCOL.md §10)"
+                )
+        if law is None:
+            _compile_before_start(arrays, loop_args)
         report["realtime"] = fifo_scheduling(options.realtime_priority)
+        spin_us = min(options.spin_us, SPIN_SHARE * 1e6 / rate)
         with hold_cpu_dma_latency_zero(options.low_latency) as held:
             report["low_latency_held"] = held
             link.start()
             started = True
             shared.ctrl[CTRL_STATE] = STATE_RUNNING
             fd = None if options.python_io else link.blocking_fd()
-            # Samples that came with the replies must be answered before the loop waits.
-            _feed(link, link.take_unread(), arrays, loop_args, shared)
-            if fd is not None:
-                code = fd_loop(
-                    fd,
-                    min(options.spin_us, SPIN_SHARE * 1e6 / rate),
-                    options.silent_ms,
-                    max_samples,
-                    *arrays.arrays(),
-                    *loop_args,
-                )
+            if law is not None:
+                if fd is None:
+                    raise EngineError("law mode needs a port with a file descriptor")
+                code = _law_loop(link, fd, law, spin_us, options.silent_ms, max_samples)
             else:
-                code = _python_loop(link, arrays, loop_args, options, max_samples, shared)
+                # Samples that came with the replies must be answered before the loop waits.
+                _feed(link, link.take_unread(), arrays, loop_args, shared)
+                if fd is not None:
+                    code = fd_loop(
+                        fd, spin_us, options.silent_ms, max_samples, *arrays.arrays(), *loop_args
+                    )
+                else:
+                    code = _python_loop(link, arrays, loop_args, options, max_samples, shared)
         report["exit_code"] = int(code)
         shared.ctrl[CTRL_STATE] = STATE_STOPPING
         if code in (EXIT_PORT_CLOSED, EXIT_PORT_ERROR, EXIT_BOARD_SILENT):
@@ -261,9 +298,14 @@ def _loop_process(
             if started:
                 # Safety first: 0 pA, then stop the board.
                 with contextlib.suppress(BoardError, OSError, NameError):
-                    link.zero_now(
-                        int(arrays.lk[LK_NEXT_SEQ]), int(max(arrays.lk[LK_LAST_COUNTER], 0)), zero
-                    )
+                    if law is not None:
+                        link.zero_now()
+                    else:
+                        link.zero_command_now(
+                            int(arrays.lk[LK_NEXT_SEQ]),
+                            int(max(arrays.lk[LK_LAST_COUNTER], 0)),
+                            zero,
+                        )
                 with contextlib.suppress(BoardError, OSError):
                     status = link.stop()
                     if status is not None:
@@ -277,6 +319,87 @@ def _loop_process(
             shared.close()
         conn.send(report)
         conn.close()
+
+
+@dataclass
+class _LawRun:
+    """Law mode's buffers and the compiled loop's arguments after the descriptor."""
+
+    arrays: LawLinkArrays
+    args: tuple
+
+
+def _law_setup(
+    link: BoardLink, program: Program, conv: np.ndarray, loop_args: tuple, options: RunOptions
+) -> _LawRun | None:
+    """Give the board its rules and the first laws; None when it cannot evaluate laws."""
+    exp = program.experiment
+    rate = float(exp.loop["rate_hz"])
+    lead = law_lead_samples(program)
+    lifetime = max(1, round(exp.loop["lifetime_ms"] * rate / 1000.0))
+    bf, bi, _bs, _law, table = board_arrays(program, conv, LAW_MODE, lifetime)
+    if not link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else []):
+        return None
+    neurons = _neuron_rows(program)
+    arrays = new_law_link(lead, table.size > 0, len(program.names), neurons.size)
+    args = (conv, law_scale(conv), *loop_args[1:])
+    a = arrays
+    # Compile (or load) before the board starts, then send the first laws (samples 0..lead-1).
+    # args: conv, scale, kind .. neuron_rows, ctrl, ring, mailbox, applied, stats
+    length = top_up_laws(a.lw, a.laws, a.lawbits, a.ghist, a.tx, 0, *args[1:13], *args[14:])
+    process_rx_law(0, *a.arrays()[:14], *args)
+    link.serial.write(a.tx[:length].tobytes())
+    stopped = args[12].copy()
+    stopped[CTRL_STOP] = 1
+    law_fd_loop(-1, 0.0, 0, 0, *a.arrays(), *args[:12], stopped, *args[13:])
+    return _LawRun(arrays, args)
+
+
+def _law_loop(
+    link: BoardLink, fd: int, law: _LawRun, spin_us: float, silent_ms: int, max_samples: int
+) -> int:
+    """Law mode's loop: samples that came with the replies first, then the compiled loop."""
+    a = law.arrays
+    data = link.take_unread()
+    if data:
+        a.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
+        length = process_rx_law(len(data), *a.arrays()[:14], *law.args)
+        link.serial.write(a.tx[:length].tobytes())
+    return law_fd_loop(fd, spin_us, silent_ms, max_samples, *a.arrays(), *law.args)
+
+
+# [loop] fields a law-evaluating board applies itself (clampcore.law.board_arrays).
+_BOARD_LOOP_FIELDS = ("max_current_pA", "spike_threshold_mV", "spike_hysteresis_mV")
+
+
+def board_owns(program: Program, element: str, field_name: str) -> bool:
+    """Whether ``element.field_name`` is a rule the board applies in law mode (the current
+    limit, spike detection, every threshold_reset field) rather than part of the law."""
+    if element == "loop":
+        return field_name in _BOARD_LOOP_FIELDS
+    return program.kinds[program.row(element)] == "threshold_reset"
+
+
+def law_lead_samples(program: Program) -> int:
+    """Law mode's look-ahead for ``program``: ``lead_ms``, shortened to fit every cell-driven
+    synapse's delay (at least lead + 1 samples: the minimum-delay rule). Raises
+    ``EngineError`` naming the synapse when a delay leaves less than ``MIN_LEAD_MS``."""
+    exp = program.experiment
+    rate = float(exp.loop["rate_hz"])
+    lead = max(1, round(exp.loop["lead_ms"] * rate / 1000.0))
+    floor = max(1, math.ceil(MIN_LEAD_MS * rate / 1000.0))
+    for e in exp.elements:
+        if e["kind"] == "synapse" and e["source"] == "cell":
+            d = delay_samples(e["delay_ms"], program.dt_ms)
+            if d - 1 < floor:
+                shortest = (floor + 1) * 1000.0 / rate
+                raise EngineError(
+                    f"refusing to start: synapse '{e['name']}': delay_ms = {e['delay_ms']:g} is "
+                    f"too short for law mode on this link; the shortest it allows is "
+                    f"{shortest:g} ms (the look-ahead must cover the link's round trip)"
+                )
+            lead = min(lead, d - 1)
+    return lead
 
 
 def _compile_before_start(arrays: Any, loop_args: tuple) -> None:
@@ -409,6 +532,7 @@ class Engine:
                 seed=self.options.seed,
                 log=self.options.rig_log,
                 realtime_priority=self.options.rig_realtime_priority,
+                link=self.options.rig_link,
                 **self.options.rig_faults,
             )
             port = self._rig.path
@@ -478,6 +602,11 @@ class Engine:
         slot = self.program.param_slot(element, field_name)
         if self.shared is None:
             raise EngineError("not running")
+        if self.law_mode_requested and board_owns(self.program, element, field_name):
+            raise EngineError(
+                f"{element}.{field_name} cannot change while running in law mode: the board "
+                "applies it from the rules it got at start (stop, change it, start again)"
+            )
         number = self.shared.post_change(MAIL_TARGETS[slot.array], slot.row, slot.col, stored)
         # Keep our copy of the experiment in step, for saving and for later validation.
         if element == "loop":
@@ -485,6 +614,11 @@ class Engine:
         else:
             self.experiment.element(element)[field_name] = value
         return number
+
+    @property
+    def law_mode_requested(self) -> bool:
+        """Whether this run asks the board to evaluate the current law (PROTOCOL.md §10)."""
+        return (self.options.mode or self.experiment.loop["mode"]) == LAW_MODE
 
     def wait(self, timeout_s: float | None = None) -> bool:
         """Wait for the loop to end by itself; True if it has."""
@@ -524,6 +658,8 @@ class Engine:
             "summary": status,
             "board": report.get("board"),
             "board_final_status": report.get("board_status"),
+            "mode": report.get("mode", CURRENT_MODE),
+            "notice": report.get("notice"),
             "scheduling": {
                 "fifo_priority": self.options.realtime_priority if report.get("realtime") else 0,
                 "cpu_dma_latency_held": bool(report.get("low_latency_held")),
@@ -549,6 +685,8 @@ class Engine:
             board_status=report.get("board_status"),
             error=error,
             scheduling=final["scheduling"],
+            mode=final["mode"],
+            notice=final["notice"],
         )
         if self._tmpdir is not None:
             self._tmpdir.cleanup()

@@ -32,6 +32,8 @@ from clampcore.elements import KIND_NEURON
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.experiment import Experiment
 from clampcore.jit import kernel
+from clampcore.law import LAW_MODE
+from clampcore.lawloop import host_flags_of
 from clampcore.program import Program, build_program
 from clampcore.step import (
     FAULT_BAD_V,
@@ -188,14 +190,26 @@ def _spike_rows(program: Program) -> np.ndarray:
     return np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], dtype=np.int64)
 
 
-def simulate(experiment: Any, duration_s: float, seed: int = 0, quantise: bool = True) -> Recording:
+def simulate(
+    experiment: Any,
+    duration_s: float,
+    seed: int = 0,
+    quantise: bool = True,
+    mode: str | None = None,
+) -> Recording:
     """Run ``experiment`` (path, TOML text, dict or Experiment) for ``duration_s`` offline.
 
     ``quantise`` passes V and I through the simulated rig's 16-bit converters and
-    the ``[amplifier]`` scaling, as a run on the simulated rig does.
+    the ``[amplifier]`` scaling, as a run on the simulated rig does. ``mode`` ("current"
+    or "law"; None: the experiment's ``[loop] mode``) chooses the split: in law mode the
+    board's arithmetic evaluates every law on time at its own V (``clampcore.linksim``'s
+    ideal clamp), which a lockstep run in law mode equals sample for sample; law mode is
+    always quantised (the board deals in counts).
     """
     program = build_program(experiment, seed=seed)
     exp = program.experiment
+    if (mode or exp.loop["mode"]) == LAW_MODE:
+        return _simulate_law(program, duration_s, seed)
     n_samples = round(duration_s * exp.loop["rate_hz"])
     if n_samples < 1:
         raise ValueError(f"duration_s = {duration_s!r}: shorter than one sample")
@@ -237,6 +251,21 @@ def simulate(experiment: Any, duration_s: float, seed: int = 0, quantise: bool =
     return recording_from_arrays(
         program, out_v, out_i, out_g, out_i_el, out_spikes, out_flags, seed=seed
     )
+
+
+def _simulate_law(program: Program, duration_s: float, seed: int) -> Recording:
+    from clampcore.linksim import run as run_link  # linksim builds on this module's layer
+
+    run = run_link(program.experiment, duration_s, mode="ideal", seed=seed)
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, program.experiment.amplifier)
+    v_mV = np.array([counts_to_mV(conv, float(c)) for c in run.adc])
+    flags = np.zeros(run.flags.size, dtype=np.int64)
+    host_flags_of(run.flags, flags)
+    spikes = np.column_stack([run.spikes, run.neuron_spikes])
+    return recording_from_arrays(
+        program, v_mV, run.i_pA, run.g_nS, run.i_element_pA, spikes, flags, seed=seed,
+        source="offline simulation, law mode",
+    )  # fmt: skip
 
 
 def recording_from_arrays(

@@ -114,6 +114,34 @@ class Program:
         return ["cell", *[n for n, k in zip(self.names, self.kinds, strict=True) if k == "neuron"]]
 
 
+def delay_samples(delay_ms: float, dt_ms: float) -> int:
+    """A synaptic delay in whole samples (nearest; 1e-9 absorbs rounding of exact halves)."""
+    return math.floor(delay_ms / dt_ms + 0.5 + 1e-9)
+
+
+def blocked_group_mg_mM(exp: Experiment) -> float:
+    """The one [Mg2+] of the cell's Mg-blocked synapses (0 when there are none).
+
+    A board evaluates one blocked law, B(V) (a_b - g_b V), whose B is a table made for one
+    [Mg2+]; synapses on the cell with different ``mg_mM`` are refused, named.
+    """
+    groups: dict[float, list[str]] = {}
+    for e in exp.elements:
+        if e["kind"] == "synapse" and e["target"] == "cell" and e["mg_mM"] > 0:
+            groups.setdefault(float(e["mg_mM"]), []).append(e["name"])
+    if len(groups) > 1:
+        names = "; ".join(f"{mg:g} mM: {', '.join(n)}" for mg, n in sorted(groups.items()))
+        first = min(groups)
+        raise ExperimentError(
+            f"synapse '{groups[max(groups)][0]}'",
+            "mg_mM",
+            max(groups),
+            f"one Mg2+ concentration for all blocked synapses on the cell, not several ({names});"
+            f" e.g. {first:g} mM for all",
+        )
+    return next(iter(groups), 0.0)
+
+
 def build_program(experiment: Any, seed: int = 0) -> Program:
     """Arrays for ``experiment`` (anything ``load_experiment`` takes).
 
@@ -153,6 +181,7 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
                 trains.extend(e["times_ms"])
             elif src == "cell":
                 p[synapse.P_SOURCE] = synapse.SRC_CELL
+                p[synapse.P_DELAY] = delay_samples(e["delay_ms"], dt_ms)
             else:
                 p[synapse.P_SOURCE] = synapse.SRC_NEURON
                 p[synapse.P_SOURCE_ROW] = names.index(src)
@@ -174,7 +203,11 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
     loop_p[step_mod.LP_SPIKE_THRESHOLD_MV] = loop["spike_threshold_mV"]
     loop_p[step_mod.LP_SPIKE_HYSTERESIS_MV] = loop["spike_hysteresis_mV"]
     loop_p[step_mod.LP_V_FAULT_MV] = loop["v_fault_mV"]
-    loop_s = np.zeros(step_mod.N_LOOP_STATE)
+    loop_p[step_mod.LP_MG_MM] = blocked_group_mg_mM(exp)
+    longest = max((int(params[r, synapse.P_DELAY]) for r in range(n)), default=0)
+    ring = 1 << (longest + 1).bit_length()  # a power of two above the longest delay
+    loop_p[step_mod.LP_SPIKE_RING] = ring
+    loop_s = np.zeros(step_mod.N_LOOP_STATE + ring)
     return Program(
         names=names,
         kinds=[e["kind"] for e in exp.elements],

@@ -74,6 +74,14 @@ ELEMENT_FIELDS: dict[str, tuple[Field, ...]] = {
         _f("tau_rec_ms", 0.0, "nonnegative", doc="depression recovery; 0 = no depression"),
         _f("tau_facil_ms", 0.0, "nonnegative", doc="facilitation decay; 0 = no facilitation"),
         _f("source", "poisson", "ref", live=False, doc="poisson | train | cell | <neuron name>"),
+        _f(
+            "delay_ms",
+            0.0,
+            "nonnegative",
+            live=False,
+            doc="cell source: synaptic delay, rounded to whole samples; 0 = the same sample "
+            "(current mode only: a board-evaluated law needs at least the look-ahead + 1 sample)",
+        ),
         _f("rate_hz", 10.0, "positive", doc="poisson source"),
         _f("times_ms", [], "times", live=False, doc="train source"),
         _f("seed", 0, "int", live=False),
@@ -139,6 +147,21 @@ SECTION_FIELDS: dict[str, tuple[Field, ...]] = {
         # membrane stays within about +-150 mV (common practice).
         _f("v_fault_mV", 200.0, "positive", live=False),
         _f("extra_delay_samples", 0, "int", live=False, doc="offline simulation only"),
+        _f(
+            "mode",
+            "current",
+            "choice",
+            live=False,
+            choices=("current", "law"),
+            doc="current: the host computes each current from the newest V it has; law: the "
+            "board evaluates the current law, sent ahead, at its own V (PROTOCOL.md §10)",
+        ),
+        # Law mode's look-ahead: a jitter buffer well above a USB link's 1-2 ms round trip
+        # (full-speed USB's 1 ms frames both ways; common practice).
+        _f("lead_ms", 10.0, "positive", live=False, doc="law mode: laws computed this far ahead"),
+        # How long the board may hold the newest law past its own sample: short, because a
+        # negative leak or a pure current is not self-limiting (PROTOCOL.md §10.3).
+        _f("lifetime_ms", 2.0, "positive", live=False, doc="law mode: then 0 pA"),
     ),
     "cell": (
         _f("model", "passive", "choice", live=False, choices=("passive", "hh")),

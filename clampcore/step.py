@@ -17,14 +17,19 @@ Order within a sample:
 2. Spike detection on V (upward crossing of spike_threshold_mV, re-armed
    when V falls below threshold - hysteresis) and the ``threshold_reset``
    elements. Either one makes the recorded cell spike at this sample.
-3. Leaks, synapses, noise and current waveforms: each element's conductance and
-   current, summed onto the cell or gathered by the neuron it targets.
-4. Virtual neurons advance with their gathered synaptic current; a spike
+3. Leaks, synapses, noise and current waveforms: each element's conductance
+   (``element_conductances``), which needs no V of the cell: it also sums the
+   cell's *current law* I(V) = a - g V + B(V) (a_b - g_b V) into ``loop_s``,
+   so the same pass serves a board that evaluates the law at its own fresh V.
+   Elements on a virtual neuron pass their current at the neuron's V to it.
+   Virtual neurons then advance with their gathered synaptic current; a spike
    reaches their synapses at the next sample.
+4. The cell's element currents at this V (``cell_currents``), summed.
 5. Guard the output: non-finite -> 0 pA and ``FAULT_NONFINITE``; beyond
    max_current_pA -> clipped and ``FLAG_LIMITED``.
 
-Public names: ``step``, the ``LP_*``/``LS_*`` loop-array columns, and the
+Public names: ``step``, ``element_conductances``, ``cell_currents``,
+``hist_record_cell_spike``, the ``LP_*``/``LS_*`` loop-array columns, and the
 ``FAULT_*``/``FLAG_*`` bits.
 """
 
@@ -35,6 +40,7 @@ import math
 import numpy as np
 
 from clampcore.elements import (
+    KIND_CURRENT,
     KIND_LEAK,
     KIND_NEURON,
     KIND_NOISE,
@@ -57,7 +63,9 @@ LP_MAX_CURRENT_PA = 1
 LP_SPIKE_THRESHOLD_MV = 2
 LP_SPIKE_HYSTERESIS_MV = 3
 LP_V_FAULT_MV = 4
-N_LOOP_PARAMS = 5
+LP_MG_MM = 5  # [Mg2+] of the cell's one Mg-blocked group (0: none); see ``element_conductances``
+LP_SPIKE_RING = 6  # length of the cell-spike history ring in ``loop_s`` (a power of two)
+N_LOOP_PARAMS = 7
 
 # Loop state (float64 array ``loop_s``).
 LS_ARMED = 0  # detector armed (V went below threshold - hysteresis)
@@ -66,7 +74,14 @@ LS_SPIKES = 2  # cell spikes counted
 LS_FLAGS = 3  # FAULT_*/FLAG_* bits of this sample
 LS_N_FAULT = 4  # samples that injected 0 pA because of a fault
 LS_N_LIMITED = 5  # samples whose command was clipped to max_current_pA
-N_LOOP_STATE = 6
+# The cell's current law at the last sample: I(V) = a - g V + B(V) (a_b - g_b V), pA with V
+# in mV, B the Mg2+ block of LP_MG_MM (every conductance is linear in V given g).
+LS_LAW_A_PA = 6
+LS_LAW_G_NS = 7
+LS_LAW_AB_PA = 8
+LS_LAW_GB_NS = 9
+LS_SPIKE_RING = 10  # first column of the cell-spike history (loop_p[LP_SPIKE_RING] columns)
+N_LOOP_STATE = 10  # fixed columns; build_program adds the ring after them
 
 FAULT_BAD_V = 1
 FAULT_NONFINITE = 2
@@ -86,6 +101,129 @@ def _detect_cell_spike(v_mV: float, loop_p: np.ndarray, loop_s: np.ndarray) -> b
 
 
 @kernel
+def hist_record_cell_spike(n: int, spiked: bool, loop_p: np.ndarray, loop_s: np.ndarray) -> None:
+    """Remember whether the cell spiked at sample ``n`` (read back by delayed synapses)."""
+    ring = int(loop_p[LP_SPIKE_RING])
+    loop_s[LS_SPIKE_RING + (n & (ring - 1))] = 1.0 if spiked else 0.0
+
+
+@kernel
+def element_conductances(
+    n: int,
+    kind: np.ndarray,
+    params: np.ndarray,
+    state: np.ndarray,
+    rng: np.ndarray,
+    trains: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+    loop_p: np.ndarray,
+    loop_s: np.ndarray,
+) -> None:
+    """Advance every element but threshold_reset to sample ``n``; sum the cell's law.
+
+    Writes each element's conductance to ``g_out`` (nS), the current of elements
+    that do not depend on the cell's V (current waveforms, elements on virtual
+    neurons) to ``i_out``, and the cell's law coefficients to ``loop_s[LS_LAW_*]``.
+    A cell-driven synapse hears the cell's spike of sample n - delay from the
+    history ring (``hist_record_cell_spike`` must have run for that sample).
+    """
+    dt_ms = loop_p[LP_DT_MS]
+    t_ms = n * dt_ms
+    ring = int(loop_p[LP_SPIKE_RING])
+    a_pA = 0.0
+    g_nS = 0.0
+    ab_pA = 0.0
+    gb_nS = 0.0
+    for r in range(kind.shape[0]):
+        k = kind[r]
+        if k in (KIND_THRESHOLD_RESET, KIND_NEURON):
+            continue
+        p = params[r]
+        if p[P_ENABLED] == 0.0:
+            g_out[r] = 0.0
+            i_out[r] = 0.0
+            continue
+        target = int(p[P_TARGET])
+        e_mV = 0.0
+        blocked = False
+        if k == KIND_LEAK:
+            g = p[_leak.P_G]
+            e_mV = p[_leak.P_E]
+        elif k == KIND_SYNAPSE:
+            heard = loop_s[LS_SPIKE_RING + ((n - int(p[_syn.P_DELAY])) & (ring - 1))] != 0.0
+            events = _syn.synapse_events(p, state[r], rng, r, trains, t_ms, dt_ms, heard, state)
+            g = _syn.synapse_conductance(p, state[r], events, t_ms, dt_ms)
+            e_mV = p[_syn.P_E]
+            blocked = p[_syn.P_MG] > 0.0
+        elif k == KIND_NOISE:
+            g = _noise.noise_conductance(p, state[r], rng, r, dt_ms)
+            e_mV = p[_noise.P_E]
+        else:  # KIND_CURRENT: a current, the same at any V
+            g = 0.0
+            i_out[r] = current_waveform(p, state[r], rng, r, t_ms, dt_ms)
+        g_out[r] = g
+        if target >= 0:
+            v_target = state[target, _neuron.S_V]
+            if k != KIND_CURRENT:
+                i_out[r] = (
+                    -g
+                    * _syn.mg_block(v_target, p[_syn.P_MG] if blocked else 0.0)
+                    * (v_target - e_mV)
+                )
+            state[target, _neuron.S_ISYN] += i_out[r]
+        elif k == KIND_CURRENT:
+            a_pA += i_out[r]
+        elif blocked:
+            ab_pA += g * e_mV
+            gb_nS += g
+        else:
+            a_pA += g * e_mV
+            g_nS += g
+    loop_s[LS_LAW_A_PA] = a_pA
+    loop_s[LS_LAW_G_NS] = g_nS
+    loop_s[LS_LAW_AB_PA] = ab_pA
+    loop_s[LS_LAW_GB_NS] = gb_nS
+    for r in range(kind.shape[0]):
+        if kind[r] != KIND_NEURON:
+            continue
+        g_out[r] = 0.0
+        i_out[r] = 0.0
+        if params[r, P_ENABLED] == 0.0:
+            state[r, _neuron.S_SPIKED] = 0.0
+            state[r, _neuron.S_ISYN] = 0.0
+            continue
+        _neuron.neuron_step(params[r], state[r], n, dt_ms)
+
+
+@kernel
+def cell_currents(
+    v_mV: float, kind: np.ndarray, params: np.ndarray, g_out: np.ndarray, i_out: np.ndarray
+) -> float:
+    """Each cell element's current at ``v_mV`` from its conductance in ``g_out``; their sum.
+
+    I = -g B(V) (V - E) for a conductance (B = 1 unless an Mg-blocked synapse);
+    a current waveform's ``i_out`` is kept as ``element_conductances`` set it.
+    """
+    total = 0.0
+    for r in range(kind.shape[0]):
+        k = kind[r]
+        if k in (KIND_THRESHOLD_RESET, KIND_NEURON):
+            continue
+        p = params[r]
+        if p[P_ENABLED] == 0.0 or int(p[P_TARGET]) >= 0:
+            continue
+        if k == KIND_LEAK:
+            i_out[r] = -g_out[r] * (v_mV - p[_leak.P_E])
+        elif k == KIND_SYNAPSE:
+            i_out[r] = -g_out[r] * _syn.mg_block(v_mV, p[_syn.P_MG]) * (v_mV - p[_syn.P_E])
+        elif k == KIND_NOISE:
+            i_out[r] = -g_out[r] * (v_mV - p[_noise.P_E])
+        total += i_out[r]
+    return total
+
+
+@kernel
 def step(
     v_mV: float,
     n: int,
@@ -101,7 +239,6 @@ def step(
 ) -> float:
     """Command current (pA) for sample ``n`` at measured ``v_mV``; see the module doc."""
     dt_ms = loop_p[LP_DT_MS]
-    t_ms = n * dt_ms
     loop_s[LS_CELL_SPIKED] = 0.0
     if not math.isfinite(v_mV) or abs(v_mV) > loop_p[LP_V_FAULT_MV]:
         loop_s[LS_FLAGS] = FAULT_BAD_V
@@ -138,51 +275,10 @@ def step(
         loop_s[LS_CELL_SPIKED] = 1.0
         loop_s[LS_SPIKES] += 1.0
 
-    # 3. Conductances and currents.
-    for r in range(n_el):
-        k = kind[r]
-        if k in (KIND_THRESHOLD_RESET, KIND_NEURON):
-            continue
-        p = params[r]
-        if p[P_ENABLED] == 0.0:
-            g_out[r] = 0.0
-            i_out[r] = 0.0
-            continue
-        target = int(p[P_TARGET])
-        v_target = v_mV if target < 0 else state[target, _neuron.S_V]
-        if k == KIND_LEAK:
-            g = p[_leak.P_G]
-            i = _leak.leak_current(p, v_target)
-        elif k == KIND_SYNAPSE:
-            events = _syn.synapse_events(
-                p, state[r], rng, r, trains, t_ms, dt_ms, cell_spiked, state
-            )
-            g = _syn.synapse_conductance(p, state[r], events, t_ms, dt_ms)
-            i = -g * _syn.mg_block(v_target, p[_syn.P_MG]) * (v_target - p[_syn.P_E])
-        elif k == KIND_NOISE:
-            g = _noise.noise_conductance(p, state[r], rng, r, dt_ms)
-            i = -g * (v_target - p[_noise.P_E])
-        else:  # KIND_CURRENT
-            g = 0.0
-            i = current_waveform(p, state[r], rng, r, t_ms, dt_ms)
-        g_out[r] = g
-        i_out[r] = i
-        if target < 0:
-            total += i
-        else:
-            state[target, _neuron.S_ISYN] += i
-
-    # 4. Virtual neurons.
-    for r in range(n_el):
-        if kind[r] != KIND_NEURON:
-            continue
-        g_out[r] = 0.0
-        i_out[r] = 0.0
-        if params[r, P_ENABLED] == 0.0:
-            state[r, _neuron.S_SPIKED] = 0.0
-            state[r, _neuron.S_ISYN] = 0.0
-            continue
-        _neuron.neuron_step(params[r], state[r], n, dt_ms)
+    # 3-4. Conductances (and the cell's current law), then the currents at this V.
+    hist_record_cell_spike(n, cell_spiked, loop_p, loop_s)
+    element_conductances(n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+    total += cell_currents(v_mV, kind, params, g_out, i_out)
 
     # 5. Output guard.
     limit = loop_p[LP_MAX_CURRENT_PA]

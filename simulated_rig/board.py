@@ -78,7 +78,7 @@ import tty
 from collections.abc import Callable
 from dataclasses import asdict, dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 from numba import config as numba_config
@@ -92,10 +92,11 @@ from clampcore.calibration import (
 )
 from clampcore.experiment import Experiment, load_experiment
 from clampcore.jit import kernel
+from clampcore.links import LINKS
 from clampcore.realtime import fifo_scheduling, fine_timer_slack
 from clampcore.rng import seed_state, uniform
 from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_ns, sleep_until_ns
-from firmware_protocol import codec
+from firmware_protocol import boardlaw, codec, lawmsg
 from firmware_protocol.codec import (
     COMMAND_ANSWERS,
     COMMAND_NFIELDS,
@@ -253,6 +254,10 @@ S_PATIENCE_NS = 47  # lockstep: wall time without an answer before the watchdog 
 S_EV_LOST = 48  # events that did not fit in the event buffer
 S_WAKE_NS = 49  # wall clock: sleep until this long before a tick, then watch the clock
 S_REALTIME = 50  # 1 under SCHED_FIFO: then never watch the clock more than a quarter period
+S_LAW_MODE = 51  # 1 after BOARD_RULES: the board evaluates queued laws (PROTOCOL.md §10)
+S_LAW_SEEN = 52  # lockstep: the newest sample the host had when it sent its last LAWS
+S_LAWS_LATE = 53  # laws that arrived after their own sample (not applied)
+S_LAWS_AHEAD = 54  # laws too far ahead for the queue (not applied)
 N_ST = 64
 
 # Float parameters (float64 array).
@@ -282,6 +287,227 @@ _EVENT_NAMES = {
 # ---------------------------------------------------------------------------
 # Compiled per-sample path
 # ---------------------------------------------------------------------------
+# ---------------------------------------------------------------------------
+# Link models on the wall clock (clampcore.links): bytes are held until the link
+# would have delivered them.
+# ---------------------------------------------------------------------------
+_LINK_BYTES = 1 << 18  # bytes in flight each way: far more than 20 ms at 50 kHz
+_LINK_CHUNKS = 1 << 14  # writes (or reads) in flight each way
+LN_ON, LN_FRAME_NS, LN_TRANSIT_NS, LN_JITTER_NS = 0, 1, 2, 3
+# ends[i, 0]: ring position after chunk i; ends[i, 1]: when it is delivered (ns).
+Q_HEAD, Q_TAIL, Q_BYTES_IN, Q_BYTES_OUT, Q_LAST_NS = 0, 1, 2, 3, 4
+
+
+class LinkShape(NamedTuple):
+    """A link model's timing and the bytes it holds, each way (out: to the host)."""
+
+    p: np.ndarray  # int64[4]: LN_*
+    rng: np.ndarray  # uint64[1]: jitter stream
+    obuf: np.ndarray  # uint8[_LINK_BYTES]
+    oends: np.ndarray  # int64[_LINK_CHUNKS, 2]
+    oq: np.ndarray  # int64[5]: Q_*
+    ibuf: np.ndarray
+    iends: np.ndarray
+    iq: np.ndarray
+
+
+def new_link_shape(link_name: str | None, seed: int) -> LinkShape:
+    """The rig's link model ``link_name`` (a ``clampcore.links.LINKS`` name; None: direct pty)."""
+    p = np.zeros(4, dtype=np.int64)
+    if link_name is not None:
+        if link_name not in LINKS:
+            raise ValueError(f"link {link_name!r}: one of {', '.join(LINKS)}")
+        link = LINKS[link_name]
+        if link.baud > 0:
+            raise ValueError(f"link {link_name!r}: the wall-clock rig models USB links only")
+        p[LN_ON] = 1
+        p[LN_FRAME_NS] = round(link.frame_us * _NS_PER_US)
+        p[LN_TRANSIT_NS] = round(link.transit_us * _NS_PER_US)
+        p[LN_JITTER_NS] = round(link.jitter_us * _NS_PER_US)
+    return LinkShape(
+        p,
+        np.array([seed_state(seed, stream=0xF2)], dtype=np.uint64),
+        np.zeros(_LINK_BYTES, dtype=np.uint8),
+        np.zeros((_LINK_CHUNKS, 2), dtype=np.int64),
+        np.zeros(5, dtype=np.int64),
+        np.zeros(_LINK_BYTES, dtype=np.uint8),
+        np.zeros((_LINK_CHUNKS, 2), dtype=np.int64),
+        np.zeros(5, dtype=np.int64),
+    )
+
+
+@kernel
+def _link_due(ln: LinkShape, q: np.ndarray, now: int) -> int:
+    """When bytes handed to the link now are delivered: after the transit, at the next
+    (micro)frame boundary, plus jitter, and never before what went in earlier."""
+    t = now + ln.p[LN_TRANSIT_NS]
+    frame = ln.p[LN_FRAME_NS]
+    if frame > 0:
+        t = (t // frame + 1) * frame
+    if ln.p[LN_JITTER_NS] > 0:
+        t += int(uniform(ln.rng, 0) * ln.p[LN_JITTER_NS])
+    t = max(t, q[Q_LAST_NS])
+    q[Q_LAST_NS] = t
+    return t
+
+
+@kernel
+def _link_put(
+    ln: LinkShape,
+    buf: np.ndarray,
+    ends: np.ndarray,
+    q: np.ndarray,
+    src: np.ndarray,
+    n: int,
+    now: int,
+) -> bool:
+    """Queue src[:n]; False when the link is full (the bytes are lost, as on an overrun)."""
+    full = q[Q_TAIL] - q[Q_HEAD] >= ends.shape[0]
+    if full or q[Q_BYTES_IN] - q[Q_BYTES_OUT] + n > buf.shape[0]:
+        return False
+    mask = buf.shape[0] - 1
+    for i in range(n):
+        buf[(q[Q_BYTES_IN] + i) & mask] = src[i]
+    q[Q_BYTES_IN] += n
+    slot = q[Q_TAIL] & (ends.shape[0] - 1)
+    ends[slot, 0] = q[Q_BYTES_IN]
+    ends[slot, 1] = _link_due(ln, q, now)
+    q[Q_TAIL] += 1
+    return True
+
+
+@kernel
+def _link_send(fd: int, ln: LinkShape, tx: np.ndarray, n: int, now: int) -> int:
+    """Write tx[:n] to the host now, or hand it to the link model; bytes taken (or -1)."""
+    if ln.p[LN_ON] == 0:
+        return fd_write(fd, tx, 0, n)
+    return n if _link_put(ln, ln.obuf, ln.oends, ln.oq, tx, n, now) else -1
+
+
+@kernel
+def _link_flush(fd: int, ln: LinkShape, now: int) -> None:
+    """Deliver to the host every byte the link model has due by ``now``."""
+    q = ln.oq
+    mask = ln.obuf.shape[0] - 1
+    while q[Q_HEAD] < q[Q_TAIL]:
+        slot = q[Q_HEAD] & (ln.oends.shape[0] - 1)
+        if ln.oends[slot, 1] > now:
+            return
+        end = ln.oends[slot, 0]
+        while q[Q_BYTES_OUT] < end:
+            start = q[Q_BYTES_OUT] & mask
+            run = min(end - q[Q_BYTES_OUT], ln.obuf.shape[0] - start)
+            w = fd_write(fd, ln.obuf, start, run)
+            if w <= 0:
+                q[Q_BYTES_OUT] = end  # the host is not reading: lost, as on a serial line
+                break
+            q[Q_BYTES_OUT] += w
+        q[Q_HEAD] += 1
+
+
+@kernel
+def _link_read(fd: int, ln: LinkShape, chunk: np.ndarray, now: int) -> int:
+    """Bytes from the host: read now, or what the link model has delivered by ``now``."""
+    if ln.p[LN_ON] == 0:
+        return fd_read(fd, chunk, 0, chunk.shape[0])
+    got = fd_read(fd, chunk, 0, chunk.shape[0])
+    if got > 0:
+        _link_put(ln, ln.ibuf, ln.iends, ln.iq, chunk, got, now)
+    q = ln.iq
+    mask = ln.ibuf.shape[0] - 1
+    n = 0
+    while q[Q_HEAD] < q[Q_TAIL] and n < chunk.shape[0]:
+        slot = q[Q_HEAD] & (ln.iends.shape[0] - 1)
+        if ln.iends[slot, 1] > now:
+            break
+        end = ln.iends[slot, 0]
+        while q[Q_BYTES_OUT] < end and n < chunk.shape[0]:
+            chunk[n] = ln.ibuf[q[Q_BYTES_OUT] & mask]
+            q[Q_BYTES_OUT] += 1
+            n += 1
+        if q[Q_BYTES_OUT] == end:
+            q[Q_HEAD] += 1
+    if n > 0:
+        return n
+    return got if got < 0 else 0
+
+
+# The board's law queue: a power of two above any look-ahead the host asks for (the host's
+# default 10 ms is 500 samples at 50 kHz).
+LAW_QUEUE = 1024
+BLOCK_POINTS = 1025  # room for clampcore.law.block_table on a 16-bit ADC
+
+
+class LawBoard(NamedTuple):
+    """What a law-evaluating board holds (``firmware_protocol.boardlaw`` arrays, its queue)."""
+
+    bf: np.ndarray  # float32[N_BF]
+    bi: np.ndarray  # int64[N_BI]
+    bs: np.ndarray  # int64[N_BS]
+    law: np.ndarray  # float32[4], the law in force
+    table: np.ndarray  # float32[BLOCK_POINTS]
+    qbits: np.ndarray  # uint32[LAW_QUEUE, 4]: the queued laws' float32 bits
+    qlaw: np.ndarray  # float32 view of qbits
+    qdue: np.ndarray  # int64[LAW_QUEUE]: the sample each slot's law is for (-1: empty)
+    fields: np.ndarray  # int64[lawmsg.N_FIELDS]
+    one: np.ndarray  # int64[3]: adc, dac, flags of the sample being sent
+
+
+def new_law_board() -> LawBoard:
+    bf, bi, bs, law, _ = boardlaw.new_board_arrays()
+    qbits = np.zeros((LAW_QUEUE, 4), dtype=np.uint32)
+    return LawBoard(
+        bf,
+        bi,
+        bs,
+        law,
+        np.ones(BLOCK_POINTS, dtype=np.float32),
+        qbits,
+        qbits.view(np.float32),
+        np.full(LAW_QUEUE, -1, dtype=np.int64),
+        np.zeros(lawmsg.N_FIELDS, dtype=np.int64),
+        np.zeros(3, dtype=np.int64),
+    )
+
+
+@kernel
+def _on_laws(frame: np.ndarray, n: int, st: np.ndarray, lb: LawBoard, ts: np.ndarray) -> None:
+    """Queue the laws of a LAWS frame (READY or RUNNING); late or too-early ones are counted."""
+    count = lawmsg.decode_laws(frame, n, lb.fields)
+    if count < 0 or st[S_STATE] == STATE_UNCONFIGURED:
+        st[S_UNKNOWN] += 1
+        st[S_FLAGS] |= STATUS_RX_ERROR
+        return
+    blocked = lb.fields[lawmsg.LAWS_BLOCKED] != 0
+    taken = st[S_COUNTER] if st[S_STATE] == STATE_RUNNING else 0
+    first = lb.fields[lawmsg.LAWS_FIRST]
+    for i in range(count):
+        sample = first + i
+        if sample < taken:
+            st[S_LAWS_LATE] += 1
+            st[S_FLAGS] |= STATUS_LATE
+            continue
+        if sample - taken >= LAW_QUEUE:
+            st[S_LAWS_AHEAD] += 1
+            st[S_FLAGS] |= STATUS_RX_ERROR
+            continue
+        slot = sample & (LAW_QUEUE - 1)
+        for j in range(4 if blocked else 2):
+            lb.qbits[slot, j] = lawmsg.law_word(frame, blocked, i, j)
+        if not blocked:
+            lb.qbits[slot, 2] = 0
+            lb.qbits[slot, 3] = 0
+        lb.qdue[slot] = sample
+    st[S_APPLIED] += count
+    st[S_LAW_SEEN] = lb.fields[lawmsg.LAWS_SEEN]
+    if st[S_STATE] == STATE_RUNNING:
+        st[S_LAST_RX_NS] = monotonic_ns(ts)
+        if st[S_TRIPPED] != 0:
+            st[S_TRIPPED] = 0
+        if st[S_LOCKSTEP] != 0 and st[S_LAW_SEEN] >= taken - 1:
+            st[S_WAITING] = 0
+
+
 @kernel
 def _put_le(buf: np.ndarray, at: int, value: int, nbytes: int) -> None:
     for j in range(nbytes):
@@ -445,6 +671,7 @@ def _on_raw_frame(
     frng: np.ndarray,
     ev: np.ndarray,
     ts: np.ndarray,
+    lb: LawBoard,
 ) -> bool:
     """Handle one frame raw[:st[S_RAW_N]] (wire bytes, delimiter not included).
 
@@ -455,7 +682,7 @@ def _on_raw_frame(
     running = st[S_STATE] == STATE_RUNNING
     if running and (ff[F_DROP_RX] > 0.0 or ff[F_CORRUPT_RX] > 0.0):
         m = cobs_decode(raw, n, scratch)
-        if m >= 3 and (scratch[0] == MSG_COMMAND or scratch[0] == MSG_KEEPALIVE):
+        if m >= 3 and scratch[0] in (MSG_COMMAND, MSG_KEEPALIVE, lawmsg.MSG_LAWS):
             seq = int(scratch[1]) | (int(scratch[2]) << 8)
             u = uniform(frng, 0)
             if u < ff[F_DROP_RX]:
@@ -479,6 +706,12 @@ def _on_raw_frame(
     typ = frame[0]
     if typ == MSG_COMMAND:
         _on_command(frame, m, st, ev, dac_tmp, fields, ts)
+        return False
+    if typ == lawmsg.MSG_LAWS:
+        _on_laws(frame, m, st, lb, ts)
+        return False
+    if typ == lawmsg.MSG_ZERO and m == MIN_PAYLOAD + 1:
+        lb.bs[boardlaw.BS_HOLD_ZERO] = 1 if frame[3] != 0 else 0  # on arrival, ahead of laws
         return False
     if typ == MSG_KEEPALIVE and m == MIN_PAYLOAD:
         if running:
@@ -509,13 +742,15 @@ def _pump(
     frng: np.ndarray,
     ev: np.ndarray,
     ts: np.ndarray,
+    lb: LawBoard,
+    ln: LinkShape,
 ) -> bool:
     """Read and handle everything that has arrived; True when a message waits for Python."""
     while True:
         pos = st[S_CHUNK_POS]
         n = st[S_CHUNK_N]
         if pos >= n:
-            got = fd_read(fd, chunk, 0, chunk.shape[0])
+            got = _link_read(fd, ln, chunk, monotonic_ns(ts))
             if got <= 0:
                 st[S_CHUNK_POS] = 0
                 st[S_CHUNK_N] = 0
@@ -542,7 +777,7 @@ def _pump(
             if st[S_RAW_N] == 0:
                 continue  # repeated delimiter: an empty frame, ignored
             wants_python = _on_raw_frame(
-                st, ff, raw, frame, scratch, ctrl, dstate, dbuf, dac_tmp, fields, frng, ev, ts
+                st, ff, raw, frame, scratch, ctrl, dstate, dbuf, dac_tmp, fields, frng, ev, ts, lb
             )
             st[S_RAW_N] = 0
             if wants_python:
@@ -569,8 +804,15 @@ def _tick(
     conv: np.ndarray,
     log: np.ndarray,
     ev: np.ndarray,
+    lb: LawBoard,
+    ln: LinkShape,
 ) -> None:
-    """Take sample st[S_COUNTER]: watchdog, cell, ADC, SAMPLE, ground truth."""
+    """Take sample st[S_COUNTER]: watchdog, cell, ADC, SAMPLE, ground truth.
+
+    In law mode (PROTOCOL.md §10) the DAC count that drove the cell since the last tick
+    was computed at that tick from its own ADC count; this tick puts the law queued for
+    it in force, evaluates it at the fresh count and sends SAMPLES.
+    """
     k = st[S_COUNTER]
     now = monotonic_ns(ts)
     clock_us = (now - st[S_EPOCH_NS]) // _NS_PER_US
@@ -581,12 +823,13 @@ def _tick(
             st, ev, EV_WATCHDOG_TRIP, (st[S_LAST_RX_NS] - st[S_EPOCH_NS]) // _NS_PER_US, clock_us
         )
         nw = encode_status(st, 0, RESULT_REPORT, body, tx)
-        if fd_write(fd, tx, 0, nw) != nw:
+        if _link_send(fd, ln, tx, nw, now) != nw:
             st[S_TX_FAILED] += 1
         if st[S_LOCKSTEP] != 0:
             st[S_BASE_NS] = now  # no answers: sample on the wall clock from here
             st[S_BASE_K] = k
             due_ns = now
+    law_mode = st[S_LAW_MODE] != 0
     fault = st[S_HAVE_CMD] == 0 or st[S_TRIPPED] != 0
     counts = st[S_FAULT_COUNTS] if fault else st[S_CMD_COUNTS]
     i_pA = counts_to_pA(conv, counts)
@@ -594,6 +837,20 @@ def _tick(
         cell_advance(cell_kind, cell_p, cell_s, cell_rng, i_pA, ff[F_DT_MS])
     v_mV = cell_measure_mV(cell_kind, cell_p, cell_s, cell_rng, i_pA)
     adc[0] = mV_to_counts(conv, v_mV)
+    if law_mode:
+        slot = k & (LAW_QUEUE - 1)
+        if lb.qdue[slot] == k:
+            boardlaw.board_set_law(lb.bs, lb.law, lb.qlaw[slot], k)
+            lb.qdue[slot] = -1
+        packed = boardlaw.board_eval(adc[0], k, lb.bf, lb.bi, lb.bs, lb.law, lb.table)
+        out_flags = packed >> 16
+        if st[S_TRIPPED] != 0:  # the link watchdog overrides every law
+            out_flags |= boardlaw.BF_FLAG_FAULT
+        st[S_CMD_COUNTS] = packed & 0xFFFF
+        st[S_HAVE_CMD] = 0 if out_flags & boardlaw.BF_FLAG_FAULT else 1
+        lb.one[0] = adc[0]
+        lb.one[1] = st[S_FAULT_COUNTS] if st[S_TRIPPED] != 0 else st[S_CMD_COUNTS]
+        lb.one[2] = out_flags
     status = _sticky(st) | st[S_FLAGS]
     st[S_FLAGS] = 0
     if st[S_LOCKSTEP] != 0:
@@ -602,7 +859,12 @@ def _tick(
     else:
         lag_ns = now - due_ns
     cmd_seq = st[S_CMD_SEQ] if st[S_HAVE_CMD] != 0 else 0
-    n = encode_sample(st[S_TX_SEQ], k & _M32, clock_us & _M32, cmd_seq, status, adc, tx)
+    if law_mode:
+        n = lawmsg.encode_samples(
+            st[S_TX_SEQ], k, clock_us, status, 1, lb.one[0:1], lb.one[1:2], lb.one[2:3], tx
+        )
+    else:
+        n = encode_sample(st[S_TX_SEQ], k & _M32, clock_us & _M32, cmd_seq, status, adc, tx)
     st[S_TX_SEQ] = (st[S_TX_SEQ] + 1) & 0xFFFF
     flags = 0
     send = True
@@ -616,7 +878,7 @@ def _tick(
             _flip_data_byte(tx, n - 1, frng, 1)
             flags |= LOG_TX_CORRUPTED
             st[S_TX_CORRUPTED] += 1
-    if send and fd_write(fd, tx, 0, n) != n:
+    if send and _link_send(fd, ln, tx, n, now) != n:
         flags |= LOG_TX_FAILED
         st[S_TX_FAILED] += 1
     period_ns = _NS_PER_S // st[S_RATE_HZ]
@@ -639,7 +901,7 @@ def _tick(
         row["dac_counts"] = counts
         row["status"] = status
         row["flags"] = flags
-        if fault:
+        if fault or law_mode:
             row["cmd_seq"] = NO_COMMAND
             row["cmd_answers"] = NO_COMMAND
         else:
@@ -682,6 +944,8 @@ def rig_serve(
     conv: np.ndarray,
     log: np.ndarray,
     ev: np.ndarray,
+    lb: LawBoard,
+    ln: LinkShape,
 ) -> int:
     """Serve the port until Python is needed; returns an ``R_*`` reason.
 
@@ -692,6 +956,7 @@ def rig_serve(
     while True:
         if st[S_STOP] != 0:
             return R_STOP
+        _link_flush(fd, ln, monotonic_ns(ts))
         if _pump(
             fd,
             st,
@@ -708,6 +973,8 @@ def rig_serve(
             frng,
             ev,
             ts,
+            lb,
+            ln,
         ):
             return R_CONTROL
         now = monotonic_ns(ts)
@@ -771,6 +1038,8 @@ def rig_serve(
             conv,
             log,
             ev,
+            lb,
+            ln,
         )
         if now >= budget_end:
             return R_BUDGET
@@ -858,6 +1127,7 @@ class Board:
         lockstep_patience_s: float = LOCKSTEP_PATIENCE_S,
         wake_us: int | None = None,
         realtime_priority: int = 0,
+        link: str | None = None,
     ) -> None:
         if not (isinstance(lockstep_patience_s, int | float) and lockstep_patience_s >= 0):
             raise ValueError(f"lockstep_patience_s must be >= 0, got {lockstep_patience_s!r}")
@@ -933,6 +1203,11 @@ class Board:
         for _ in range(_LOG_SPARES):
             self._spare_logs.put(np.zeros(_LOG_ROWS, dtype=LOG_DTYPE))
         self._ev = np.zeros((_EVENTS, _EV_COLS), dtype=np.int64)
+        self.law_board = new_law_board()
+        if link is not None and clock != "wall":
+            raise ValueError("a link model needs the wall clock (lockstep time is virtual)")
+        self.link_name = link
+        self.link = new_link_shape(link, seed)
         self._stop_requested = False
         self._writer: LogWriter | None = None
         if log_path is not None:
@@ -1007,6 +1282,8 @@ class Board:
             self.conv,
             self._log,
             self._ev,
+            self.law_board,
+            self.link,
         )
         self._drain()
         if reason == R_CONTROL:
@@ -1057,6 +1334,9 @@ class Board:
         if msg_type == MSG_CONFIGURE:
             self._on_configure(payload, seq)
             return
+        if msg_type in (lawmsg.MSG_BOARD_RULES, lawmsg.MSG_BLOCK_TABLE):
+            self._on_law_setup(msg_type, payload[3:-2], seq)
+            return
         if len(payload) != MIN_PAYLOAD:
             self._unknown(msg_type)  # every other host message has an empty body
         elif msg_type == MSG_GET_HELLO:
@@ -1071,6 +1351,26 @@ class Board:
             self._send_status(seq, RESULT_OK)
         else:
             self._unknown(msg_type)
+
+    def _on_law_setup(self, msg_type: int, body: bytes, seq: int) -> None:
+        """BOARD_RULES or BLOCK_TABLE (READY only): the board will evaluate laws."""
+        lb = self.law_board
+        if self.st[S_STATE] != STATE_READY:
+            self._reply(seq, RESULT_BAD_STATE)
+            return
+        try:
+            if msg_type == lawmsg.MSG_BOARD_RULES:
+                lawmsg.parse_rules(body, lb.bf, lb.bi)
+                lb.bi[boardlaw.BI_DAC_TOP] = self.st[S_DAC_MAX]
+                lb.bi[boardlaw.BI_FAULT_COUNTS] = self.st[S_FAULT_COUNTS]
+                self.st[S_LAW_MODE] = 1
+                self._log_events([self._event("law_mode", rules=body.hex())])
+            else:
+                lawmsg.parse_table(body, lb.table)
+        except ValueError:
+            self._unknown(msg_type)
+            return
+        self._reply(seq, RESULT_OK)
 
     def _on_configure(self, payload: bytes, seq: int) -> None:
         try:
@@ -1102,6 +1402,8 @@ class Board:
             st[S_STATE] = STATE_READY
             st[S_HAVE_CMD] = 0
             st[S_TRIPPED] = 0
+            st[S_LAW_MODE] = 0  # until BOARD_RULES come again
+            self.law_board.qdue[:] = -1
         self._log_events(
             [
                 self._event(
@@ -1148,8 +1450,14 @@ class Board:
             S_RX_CORRUPTED,
             S_TX_FAILED,
             S_EV_LOST,
+            S_LAW_SEEN,
+            S_LAWS_LATE,
+            S_LAWS_AHEAD,
         ):
             st[i] = 0  # counters cover one run
+        lb = self.law_board
+        lb.bs[:] = boardlaw.new_board_arrays()[2]  # detector armed, no law, zero request off
+        st[S_CMD_COUNTS] = st[S_FAULT_COUNTS]  # laws queued in READY for samples 0.. stay
         st[S_RUN] += 1
         self._log_events(
             [

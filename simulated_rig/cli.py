@@ -26,6 +26,7 @@ import sys
 import threading
 from typing import Any
 
+from clampcore.links import LINKS
 from clampcore.realtime import LOOP_FIFO_PRIORITY, RIG_FIFO_PRIORITY
 from simulated_rig.board import (
     LOCKSTEP_PATIENCE_S,
@@ -127,6 +128,13 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
         metavar="PRIO",
         help="SCHED_FIFO priority, where permitted; 0: ordinary scheduling "
         f"(e.g. {RIG_FIFO_PRIORITY}, above the host loop's {LOOP_FIFO_PRIORITY}; default 0)",
+    )
+    parser.add_argument(
+        "--link",
+        choices=[name for name, link in LINKS.items() if link.baud == 0 and name != "ideal"],
+        default=None,
+        help="wall clock: hold bytes as this link would (README: choosing a link); "
+        "default: the pseudo-terminal alone",
     )
     parser.add_argument("--log", metavar="FILE", help="write the ground-truth log here")
     parser.add_argument(
@@ -242,6 +250,7 @@ def run(args: argparse.Namespace) -> int:
             lockstep_patience_s=args.lockstep_patience,
             wake_us=args.wake_us,
             realtime_priority=args.realtime,
+            link=args.link,
         )
     except (OSError, ValueError) as exc:
         print(f"simulated rig: {exc}", file=sys.stderr)

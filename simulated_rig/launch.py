@@ -108,6 +108,7 @@ def start_rig(
     lockstep_patience_s: float | None = None,
     wake_us: int | None = None,
     realtime_priority: int | None = None,
+    link: str | None = None,
     env: dict[str, str] | None = None,
     timeout_s: float = _START_TIMEOUT_S,
 ) -> RigProcess:
@@ -115,8 +116,8 @@ def start_rig(
 
     ``rate_hz`` is the highest rate the rig accepts (default 50 kHz); the rate itself
     comes from the host's CONFIGURE.  The fault options, ``lockstep_patience_s``,
-    ``wake_us`` and ``realtime_priority`` are those of the command line
-    (``--lockstep-patience``, ``--wake-us``, ``--realtime``; None: its default).
+    ``wake_us``, ``realtime_priority`` and ``link`` are those of the command line
+    (``--lockstep-patience``, ``--wake-us``, ``--realtime``, ``--link``; None: its default).
     Raises ``RigStartError`` with the rig's error output if it exits or stays silent.
     """
     cmd = [sys.executable, "-m", "simulated_rig"]
@@ -133,6 +134,8 @@ def start_rig(
         cmd += ["--wake-us", str(wake_us)]
     if realtime_priority is not None:
         cmd += ["--realtime", str(realtime_priority)]
+    if link is not None:
+        cmd += ["--link", link]
     for name, value in (
         ("--corrupt-rx", corrupt_rx),
         ("--drop-rx", drop_rx),

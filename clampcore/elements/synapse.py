@@ -24,7 +24,8 @@ Sources: ``poisson`` (a Poisson-distributed count of events each sample, mean
 rate dt, so that the count over any time T has mean rate T and Fano factor 1 as a
 Poisson process has: Cox & Lewis 1966, The Statistical Analysis of Series of
 Events), ``train`` (listed times, each counted at the sample nearest
-to it), ``cell`` (the recorded cell's detected spikes, same sample) and a
+to it), ``cell`` (the recorded cell's detected spikes, ``delay_ms`` later: the same
+sample by default) and a
 virtual neuron (its spike of the previous sample).
 
 Public names: ``COLUMNS``, the ``SRC_*`` and ``KIN_*`` codes, ``synapse_events``,
@@ -61,6 +62,7 @@ P_SOURCE_ROW = 13  # row of the presynaptic neuron element
 P_RATE = 14
 P_TRAIN_START = 15  # first index of this synapse's times in the program's trains array
 P_TRAIN_COUNT = 16
+P_DELAY = 17  # cell source: synaptic delay in whole samples (from delay_ms)
 COLUMNS = {
     "g_max_nS": P_G_MAX,
     "e_mV": P_E,

@@ -1,0 +1,377 @@
+"""One experiment over one link model, three ways: ideal, current mode, law mode.
+
+Time is the board's: sample k is taken at k·dt. A ``clampcore.links.Schedule``
+says when the host handles which samples and when what it sends reaches the board.
+Per tick k the board advances the model cell over (t_{k-1}, t_k] with the current
+its DAC holds, reads V_k through its ADC, and writes its DAC:
+
+- **law mode** (protocol v2): the host computed the law for sample k ahead (at its
+  wake-up for some newest sample m, all laws up to m + lead); if that law has
+  arrived by t_k, the board puts it in force; it evaluates the law in force at its
+  fresh ADC count (``firmware_protocol.boardlaw.board_eval``: threshold-and-reset,
+  spike detection, limit, lifetime) and the DAC holds the result over (t_k, t_{k+1}].
+  A cell-driven synapse hears the board's spike flag of sample s - delay.
+- **current mode** (protocol v1's split, kept for comparison): the host runs
+  ``clampcore.step.step`` (threshold_reset and detection included) on every sample
+  it receives and sends the current for the newest; a command that arrives within
+  (t_k, t_{k+1}] is in force over that interval (the simulated rig's convention);
+  the board only limits it and applies the lifetime.
+- **ideal**: law mode over the ``ideal`` link with a lead of one sample: every law
+  on time, the zero-latency clamp with the board's arithmetic.
+
+With the same seed every element draws the same random numbers in every mode, so
+the runs differ only by what the link does. ``run`` returns a ``LinkRun``.
+
+Public names: ``LinkRun``, ``run``, ``link_loop``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from clampcore.calibration import (
+    DEFAULT_BOARD_ADC,
+    DEFAULT_BOARD_DAC,
+    conversion_array,
+    counts_to_mV,
+    counts_to_pA,
+    mV_to_counts,
+)
+from clampcore.elements import KIND_NEURON, KIND_SYNAPSE
+from clampcore.elements import synapse as _syn
+from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.jit import kernel
+from clampcore.law import (
+    CURRENT_MODE,
+    LAW_MODE,
+    board_arrays,
+    current_to_law,
+    law_scale,
+    law_to_counts,
+)
+from clampcore.lawloop import board_reset_current
+from clampcore.links import LINKS, Link, schedule
+from clampcore.program import build_program
+from clampcore.step import (
+    LS_CELL_SPIKED,
+    LS_LAW_A_PA,
+    LS_LAW_AB_PA,
+    LS_LAW_G_NS,
+    LS_LAW_GB_NS,
+    cell_currents,
+    element_conductances,
+    hist_record_cell_spike,
+    step,
+)
+from firmware_protocol.boardlaw import (
+    BF_FLAG_RESET,
+    BF_FLAG_SPIKE,
+    BI_FAULT_COUNTS,
+    board_eval,
+    board_set_law,
+)
+from simulated_rig.cells import cell_advance, cell_measure_mV, cell_v_true_mV, make_cell
+
+_US_PER_MS = 1000.0
+
+
+@kernel
+def link_loop(
+    law_mode: bool,
+    lead: int,
+    wake_newest: np.ndarray,
+    wake_us: np.ndarray,
+    arrive_us: np.ndarray,
+    conv: np.ndarray,
+    scale: np.ndarray,
+    cell_kind: int,
+    cell_p: np.ndarray,
+    cell_s: np.ndarray,
+    cell_rng: np.ndarray,
+    kind: np.ndarray,
+    params: np.ndarray,
+    state: np.ndarray,
+    rng: np.ndarray,
+    trains: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+    loop_p: np.ndarray,
+    loop_s: np.ndarray,
+    bf: np.ndarray,
+    bi: np.ndarray,
+    bs: np.ndarray,
+    law: np.ndarray,
+    table: np.ndarray,
+    laws: np.ndarray,
+    law_arrive_us: np.ndarray,
+    cmd_pA: np.ndarray,
+    new_law: np.ndarray,
+    out_adc: np.ndarray,
+    out_v_true: np.ndarray,
+    out_i: np.ndarray,
+    out_flags: np.ndarray,
+    out_g: np.ndarray,
+    out_i_el: np.ndarray,
+    neuron_rows: np.ndarray,
+    out_nspk: np.ndarray,
+    counters: np.ndarray,
+) -> None:
+    """Run every sample of ``out_adc``; see the module docstring. Outputs in place.
+
+    ``laws`` (n + lead + 1, 4) and ``law_arrive_us`` hold the laws the host computed
+    and when each reaches the board; ``cmd_pA`` (one per wake-up) and ``new_law``
+    (float32[4]) are scratch space. ``counters``: [0] late spikes (heard after the
+    law they should have changed was sent), [1] the newest sample laws exist for.
+    """
+    n = out_adc.shape[0]
+    dt_ms = loop_p[0]
+    dt_us = dt_ms * _US_PER_MS
+    hi = -1  # laws exist for samples 0..hi
+    seen = -1  # the host has samples 0..seen
+    w = 0  # next wake-up
+    delivered = 0  # current mode: next command to deliver
+    if law_mode:
+        for s in range(min(lead + 1, n)):  # sent before the start
+            element_conductances(s, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+            law_to_counts(
+                scale,
+                loop_s[LS_LAW_A_PA],
+                loop_s[LS_LAW_G_NS],
+                loop_s[LS_LAW_AB_PA],
+                loop_s[LS_LAW_GB_NS],
+                laws[s],
+            )
+            law_arrive_us[s] = 0.0
+            _put_row(out_g, s, g_out)
+            _put_row(out_i_el, s, i_out)
+            _neuron_spikes(state, neuron_rows, out_nspk, s)
+            hi = s
+    i_applied = counts_to_pA(conv, bi[BI_FAULT_COUNTS])
+    for k in range(n):
+        t_us = k * dt_us
+        if k > 0:
+            cell_advance(cell_kind, cell_p, cell_s, cell_rng, i_applied, dt_ms)
+        v = cell_measure_mV(cell_kind, cell_p, cell_s, cell_rng, i_applied)
+        out_v_true[k] = cell_v_true_mV(cell_kind, cell_p, cell_s)
+        adc = mV_to_counts(conv, v)
+        out_adc[k] = adc
+        if law_mode:
+            if k <= hi and law_arrive_us[k] <= t_us:
+                board_set_law(bs, law, laws[k], k)
+            packed = board_eval(adc, k, bf, bi, bs, law, table)
+            out_flags[k] = packed >> 16
+            i_applied = counts_to_pA(conv, packed & 0xFFFF)
+        # The host's wake-ups before the next tick.
+        while w < wake_us.shape[0] and wake_us[w] < t_us + dt_us:
+            newest = wake_newest[w]
+            for m in range(seen + 1, newest + 1):
+                spiked = law_mode and (out_flags[m] & BF_FLAG_SPIKE) != 0
+                if law_mode:
+                    hist_record_cell_spike(m, spiked, loop_p, loop_s)
+                    if spiked and m + 1 <= hi:
+                        counters[0] += _late_listeners(kind, params, m, hi)
+                else:
+                    v_host = counts_to_mV(conv, float(out_adc[m]))
+                    cmd_pA[w] = step(
+                        v_host, m, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s
+                    )
+                    # In current mode the host detects the cell's spikes (and runs
+                    # threshold_reset): its decision replaces the board's.
+                    out_flags[m] &= ~BF_FLAG_SPIKE
+                    if loop_s[LS_CELL_SPIKED] != 0.0:
+                        out_flags[m] |= BF_FLAG_SPIKE
+                    _put_row(out_g, m, g_out)
+                    _put_row(out_i_el, m, i_out)
+                    _neuron_spikes(state, neuron_rows, out_nspk, m)
+            seen = max(seen, newest)
+            if law_mode:
+                for s in range(hi + 1, min(newest + lead, n - 1) + 1):
+                    element_conductances(
+                        s, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s
+                    )
+                    law_to_counts(
+                        scale,
+                        loop_s[LS_LAW_A_PA],
+                        loop_s[LS_LAW_G_NS],
+                        loop_s[LS_LAW_AB_PA],
+                        loop_s[LS_LAW_GB_NS],
+                        laws[s],
+                    )
+                    law_arrive_us[s] = arrive_us[w]
+                    _put_row(out_g, s, g_out)
+                    _put_row(out_i_el, s, i_out)
+                    _neuron_spikes(state, neuron_rows, out_nspk, s)
+                    hi = s
+            w += 1
+        if not law_mode:
+            # Commands that arrive within (t_k, t_k+1] drive that interval.
+            newest_cmd = -1
+            while delivered < w and arrive_us[delivered] <= t_us + dt_us:
+                newest_cmd = delivered
+                delivered += 1
+            if newest_cmd >= 0:
+                current_to_law(scale, cmd_pA[newest_cmd], new_law)
+                board_set_law(bs, law, new_law, k)
+            packed = board_eval(adc, k, bf, bi, bs, law, table)
+            # The host's spike decision for sample k may already be in (see above).
+            out_flags[k] = ((packed >> 16) & ~BF_FLAG_SPIKE) | (out_flags[k] & BF_FLAG_SPIKE)
+            i_applied = counts_to_pA(conv, packed & 0xFFFF)
+        out_i[k] = i_applied
+    if law_mode:
+        # Each sample's element currents at the V the cell had (the host keeps g until V comes).
+        for k in range(min(n, hi + 1)):
+            v_k = counts_to_mV(conv, float(out_adc[k]))
+            cell_currents(v_k, kind, params, out_g[k], out_i_el[k])
+            reset_on = (out_flags[k] & BF_FLAG_RESET) != 0
+            board_reset_current(v_k, reset_on, kind, params, out_g[k], out_i_el[k])
+    counters[1] = hi
+
+
+@kernel
+def _neuron_spikes(state: np.ndarray, rows: np.ndarray, out: np.ndarray, s: int) -> None:
+    for j in range(rows.shape[0]):
+        out[s, j] = state[rows[j], NEURON_S_SPIKED] != 0.0
+
+
+@kernel
+def _put_row(dst: np.ndarray, row: int, src: np.ndarray) -> None:
+    for j in range(src.shape[0]):
+        dst[row, j] = src[j]
+
+
+@kernel
+def _late_listeners(kind: np.ndarray, params: np.ndarray, m: int, hi: int) -> int:
+    """Cell-driven synapses whose delivery sample m + delay already has its law."""
+    late = 0
+    for r in range(kind.shape[0]):
+        if (
+            kind[r] == KIND_SYNAPSE
+            and int(params[r, _syn.P_SOURCE]) == _syn.SRC_CELL
+            and m + int(params[r, _syn.P_DELAY]) <= hi
+        ):
+            late += 1
+    return late
+
+
+@dataclass
+class LinkRun:
+    """What one run over a link did, per sample: the ADC count, the true membrane
+    potential, the current applied over the following interval, the board's flags,
+    each element's conductance and current; plus bytes and late spikes."""
+
+    mode: str
+    link: str
+    rate_hz: float
+    lead_samples: int
+    adc: np.ndarray
+    v_true_mV: np.ndarray
+    i_pA: np.ndarray
+    flags: np.ndarray
+    g_nS: np.ndarray
+    i_element_pA: np.ndarray
+    up_bytes: int
+    down_bytes: int
+    late_spikes: int
+    neuron_spikes: np.ndarray | None = None  # bool (n, virtual neurons)
+
+    @property
+    def spikes(self) -> np.ndarray:
+        return (self.flags & BF_FLAG_SPIKE) != 0
+
+
+def run(
+    experiment: Any,
+    duration_s: float,
+    link: str | Link = "direct",
+    mode: str = LAW_MODE,
+    lead_ms: float = 10.0,
+    lifetime_ms: float = 2.0,
+    stall_ms: float = 0.0,
+    seed: int = 0,
+) -> LinkRun:
+    """Run ``experiment`` for ``duration_s`` over ``link`` in ``mode`` ("law", "current"
+    or "ideal"). ``lead_ms``: how far ahead the host computes laws; ``lifetime_ms``:
+    how long the board holds a law past its own sample."""
+    program = build_program(experiment, seed=seed)
+    exp = program.experiment
+    rate = float(exp.loop["rate_hz"])
+    n = round(duration_s * rate)
+    if n < 1:
+        raise ValueError(f"duration_s = {duration_s!r}: shorter than one sample")
+    law_mode = mode in (LAW_MODE, "ideal")
+    if mode == "ideal":
+        link, lead = LINKS["ideal"], 1
+    else:
+        lead = max(1, round(lead_ms * rate / 1000.0))
+    lk = LINKS[link] if isinstance(link, str) else link
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, exp.amplifier)
+    bf, bi, bs, law, table = board_arrays(
+        program, conv, LAW_MODE if law_mode else CURRENT_MODE, round(lifetime_ms * rate / 1000)
+    )
+    sched = schedule(lk, n, rate, lead, law_mode, table.size > 0, stall_ms, seed)
+    cell_cfg = dict(exp.cell)
+    cell_cfg["seed"] = int(cell_cfg["seed"]) + (int(seed) << 20)
+    cell = make_cell(cell_cfg, exp.dt_ms)
+    n_el = len(program.names)
+    out = {
+        "adc": np.zeros(n, np.int64),
+        "v": np.zeros(n),
+        "i": np.zeros(n),
+        "flags": np.zeros(n, np.int64),
+        "g": np.zeros((n, n_el)),
+        "i_el": np.zeros((n, n_el)),
+    }
+    counters = np.zeros(2, np.int64)
+    neuron_rows = np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], np.int64)
+    out["nspk"] = np.zeros((n, neuron_rows.size), dtype=np.bool_)
+    link_loop(
+        law_mode,
+        lead,
+        sched.wake_newest,
+        sched.wake_us,
+        sched.arrive_us,
+        conv,
+        law_scale(conv),
+        cell.kind,
+        cell.params,
+        cell.state,
+        cell.rng,
+        *program.arrays(),
+        bf,
+        bi,
+        bs,
+        law,
+        table,
+        np.zeros((n + lead + 1, 4), np.float32),
+        np.full(n + lead + 1, np.inf),
+        np.zeros(sched.wake_us.size),
+        np.zeros(4, np.float32),
+        out["adc"],
+        out["v"],
+        out["i"],
+        out["flags"],
+        out["g"],
+        out["i_el"],
+        neuron_rows,
+        out["nspk"],
+        counters,
+    )
+    return LinkRun(
+        mode=mode,
+        link=lk.name,
+        rate_hz=rate,
+        lead_samples=lead,
+        adc=out["adc"],
+        v_true_mV=out["v"],
+        i_pA=out["i"],
+        flags=out["flags"],
+        g_nS=out["g"],
+        i_element_pA=out["i_el"],
+        up_bytes=sched.up_bytes,
+        down_bytes=sched.down_bytes,
+        late_spikes=int(counters[0]),
+        neuron_spikes=out["nspk"],
+    )

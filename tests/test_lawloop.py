@@ -1,0 +1,208 @@
+"""Law mode end to end (PROTOCOL.md §10): host law loop <-> pseudo-terminal <-> simulated rig.
+
+Behaviour only: the serial run equals the ideal clamp of the sample-time simulation,
+a stalled host gets 0 pA from the board after the look-ahead and the lifetime, the
+zero request acts at once, and a board that ignores the law falls back to current mode.
+"""
+
+from __future__ import annotations
+
+import copy
+import os
+import signal
+import time
+from pathlib import Path
+
+import numpy as np
+
+import clampcore
+from clampcore import linksim
+from clampcore.calibration import (
+    DEFAULT_BOARD_ADC,
+    DEFAULT_BOARD_DAC,
+    conversion_array,
+    pA_to_counts,
+)
+from clampcore.engine import Engine, EngineError, RunOptions, law_lead_samples
+from clampcore.experiment import load_experiment
+from clampcore.nwb import read_nwb_summary, validate_nwb
+from clampcore.program import build_program
+from clampcore.shared import CTRL_WRITTEN
+from simulated_rig.groundtruth import read_log
+
+ROOT = Path(__file__).resolve().parent.parent
+EXAMPLE = ROOT / "examples" / "imposed_lif.toml"
+
+SUBTHRESHOLD = {
+    "loop": {"rate_hz": 10000, "max_current_pA": 800.0, "mode": "law"},
+    "cell": {"model": "passive", "capacitance_pF": 100.0, "leak_nS": 5.0, "rest_mV": -70.0,
+             "noise_pA": 2.0, "seed": 1},
+    "amplifier": {"vm_mV_per_V": 100.0, "command_pA_per_V": 400.0},
+    "element": [
+        {"kind": "leak", "name": "extra_leak", "g_nS": 5.0, "e_mV": -70.0},
+        {"kind": "synapse", "name": "exc", "g_max_nS": 2.0, "e_mV": 0.0, "tau_decay_ms": 3.0,
+         "source": "poisson", "rate_hz": 200.0, "seed": 1},
+        {"kind": "synapse", "name": "nmda", "g_max_nS": 1.0, "e_mV": 0.0, "tau_decay_ms": 50.0,
+         "mg_mM": 1.0, "source": "poisson", "rate_hz": 50.0, "seed": 2},
+        {"kind": "noise", "name": "bg", "g_mean_nS": 3.0, "g_sd_nS": 1.0, "tau_ms": 2.7,
+         "e_mV": 0.0, "seed": 3},
+    ],
+}  # fmt: skip
+
+
+def _run(engine: Engine, duration_s: float, out: Path):
+    engine.start(duration_s=duration_s, out=out)
+    assert engine.wait(120.0), "the run did not end"
+    result = engine.finish()
+    assert result.error is None, result.error
+    assert validate_nwb(result.nwb_path) == []  # pynwb's validator: a list of problems
+    return read_nwb_summary(result.nwb_path)
+
+
+def _zero_counts(experiment) -> int:
+    amplifier = load_experiment(experiment).amplifier
+    return pA_to_counts(conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, amplifier), 0.0)
+
+
+def test_lockstep_law_mode_equals_the_ideal_clamp(tmp_path):
+    """Two paths that must agree sample for sample: the host law loop and the rig over a
+    pseudo-terminal, and the sample-time simulation of every law on time (with the Mg
+    block table on the board)."""
+    options = RunOptions(rig_clock="lockstep", watchdog_ms=5000)
+    rec = _run(Engine(SUBTHRESHOLD, "sim", options), 0.3, tmp_path / "law.nwb")
+    ideal = linksim.run(SUBTHRESHOLD, 0.3, mode="ideal")
+    np.testing.assert_array_equal(rec["i_pA"], ideal.i_pA)
+    np.testing.assert_array_equal(rec["columns"]["g_nS/nmda"], ideal.g_nS[:, 2])
+    offline = clampcore.simulate(SUBTHRESHOLD, 0.3)  # [loop] mode = "law": the same split
+    np.testing.assert_array_equal(rec["v_mV"], offline.v_mV)
+    np.testing.assert_array_equal(rec["i_pA"], offline.i_pA)
+    np.testing.assert_array_equal(rec["columns"]["i_pA/nmda"], offline.i_element_pA["nmda"])
+    # Each element's current at the V the cell had: I = -g B(V) (V - E) with the host's V.
+    i_exc = rec["columns"]["i_pA/exc"]
+    np.testing.assert_allclose(i_exc, -rec["columns"]["g_nS/exc"] * rec["v_mV"], atol=1e-9)
+
+
+def test_lockstep_law_mode_with_threshold_reset_and_a_delayed_cell_synapse(tmp_path):
+    exp = load_experiment(EXAMPLE)
+    options = RunOptions(rig_clock="lockstep", watchdog_ms=5000, mode="law")
+    rec = _run(Engine(EXAMPLE, "sim", options), 0.5, tmp_path / "lif.nwb")
+    ideal = linksim.run(EXAMPLE, 0.5, mode="ideal")
+    np.testing.assert_array_equal(rec["i_pA"], ideal.i_pA)
+    spikes = np.flatnonzero(rec["columns"]["spike/cell"])
+    assert spikes.size >= 3
+    np.testing.assert_array_equal(spikes, np.flatnonzero(ideal.spikes))
+    # The recurrent synapse hears each spike exactly delay_ms later (3 ms = 30 samples).
+    delay = round(3.0 * exp.loop["rate_hz"] / 1000)
+    g = rec["columns"]["g_nS/recurrent"]
+    onsets = np.flatnonzero((g[1:] > 0) & (g[:-1] == 0)) + 1
+    assert onsets[0] == spikes[0] + delay + 1  # alpha kinetics: g rises from the next sample
+
+
+def test_a_stalled_host_gets_zero_current_after_lead_and_lifetime(tmp_path):
+    """Board-side safety: the host (loop process) stopped; the board uses the laws it has,
+    holds the last one for its lifetime, then outputs 0 pA until laws come again."""
+    exp = copy.deepcopy(SUBTHRESHOLD)
+    exp["loop"]["lead_ms"] = 5.0
+    log = tmp_path / "rig.log"
+    engine = Engine(exp, "sim", RunOptions(rig_clock="wall", rig_log=log, watchdog_ms=10_000))
+    engine.start(duration_s=None, out=tmp_path / "stall.nwb")
+    deadline = time.monotonic() + 60
+    while engine.status().get("samples", 0) < 3000:
+        assert time.monotonic() < deadline and engine.running
+        time.sleep(0.02)
+    os.kill(engine.loop_pid, signal.SIGSTOP)
+    time.sleep(0.05)
+    seen = int(engine.shared.ctrl[CTRL_WRITTEN]) - 1  # the newest sample the host handled
+    time.sleep(0.4)
+    os.kill(engine.loop_pid, signal.SIGCONT)
+    time.sleep(0.3)
+    result = engine.finish()
+    assert result.error is None, result.error
+    gt = read_log(log).for_run(1)
+    program = build_program(exp)
+    lead = law_lead_samples(program)
+    lifetime = round(2.0 * 10000 / 1000)  # the default lifetime_ms, in samples
+    zero = _zero_counts(exp)
+    counter = gt.counter
+    # dac_counts of record k is what drove the cell over (t_k-1, t_k], computed at tick k-1.
+    drove = {int(c) - 1: int(d) for c, d in zip(counter, gt.dac_counts, strict=True)}
+    last_law = seen + lead  # at most this far were laws sent before the stop
+    first_zero = last_law + lifetime + 1
+    assert all(drove[k] == zero for k in range(first_zero, first_zero + 1000))
+    # Before that the board still used laws: not the fault value (the cell is driven).
+    assert any(drove[k] != zero for k in range(seen, last_law - 1))
+
+
+def test_zero_request_acts_at_once_and_teardown_leaves_zero(tmp_path):
+    log = tmp_path / "rig.log"
+    engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall", rig_log=log))
+    engine.start(duration_s=None, out=tmp_path / "zero.nwb")
+    deadline = time.monotonic() + 60
+    while engine.status().get("samples", 0) < 2000:
+        assert time.monotonic() < deadline and engine.running
+        time.sleep(0.02)
+    engine.set_zero_current(True)
+    time.sleep(0.3)
+    engine.set_zero_current(False)
+    time.sleep(0.3)
+    result = engine.finish()
+    assert result.error is None, result.error
+    rec = read_nwb_summary(result.nwb_path)
+    zeroed = (rec["columns"]["flags"].astype(np.int64) & 8) != 0  # FLAG_ZEROED
+    assert zeroed.sum() > 1000  # about 0.3 s at 10 kHz
+    zero_pA = rec["i_pA"][zeroed]
+    conv = conversion_array(
+        DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, load_experiment(SUBTHRESHOLD).amplifier
+    )
+    assert np.all(np.abs(zero_pA) <= 400.0 * 20.0 / 65535)  # the 0 pA count: within one step
+    gt = read_log(log).for_run(1)
+    zero = pA_to_counts(conv, 0.0)
+    assert gt.dac_counts[-1] == zero  # the host's ZERO came before STOP
+    assert np.count_nonzero(gt.dac_counts != zero) > 1000  # it was driving the cell before
+
+
+def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
+    """A version-1 board (the C core) ignores BOARD_RULES (PROTOCOL.md §5.5): the host falls
+    back to current mode and says so."""
+    from firmware_protocol.cboard import build_pty_board, start_pty_board
+
+    binary = build_pty_board(tmp_path)
+    exp = copy.deepcopy(SUBTHRESHOLD)
+    exp["element"] = exp["element"][:1]
+    with start_pty_board(binary) as board:
+        engine = Engine(exp, board.slave_path, RunOptions(watchdog_ms=200))
+        engine.start(duration_s=0.2, out=tmp_path / "v1.nwb")
+        assert engine.wait(60.0)
+        result = engine.finish()
+    assert result.error is None, result.error
+    assert result.samples >= 1000
+    assert "current mode" in (result.notice or "")
+
+
+def test_live_changes_in_law_mode_reach_the_law_or_are_refused(tmp_path):
+    """A conductance change is part of the law: applied from the sample the host is making
+    laws for, and logged with it. A rule the board applies itself (the current limit) cannot
+    change behind the board's back, so it is refused with the reason."""
+    engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall"))
+    engine.start(duration_s=None, out=tmp_path / "live.nwb")
+    deadline = time.monotonic() + 60
+    while engine.status().get("samples", 0) < 2000:
+        assert time.monotonic() < deadline and engine.running
+        time.sleep(0.02)
+    try:
+        engine.change("loop", "max_current_pA", 300.0)
+    except EngineError as exc:
+        assert "law mode" in str(exc)
+    else:
+        raise AssertionError("a board-owned rule changed while running")
+    engine.change("extra_leak", "g_nS", 12.0)
+    time.sleep(0.3)
+    result = engine.finish()
+    assert result.error is None, result.error
+    rec = read_nwb_summary(result.nwb_path)
+    (change,) = [c for c in rec["param_changes"] if c.get("field") == "g_nS"]
+    g = rec["columns"]["g_nS/extra_leak"]
+    counters = rec["columns"]["sample_counter"].astype(np.int64)
+    first = int(np.flatnonzero(g == 12.0)[0])
+    assert np.all(g[:first] == 5.0) and np.all(g[first:] == 12.0)
+    assert counters[first] == change["sample"]
