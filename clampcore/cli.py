@@ -6,6 +6,7 @@
     clampcore rig [EXPERIMENT] [--rate HZ] [--clock wall|lockstep] [--log FILE]
     clampcore ports                             serial ports with their USB identity
     clampcore recover JOURNAL [--out FILE.nwb] [--force]  NWB from what a crashed run left
+    clampcore show RUN.nwb [--from S --to S] [--out FIG.png]   summary and figure
     clampcore gui [EXPERIMENT] [--port PORT]    the tuning window
     clampcore demo                              an example on the simulated rig
 
@@ -198,6 +199,7 @@ def _run(args: argparse.Namespace) -> int:
         realtime_priority=args.realtime,
         rig_clock=args.rig_clock,
         rig_log=Path(args.rig_log) if args.rig_log else None,
+        keep_journal=args.keep_journal,
     )
     watch = TimingWatch(args.warn_late_percent, args.warn_latency_samples)
     engine = Engine(exp, args.port, options)
@@ -345,6 +347,8 @@ def run_with_status(
         print(scheduling_text(result.scheduling))
     if result.nwb_path:
         print(f"recording: {result.nwb_path}")
+    if result.journal_path and result.journal_path.exists():
+        print(f"journal kept: {result.journal_path}")
     return result
 
 
@@ -370,16 +374,22 @@ def _ports(args: argparse.Namespace) -> int:
 
 def _recover(args: argparse.Namespace) -> int:
     from clampcore.engine import nwb_path_for
-    from clampcore.nwb import journal_to_nwb
+    from clampcore.nwb import convert_journal
 
     journal = Path(args.journal)
     if not str(args.journal).strip() or not journal.is_dir():
         raise FileNotFoundError(f"journal {args.journal!r}: no such journal folder")
     out = nwb_path_for(args.out) if args.out else journal.with_suffix(".nwb")
     _refuse_existing(out, args.force)
-    journal_to_nwb(journal, out, overwrite=args.force)
-    print(f"wrote {out}")
+    _, removed = convert_journal(journal, out, keep_journal=args.keep_journal)
+    print(f"wrote {out}" + ("; journal checked against it and removed" if removed else ""))
     return 0
+
+
+def _show(args: argparse.Namespace) -> int:
+    from clampcore.show import show
+
+    return show(Path(args.recording), args.from_s, args.to_s, args.out)
 
 
 def _demo(args: argparse.Namespace) -> int:
@@ -420,6 +430,9 @@ def add_run_options(p: argparse.ArgumentParser) -> None:
     _add_bounded(p, "--watchdog-ms", WATCHDOG_MS_RANGE, "ms", 20.0, "board watchdog")
 
 
+_KEEP_JOURNAL_HELP = "keep the journal after the NWB file was written and checked"
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="clampcore", description="Dynamic clamp on a serial board.")
     parser.add_argument(
@@ -447,7 +460,8 @@ def _parser() -> argparse.ArgumentParser:
         "--duration", type=duration, default=None, help="seconds (default: until Ctrl-C)"
     )
     p.add_argument(
-        "--out", help="recording path (.nwb added unless given; a .journal folder beside it)"
+        "--out",
+        help="recording path (.nwb added unless given; its journal goes once the file is checked)",
     )
     p.add_argument("--force", action="store_true", help="replace an existing recording at --out")
     add_run_options(p)
@@ -482,6 +496,7 @@ def _parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
     p.add_argument("--rig-log", help="for 'sim': the rig's ground-truth log")
+    p.add_argument("--keep-journal", action="store_true", help=_KEEP_JOURNAL_HELP)
     p.set_defaults(func=_run)
 
     p = sub.add_parser("ports", help="list serial ports with their USB identity")
@@ -491,7 +506,15 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("journal")
     p.add_argument("--out", help="NWB path (default: the journal's name with .nwb)")
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
+    p.add_argument("--keep-journal", action="store_true", help=_KEEP_JOURNAL_HELP)
     p.set_defaults(func=_recover)
+
+    p = sub.add_parser("show", help="summarise a recording and plot it (or a slice of it)")
+    p.add_argument("recording", help="an NWB file written by clampcore")
+    p.add_argument("--from", dest="from_s", type=real_option(0.0), default=None, help="start, s")
+    p.add_argument("--to", dest="to_s", type=real_option(0.0), default=None, help="end, s")
+    p.add_argument("--out", help="figure path (.png; default: beside the recording)")
+    p.set_defaults(func=_show)
 
     p = sub.add_parser("demo", help="run an example on the simulated rig and plot it")
     p.add_argument("--out-dir", default="demo-output")

@@ -130,6 +130,8 @@ class RunOptions:
     # Do the serial I/O with pyserial from Python (slower) instead of inside the compiled
     # loop: what ports without a file descriptor (some pyserial URLs) always get.
     python_io: bool = False
+    # Keep the journal after the NWB file was written and checked (default: removed).
+    keep_journal: bool = False
     rig_clock: str = "wall"  # for port "sim": the simulated rig's clock
     rig_log: Path | None = None  # for port "sim": the rig's ground-truth log
     rig_realtime_priority: int = 0  # for port "sim": the rig's SCHED_FIFO priority, 0 = none
@@ -486,7 +488,6 @@ class Engine:
         self._tmpdir: tempfile.TemporaryDirectory[str] | None = None
         self.t_start = 0.0
         self.result: RunResult | None = None
-        self.force = False
 
     # ------------------------------------------------------------------ lifecycle
     def start(
@@ -507,7 +508,6 @@ class Engine:
         out_path = Path(out) if out else Path(time.strftime("clampcore-run-%Y%m%d-%H%M%S.nwb"))
         self.nwb_path = nwb_path_for(out_path)
         journal_path = self.nwb_path.with_suffix(".journal")
-        self.force = force
         _check_outputs(self.nwb_path, journal_path, force)
         check_free_space(self.nwb_path.parent, exp, duration_s)
         self._tmpdir = tempfile.TemporaryDirectory(prefix="clampcore-")
@@ -667,7 +667,7 @@ class Engine:
         }
         nwb = None
         try:
-            nwb = self.recorder.stop(final, self.nwb_path, overwrite=self.force)
+            nwb = self.recorder.stop(final, self.nwb_path, self.options.keep_journal)
         finally:
             self.shared.close()
         timing = self.recorder.final_meta.get("timing", {})

@@ -46,9 +46,10 @@ CURRENT_MODE = "current"  # the host computes the current from the newest V it h
 SC_MV0, SC_MV1, SC_I0_PA, SC_K = 0, 1, 2, 3
 
 # Table points 2^shift ADC counts apart: at most this many intervals over the ADC range.
-# 1024 intervals of a 16-bit ±10 V, 100 mV/V input are 1.95 mV apart, where linear
-# interpolation of B errs by at most h²/8·max|B''| < 3e-5 (B'' <= 0.062²/(6√3), the
-# logistic's largest second derivative): far below the 16-bit DAC's resolution.
+# 1024 intervals of a 16-bit ±10 V, 100 mV/V input are h = 1.95 mV apart, where linear
+# interpolation of B errs by at most h²/8·max|B''| = 1.8e-4 (B'' <= 0.062²/(6√3), the
+# logistic's largest second derivative): under one count of the 16-bit, 400 pA/V DAC
+# (0.12 pA) for a blocked current below ~690 pA.
 _BLOCK_INTERVALS = 1024
 
 

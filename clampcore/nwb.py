@@ -1,80 +1,85 @@
 """Write a clampcore recording as NWB (Neurodata Without Borders) and read it back.
 
 A run is journalled while it goes on (:mod:`clampcore.journal`); at stop, or
-later through ``clampcore recover``, :func:`journal_to_nwb` converts the journal
-into one NWB file. Journal columns map to NWB as follows (time of sample ``n`` is
-``n / rate_hz`` s after ``session_start``; row ``k`` is sample ``first_sample + k``):
+later through ``clampcore recover``, :func:`convert_journal` converts the journal
+into one NWB file, reads it back, checks it against the journal and then removes
+the journal (unless asked to keep it). Time of sample ``n`` is ``n / rate_hz`` s
+after ``session_start``; row ``k`` is sample ``first_sample + k``.
 
 =====================  ==================================================================
-journal column          NWB object
+journal column          NWB object (how it is stored: :mod:`clampcore.nwb_series`)
 =====================  ==================================================================
-``v_mV``               ``acquisition/membrane_potential``, CurrentClampSeries (volts;
-                       data stay in mV with ``conversion`` 1e-3)
-``i_pA``               ``stimulus/command_current``, CurrentClampStimulusSeries (amperes;
-                       data in pA, ``conversion`` 1e-12); both linked in the
-                       intracellular-recordings table
-``g_nS/<element>``     ``processing/virtual_conductances/conductance_<element>`` (siemens,
-                       ``conversion`` 1e-9)
-``i_pA/<element>``     ``processing/virtual_conductances/current_<element>`` (amperes,
-                       ``conversion`` 1e-12)
-``spike/<name>``       ``events/spikes_<name>``, an EventsTable: one row per sample whose
-                       value is > 0.5, with its time in s and its sample index
-``latency_samples``    ``processing/loop_timing/latency_samples`` (unit "samples")
-``turnaround_us``      ``processing/loop_timing/host_turnaround`` (seconds, conversion 1e-6)
-anything else          ``processing/loop_timing/<name>`` (unit "n/a")
+``v_mV``               ``acquisition/membrane_potential``, CurrentClampSeries: the ADC
+                       counts, volts = data x conversion + offset (lossless)
+``i_pA``               ``stimulus/command_current``, CurrentClampStimulusSeries: the DAC
+                       counts sent, amperes = data x conversion + offset; both linked in
+                       the intracellular-recordings table
+``g_nS/<element>``     ``processing/virtual_conductances/conductance_<element>``, float32 nS
+``i_pA/<element>``     ``-g (V - E)`` on reading when that reproduces it to float32
+                       precision (not stored); otherwise ``current_<element>``, float32 pA
+``spike/<name>``       ``events/spikes_<name>``, an EventsTable of the spiking samples
+``sample_counter``     not stored: first value + row, plus
+                       ``processing/loop_timing/sample_counter_gaps`` when there are gaps
+``flags``,             ``processing/loop_timing/<name>``: smallest unsigned integers,
+``board_status``,      unknown values as the type's largest value (said in the
+``latency_samples``    description)
+``turnaround_us``      ``processing/loop_timing/host_turnaround``, float32 µs
+anything else          ``processing/loop_timing/<name>``: integers as above, else float64
 =====================  ==================================================================
 
-Events of kind ``"param"`` go to the EventsTable ``events/parameter_changes``; every
-other kind ``k`` to ``events/<k>_events`` (the NWB schema asks for one event type
-per table). Each table has the event's time, its ``sample`` and one column per
-field (strings and numbers as such, anything else as JSON text); every event is
-kept. The experiment file's text is ``stimulus_notes``; ``data_collection`` holds
-a JSON document with the run's metadata (source, rate, amplifier calibration,
-board, timing statistics, summary, journal state) and the map from journal
-columns to NWB objects, which :func:`read_nwb_summary` uses. Numeric timing
-statistics are also a table ``processing/loop_timing/timing_statistics``.
+Every per-sample dataset is chunked along time with HDF5's shuffle and the
+compression of ``nwb_series.COMPRESSION``. ``data_collection`` holds a JSON
+document with the run's metadata (source, rate, calibration, board, timing
+statistics, summary, journal state) and, per journal column, where and how it is
+stored, which :func:`read_nwb_summary` uses; it also reads files of the first,
+all-float64 layout (format version 1). Numeric timing statistics are also a table
+``processing/loop_timing/timing_statistics``. Metadata: :mod:`clampcore.nwb_metadata`;
+tables: :mod:`clampcore.nwb_tables`.
 
-Spike times are EventsTables, not the ``units`` table: the units table is meant
-for sorted extracellular units, and nwbinspector flags as CRITICAL a units table
-whose spike times all happen to be whole seconds (it takes them for sample
-indices), which a short run can legitimately produce.
-
-Missing subject/session/electrode details get clear placeholders (nwbinspector
-calls a missing Subject, age or sex critical), named in the descriptions.
-
-Public names: ``write_nwb``, ``journal_to_nwb``, ``read_nwb_summary``,
-``validate_nwb``, ``NwbError``, ``SIMULATED_SOURCES``.
+Public names: ``write_nwb``, ``journal_to_nwb``, ``convert_journal``, ``check_against_journal``,
+``read_nwb_summary``, ``validate_nwb``, ``compact_bytes_per_row``, ``NwbError``,
+``SIMULATED_SOURCES``.
 """
 
 from __future__ import annotations
 
-import datetime as _dt
 import json
 import math
 import os
-import re
-import uuid
-from collections.abc import Mapping
-from importlib import metadata as _metadata
+import shutil
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from clampcore import nwb_series as ns
 from clampcore.journal import JournalData, JournalError, check_meta, read_journal
-from clampcore.journal import _json_default as journal_json_default
+from clampcore.nwb_metadata import SIMULATED_SOURCES, dumps, new_nwbfile, nwb_name, text, unique
+from clampcore.nwb_metadata import version as _version
+from clampcore.nwb_tables import (
+    add_counter_gaps,
+    add_event_tables,
+    add_spike_tables,
+    add_timing_statistics,
+    read_events,
+    read_spike_samples,
+)
 
-SIMULATED_SOURCES = ("offline simulation", "simulated rig")
+__all__ = [
+    "SIMULATED_SOURCES",
+    "NwbError",
+    "check_against_journal",
+    "compact_bytes_per_row",
+    "convert_journal",
+    "journal_to_nwb",
+    "read_nwb_summary",
+    "validate_nwb",
+    "write_nwb",
+]
 
 _FORMAT_KEY = "clampcore_recording"  # marks our JSON document in data_collection
-_FORMAT_VERSION = 1
-_RESERVED_EVENT_COLUMNS = ("id", "timestamp", "duration", "annotation")  # EventsTable's own
-_JSON_ENCODING = "json"
-# gzip datasets above 50 MB of float64, the size from which nwbinspector's
-# check_small_dataset_compression suggests compression; below it, gzip doubled the
-# conversion time of a 60 s x 20 kHz run and saved little on noisy data (measured here).
-_COMPRESS_MIN_VALUES = 50_000_000 // 8
-_GZIP_LEVEL = 4  # common practice: most of level 9's ratio at a fraction of its time
+_FORMAT_VERSION = 2  # 1: every series float64, uncompressed; 2: the compact layout above
+_READABLE_VERSIONS = (1, 2)
 
 # Scale of each journal unit in SI (exact decimal prefixes).
 _MV_IN_V = 1e-3
@@ -82,226 +87,51 @@ _PA_IN_A = 1e-12
 _NS_IN_S = 1e-9
 _US_IN_S = 1e-6
 
+_VC_MODULE = (
+    "virtual_conductances",
+    "Conductance and current of each virtual element (current I = -g (V - E); positive "
+    "current depolarises). An element current with no series here is derived on reading: "
+    "I = -g (V - E) from its conductance, the membrane potential and its reversal potential "
+    "(see data_collection, 'columns').",
+)
+_TIMING_MODULE = "loop_timing"
+_V_SERIES, _I_SERIES = "membrane_potential", "command_current"
+# Per clamp series: description, journal unit, its size in SI, how counts are stored.
+_CLAMP_TEXT = {
+    "v": (
+        "Membrane potential measured by the amplifier, one value per loop sample (after "
+        "clampcore's calibration and liquid-junction correction). ",
+        "mV",
+        _MV_IN_V,
+        "Stored as the board's ADC counts, lossless: volts = data x conversion + offset",
+    ),
+    "i": (
+        "Total command current computed from each sample (positive depolarises); in force "
+        "from the next sample on (plus any extra delay). ",
+        "pA",
+        _PA_IN_A,
+        "Stored as the DAC counts sent to the board: amperes = data x conversion + offset, "
+        "the current commanded (the value the step computed, rounded to the nearest count)",
+    ),
+}
+
 
 class NwbError(ValueError):
     """An NWB file cannot be written or read; the message says which and why."""
 
 
-# --------------------------------------------------------------------------- helpers
-
-
-def _version() -> str:
-    try:
-        return _metadata.version("clampcore")
-    except _metadata.PackageNotFoundError:
-        return "unknown"
-
-
-def _json_default(value: Any) -> Any:
-    try:
-        return journal_json_default(value)
-    except TypeError:
-        return repr(value)  # never fail a recording over one odd metadata value
-
-
-def _dumps(value: Any, indent: int | None = None) -> str:
-    return json.dumps(value, default=_json_default, indent=indent, ensure_ascii=False)
-
-
-def _nwb_name(text: str) -> str:
-    """An HDF5/NWB-safe object name: no slashes, backslashes or colons."""
-    cleaned = re.sub(r"[/\\:]", "_", str(text)).strip()
-    return cleaned or "unnamed"
-
-
-def _unique(name: str, taken: set[str]) -> str:
-    candidate, number = name, 2
-    while candidate in taken:
-        candidate = f"{name}_{number}"
-        number += 1
-    taken.add(candidate)
-    return candidate
-
-
-def _table(meta: Mapping[str, Any], key: str) -> dict:
-    experiment = meta.get("experiment")
-    if not isinstance(experiment, Mapping):
-        return {}
-    value = experiment.get(key)
-    return dict(value) if isinstance(value, Mapping) else {}
-
-
-def _text(value: Any) -> str | None:
-    if value is None:
-        return None
-    if isinstance(value, str):
-        return value.strip() or None
-    return str(value)
-
-
-def _dataset(array: np.ndarray) -> Any:
-    """Large arrays are chunked and gzip-compressed; small ones are stored as they are."""
-    if array.size < _COMPRESS_MIN_VALUES:
-        return array
-    from hdmf.backends.hdf5.h5_utils import H5DataIO
-
-    return H5DataIO(
-        data=array, compression="gzip", compression_opts=_GZIP_LEVEL, shuffle=True, chunks=True
-    )
-
-
-def _flatten_numbers(value: Any, prefix: str = "") -> list[tuple[str, float]]:
-    """``{"a": {"b": 1}}`` -> ``[("a.b", 1.0)]``; non-numeric leaves are skipped."""
-    out: list[tuple[str, float]] = []
-    if isinstance(value, Mapping):
-        for key, item in value.items():
-            out += _flatten_numbers(item, f"{prefix}.{key}" if prefix else str(key))
-    elif isinstance(value, int | float | np.integer | np.floating) and not isinstance(value, bool):
-        out.append((prefix, float(value)))
-    return out
-
-
-# --------------------------------------------------------------------------- metadata
-
-
-def _subject(meta: Mapping[str, Any], simulated: bool, placeholders: list[str]) -> Any:
-    from pynwb.file import Subject
-
-    given = _table(meta, "subject")
-    if simulated:
-        defaults = {
-            "subject_id": "simulated-cell",
-            "species": "in silico model cell",
-            "description": "Placeholder: no animal; a model cell simulated by clampcore "
-            f"({meta.get('source', 'simulation')}).",
-        }
-    else:
-        defaults = {
-            "subject_id": "unspecified",
-            "species": "unspecified",
-            "description": "Placeholder: the experiment file gave no subject description; "
-            "fill it in before sharing this file.",
-        }
-    # nwbinspector calls a missing age or sex critical: "P0D/" is the ISO 8601 open range
-    # "0 days or older" (nwbinspector's range form), "U" is NWB's code for unknown sex.
-    defaults.update({"age": "P0D/", "sex": "U"})
-    kwargs: dict[str, str] = {}
-    missing: list[str] = []
-    for key in ("subject_id", "species", "age", "sex", "description"):
-        value = _text(given.get(key))
-        if value is None:
-            value = defaults[key]
-            missing.append(key)
-        kwargs[key] = value
-    others = [key for key in missing if key != "description"]
-    if others:
-        kwargs["description"] += f" Placeholder values: {', '.join(others)}."
-    placeholders += [f"subject.{key}" for key in missing]
-    for key in ("strain", "genotype", "weight"):
-        value = _text(given.get(key))
-        if value is not None:
-            kwargs[key] = value
-    return Subject(**kwargs)
-
-
-def _resistance_text(value: Any) -> str | None:
-    """``"7.5 MOhm"`` from a number of MOhm; 0, negative or missing means not measured."""
-    if isinstance(value, bool) or value is None:
-        return None
-    if isinstance(value, int | float | np.integer | np.floating):
-        return f"{float(value):g} MOhm" if math.isfinite(value) and value > 0 else None
-    return _text(value)
-
-
-def _experimenter(value: Any) -> list[str] | None:
-    if value is None:
-        return None
-    if isinstance(value, str):
-        return [value] if value.strip() else None
-    if isinstance(value, list | tuple):
-        names = [str(v) for v in value if str(v).strip()]
-        return names or None
-    return [str(value)]
-
-
-# --------------------------------------------------------------------------- events
-
-
-def _event_columns(events: list[dict]) -> list[tuple[str, str, str, list[Any]]]:
-    """Columns ``(column name, field, encoding, values)`` for the fields of ``events``.
-
-    Encoding: "text" (all strings), "int", "float" (all numbers, no bool) or
-    "json" (anything else, including a field some events lack: then ``null``).
-    """
-    fields: list[str] = []
-    for record in events:
-        for key in record:
-            if key not in ("sample", "kind") and key not in fields:
-                fields.append(key)
-    taken = {"id", "timestamp", "duration", "annotation", "sample"}
-    columns = []
-    missing = object()
-    for key in fields:
-        values = [record.get(key, missing) for record in events]
-        present = all(v is not missing for v in values)
-        numbers = present and all(
-            isinstance(v, int | float) and not isinstance(v, bool) for v in values
+def _timing_description(first_counter: int | None) -> str:
+    text_ = "Per-sample timing of the dynamic-clamp loop."
+    if first_counter is not None:
+        text_ += (
+            f" The board's sample counter is not stored as a series: row k has counter "
+            f"{first_counter} + k, plus the gaps in sample_counter_gaps (no such table: none)."
         )
-        if present and all(isinstance(v, str) for v in values):
-            encoding, data = "text", values
-        elif numbers and all(isinstance(v, int) for v in values):
-            encoding, data = "int", values
-        elif numbers:
-            encoding, data = "float", [float(v) for v in values]
-        else:
-            encoding = _JSON_ENCODING
-            data = [_dumps(None if v is missing else v) for v in values]
-        base = _nwb_name(key)
-        if base in _RESERVED_EVENT_COLUMNS or base == "sample":
-            base = f"field_{base}"
-        columns.append((_unique(base, taken), key, encoding, data))
-    return columns
-
-
-def _events_table(
-    name: str, description: str, samples: np.ndarray, rate_hz: float, fields: list
-) -> Any:
-    from hdmf.common import VectorData
-    from pynwb.event import EventsTable, TimestampVectorData
-
-    period_s = 1.0 / rate_hz
-    columns = [
-        TimestampVectorData(
-            name="timestamp",
-            description="Time of the sample the event belongs to, in s from session start.",
-            data=np.asarray(samples, dtype=np.float64) * period_s,
-            resolution=period_s,
-        ),
-        VectorData(
-            name="sample",
-            description="Absolute index of the sample the event belongs to (time = sample / rate).",
-            data=np.asarray(samples, dtype=np.int64),
-        ),
-    ]
-    for column, key, encoding, data in fields:
-        if encoding == "int":
-            array: Any = np.asarray(data, dtype=np.int64)
-        elif encoding == "float":
-            array = np.asarray(data, dtype=np.float64)
-        else:
-            array = list(data)
-        how = " (JSON text)" if encoding == _JSON_ENCODING else ""
-        columns.append(
-            VectorData(name=column, description=f"Event field '{key}'{how}.", data=array)
-        )
-    return EventsTable(name=name, description=description, columns=columns)
-
-
-# --------------------------------------------------------------------------- writing
+    return text_
 
 
 def _column_kind(name: str) -> tuple[str, str]:
-    """``(kind, element)`` of a journal column: kind in v, i, g, ie, spike, latency, turn, other."""
+    """``(kind, element)`` of a journal column."""
     if name == "v_mV":
         return "v", ""
     if name == "i_pA":
@@ -309,11 +139,11 @@ def _column_kind(name: str) -> tuple[str, str]:
     for prefix, kind in (("g_nS/", "g"), ("i_pA/", "ie"), ("spike/", "spike")):
         if name.startswith(prefix) and len(name) > len(prefix):
             return kind, name[len(prefix) :]
-    if name == "latency_samples":
-        return "latency", ""
-    if name == "turnaround_us":
-        return "turn", ""
-    return "other", ""
+    return {
+        "sample_counter": ("counter", ""),
+        "latency_samples": ("latency", ""),
+        "turnaround_us": ("turn", ""),
+    }.get(name, ("other", ""))
 
 
 def _check_data(data: JournalData) -> tuple[float, int, int]:
@@ -331,293 +161,278 @@ def _check_data(data: JournalData) -> tuple[float, int, int]:
     return float(data.meta["rate_hz"]), int(data.meta.get("first_sample", 0)), n_samples
 
 
-def _build_nwbfile(data: JournalData) -> Any:
-    from hdmf.common import DynamicTable, VectorData
-    from pynwb import NWBFile, TimeSeries
-    from pynwb.device import Device
-    from pynwb.icephys import (
-        CurrentClampSeries,
-        CurrentClampStimulusSeries,
-        IntracellularElectrode,
-    )
+# --------------------------------------------------------------------------- writing
 
-    rate_hz, first_sample, n_samples = _check_data(data)
-    meta = data.meta
-    start_s = first_sample / rate_hz
-    source = _text(meta.get("source")) or "unspecified source"
-    simulated = source in SIMULATED_SOURCES
-    session = _table(meta, "session")
-    electrode_meta = _table(meta, "electrode")
-    amplifier = _table(meta, "amplifier")
-    placeholders: list[str] = []
-    version = _version()
 
-    description = _text(session.get("description"))
-    if description is None:
-        description = f"Dynamic-clamp recording made with clampcore ({source})."
-        placeholders.append("session.description")
-    experiment_text = meta.get("experiment_text")
-    if not isinstance(experiment_text, str) or not experiment_text.strip():
-        experiment_text = None
+def _elements(meta: dict) -> dict[str, dict]:
+    experiment = meta.get("experiment")
+    elements = experiment.get("element") if isinstance(experiment, dict) else None
+    if not isinstance(elements, list):
+        return {}
+    return {str(e.get("name")): e for e in elements if isinstance(e, dict)}
 
-    column_map: dict[str, str | None] = {}
-    event_map: dict[str, dict] = {}
-    stored_meta = {k: v for k, v in meta.items() if k != "experiment_text"}
-    document = {
-        _FORMAT_KEY: _FORMAT_VERSION,
-        "written_by": f"clampcore {version}",
-        "journal_complete": bool(data.complete),
-        "journal_problems": list(data.problems),
-        "n_samples": n_samples,
-        "columns": column_map,
-        "event_tables": event_map,
-        "placeholders": placeholders,
-        "meta": stored_meta,
-    }
 
-    nwbfile = NWBFile(
-        session_description=description,
-        identifier=str(uuid.uuid4()),
-        session_start_time=_dt.datetime.fromisoformat(meta["session_start"]),
-        experimenter=_experimenter(session.get("experimenter")),
-        lab=_text(session.get("lab")),
-        institution=_text(session.get("institution")),
-        session_id=_text(session.get("session_id")),
-        experiment_description=(
-            "Dynamic clamp: clampcore computed the current of virtual conductances from the "
-            "measured membrane potential, sample by sample, and injected it in current clamp. "
-            "The experiment file is in stimulus_notes."
-        ),
-        keywords=["dynamic clamp", "current clamp", "virtual conductance"],
-        stimulus_notes=experiment_text
-        or "No experiment file text was recorded; see data_collection for the metadata.",
-        notes=(
-            f"Recorded by clampcore {version} from {source}. data_collection holds the run's "
-            "metadata as JSON (amplifier calibration, board, loop-timing statistics, summary)."
-            + ("" if data.complete else " Recovered from a journal that did not end normally.")
-        ),
-        was_generated_by=[["clampcore", version]],
-    )
-    nwbfile.subject = _subject(meta, simulated, placeholders)
+def _e_changes(data: JournalData, element: str, n_rows: int) -> list[tuple[int, float]]:
+    """``(row, e_mV)`` of every logged change of ``element``'s reversal potential."""
+    wanted = [
+        e
+        for e in data.events
+        if e.get("kind") == "param" and e.get("element") == element and e.get("field") == "e_mV"
+    ]
+    if not wanted:
+        return []
+    counter = data.columns.get("sample_counter")
+    first = int(data.meta.get("first_sample", 0))
+    if counter is not None and len(counter) and np.all(np.isfinite(counter)):
+        n_of_row = np.asarray(counter, dtype=np.float64) - float(counter[0])
+    else:
+        n_of_row = np.arange(n_rows, dtype=np.float64)
+    return [
+        (int(np.searchsorted(n_of_row, float(e["sample"]) - first, side="left")), float(e["new"]))
+        for e in wanted
+    ]
 
-    board = meta.get("board")
-    board_text = f" Board: {_dumps(board)}." if board else ""
-    device = nwbfile.create_device(
-        name="clampcore board",
-        description=f"Serial DAQ board driven by clampcore; source: {source}.{board_text}",
-    )
-    if amplifier:
-        nwbfile.add_device(
-            Device(
-                name="amplifier",
-                description=f"Patch-clamp amplifier; calibration used: {_dumps(amplifier)}",
+
+class _Writer:
+    """Builds the NWB objects of one recording (``compact=False``: the float64 layout)."""
+
+    def __init__(self, data: JournalData, compact: bool, compression: Any) -> None:
+        from pynwb import TimeSeries
+
+        self.TimeSeries = TimeSeries
+        self.data = data
+        self.compact = compact
+        self.compression = compression if compact else None
+        self.rate_hz, self.first_sample, self.n_samples = _check_data(data)
+        self.meta = data.meta
+        source = text(self.meta.get("source")) or ""
+        self.cal = (
+            ns.calibration_from_meta(dict(self.meta), source in SIMULATED_SOURCES)
+            if compact
+            else None
+        )
+        self.placeholders: list[str] = []
+        self.nwbfile, self.electrode = new_nwbfile(self.meta, data.complete, self.placeholders)
+        self.common = {"rate": self.rate_hz, "starting_time": self.first_sample / self.rate_hz}
+        self.columns: dict[str, Any] = {}
+        self.modules: dict[str, Any] = {}
+        self.taken: dict[str, set[str]] = {}
+        self.first_counter: int | None = None
+        self.calibration_used = False
+
+    def module(self, name: str, description: str) -> Any:
+        if name not in self.modules:
+            self.modules[name] = self.nwbfile.create_processing_module(
+                name=name, description=description
             )
-        )
+            self.taken[name] = {"timing_statistics", "sample_counter_gaps"}
+        return self.modules[name]
 
-    resistance = electrode_meta.get("resistance_MOhm")
-    electrode_description = _text(electrode_meta.get("description"))
-    if electrode_description is None:
-        electrode_description = (
-            "Virtual electrode of the simulated rig (placeholder)."
-            if simulated
-            else "Patch pipette (placeholder: the experiment file gave no electrode description)."
-        )
-        placeholders.append("electrode.description")
-    location = _text(electrode_meta.get("location"))
-    if location is None and simulated:
-        location = "in silico (placeholder)"
-        placeholders.append("electrode.location")
-    cell_id = _text(electrode_meta.get("cell_id"))
-    if cell_id is None and simulated:
-        cell_id = nwbfile.subject.subject_id
-    electrode = IntracellularElectrode(
-        name="electrode",
-        device=device,
-        description=electrode_description,
-        location=location,
-        resistance=_resistance_text(resistance),
-        cell_id=cell_id,
-    )
-    nwbfile.add_icephys_electrode(electrode)
+    def _series(self, module: tuple[str, str], base: str, values: np.ndarray, **kw: Any) -> str:
+        mod = self.module(*module)
+        name = unique(base, self.taken[mod.name])
+        mod.add(self.TimeSeries(name=name, data=ns.dataset(values, self.compression), **kw))
+        return f"processing/{mod.name}/{name}"
 
-    names = list(data.columns)
-    kinds = {name: _column_kind(name) for name in names}
-    common = {"rate": rate_hz, "starting_time": start_s}
-    response = stimulus = None
-    modules: dict[str, Any] = {}
-    taken: dict[str, set[str]] = {}
+    def _small_ints(self, values: np.ndarray) -> tuple[np.ndarray, dict[str, Any], str]:
+        """``(data, encoding, description suffix)``: unsigned integers if they fit, else float64."""
+        if self.compact:
+            packed = ns.smallest_uint(values)
+            if packed is not None:
+                array, unknown = packed
+                note = "" if unknown is None else f" {unknown} means unknown (NaN in the journal)."
+                return array, {"encoding": "uint", "unknown": unknown}, note
+        return np.asarray(values, dtype=np.float64), {"encoding": "float64"}, ""
 
-    def module(name: str, description: str) -> Any:
-        if name not in modules:
-            modules[name] = nwbfile.create_processing_module(name=name, description=description)
-            taken[name] = {"timing_statistics"}  # the name of the statistics table
-        return modules[name]
+    def _clamp(self, kind: str, column: str, values: np.ndarray) -> Any:
+        """The membrane potential (``kind`` "v") or the command ("i") as a current-clamp
+        series on the electrode: converter counts when the calibration allows, else float64."""
+        from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
 
-    for name in names:
-        kind, element = kinds[name]
-        values = np.asarray(data.columns[name], dtype=np.float64)
-        comment = f"clampcore journal column '{name}'"
         if kind == "v":
-            response = CurrentClampSeries(
-                name="membrane_potential",
-                data=_dataset(values),
-                electrode=electrode,
-                conversion=_MV_IN_V,  # data in mV
-                description="Membrane potential measured by the amplifier, one value per loop "
-                "sample (after clampcore's calibration and liquid-junction correction).",
-                comments=comment,
-                stimulus_description="dynamic clamp (see stimulus_notes)",
-                **common,
-            )
-            column_map[name] = "acquisition/membrane_potential"
-        elif kind == "i":
-            stimulus = CurrentClampStimulusSeries(
-                name="command_current",
-                data=_dataset(values),
-                electrode=electrode,
-                conversion=_PA_IN_A,  # data in pA
-                description="Total command current computed from each sample (positive "
-                "depolarises); in force from the next sample on (plus any extra delay).",
-                comments=comment,
-                stimulus_description="dynamic clamp (see stimulus_notes)",
-                **common,
-            )
-            column_map[name] = "stimulus/command_current"
-        elif kind in ("g", "ie"):
-            mod = module(
-                "virtual_conductances",
-                "Conductance and current of each virtual element (current I = -g (V - E); "
-                "positive current depolarises).",
-            )
-            stem = "conductance" if kind == "g" else "current"
-            series_name = _unique(f"{stem}_{_nwb_name(element)}", taken[mod.name])
-            mod.add(
-                TimeSeries(
-                    name=series_name,
-                    data=_dataset(values),
-                    unit="siemens" if kind == "g" else "amperes",
-                    conversion=_NS_IN_S if kind == "g" else _PA_IN_A,  # data in nS / pA
-                    description=f"{stem.capitalize()} of virtual element '{element}'.",
-                    comments=comment,
-                    **common,
-                )
-            )
-            column_map[name] = f"processing/virtual_conductances/{series_name}"
-        elif kind in ("latency", "turn", "other"):
-            mod = module("loop_timing", "Per-sample timing of the dynamic-clamp loop.")
-            if kind == "latency":
-                base, unit, conversion = "latency_samples", "samples", 1.0
-                text = (
-                    "Loop latency: samples between a sample and the one from which its command "
-                    "was in force, as reported by the board (NaN where unknown)."
-                )
-            elif kind == "turn":
-                base, unit, conversion = "host_turnaround", "seconds", _US_IN_S  # data in µs
-                text = "Host turnaround from frame arrival to command written (NaN where unknown)."
-            else:
-                base, unit, conversion = _nwb_name(name), "n/a", 1.0
-                text = f"Per-sample loop value '{name}'."
-            series_name = _unique(base, taken[mod.name])
-            mod.add(
-                TimeSeries(
-                    name=series_name,
-                    data=_dataset(values),
-                    unit=unit,
-                    conversion=conversion,
-                    description=text,
-                    comments=comment,
-                    **common,
-                )
-            )
-            column_map[name] = f"processing/loop_timing/{series_name}"
-
-    if response is not None:
-        nwbfile.add_acquisition(response)
-    if stimulus is not None:
-        nwbfile.add_stimulus(stimulus)
-    if n_samples and (response is not None or stimulus is not None):  # the table needs a row
-        nwbfile.add_intracellular_recording(
-            electrode=electrode, stimulus=stimulus, response=response
-        )
-
-    tables: list[Any] = []
-    table_names: set[str] = set()
-    for name in names:
-        kind, source_name = kinds[name]
-        if kind != "spike":
-            continue
-        values = np.asarray(data.columns[name], dtype=np.float64)
-        samples = first_sample + np.flatnonzero(values > 0.5)
-        if samples.size == 0:  # an empty table trips nwbinspector; None says "no spikes"
-            column_map[name] = None
-            continue
-        table_name = _unique(f"spikes_{_nwb_name(source_name)}", table_names)
-        who = (
-            "the recorded cell (detected online by clampcore from the measured membrane potential)"
-            if source_name == "cell"
-            else f"virtual neuron '{source_name}' (simulated by clampcore)"
-        )
-        tables.append(
-            _events_table(table_name, f"Spikes of {who}; one row per spike.", samples, rate_hz, [])
-        )
-        column_map[name] = f"events/{table_name}"
-
-    events = sorted(data.events, key=lambda record: record["sample"])  # stable: file order kept
-    by_kind: dict[str, list[dict]] = {}
-    for record in events:
-        by_kind.setdefault(record["kind"], []).append(record)
-    for kind_name, records in by_kind.items():
-        if kind_name == "param":
-            table_name = _unique("parameter_changes", table_names)
-            text = (
-                "Parameter changes applied while running, each at a sample boundary: "
-                "element, field, old and new value (in the field's unit, see stimulus_notes)."
-            )
+            counts = ns.mV_to_adc_exact(values, self.cal) if self.cal else None
+            scale, cls, group = ns.adc_nwb_scale, CurrentClampSeries, "acquisition"
+            name = _V_SERIES
         else:
-            table_name = _unique(f"{_nwb_name(kind_name)}_events", table_names)
-            text = f"Events of kind '{kind_name}' logged by clampcore while running."
-        fields = _event_columns(records)
-        samples = np.array([record["sample"] for record in records], dtype=np.int64)
-        tables.append(_events_table(table_name, text, samples, rate_hz, fields))
-        event_map[table_name] = {
-            "kind": kind_name,
-            "fields": {column: [key, encoding] for column, key, encoding, _ in fields},
-        }
-    for table in tables:
-        nwbfile.add_events_table(table)
-
-    stats = _flatten_numbers(meta.get("timing"))
-    if stats:
-        mod = module("loop_timing", "Per-sample timing of the dynamic-clamp loop.")
-        mod.add(
-            DynamicTable(
-                name="timing_statistics",
-                description="Loop-timing statistics of the whole run (names carry their unit).",
-                columns=[
-                    VectorData(
-                        name="statistic",
-                        description="Name of the statistic.",
-                        data=[key for key, _ in stats],
-                    ),
-                    VectorData(
-                        name="value",
-                        description="Value of the statistic.",
-                        data=np.array([value for _, value in stats], dtype=np.float64),
-                    ),
-                ],
-            )
+            known = self.cal is not None and self.cal.dac_known
+            counts = ns.pA_to_dac(values, self.cal) if known else None
+            scale, cls, group = ns.dac_nwb_scale, CurrentClampStimulusSeries, "stimulus"
+            name = _I_SERIES
+        what, unit, unit_in_si, counts_text = _CLAMP_TEXT[kind]
+        if counts is not None:
+            conversion, offset = scale(self.cal)
+            # resolution: one count
+            kw = {"data": counts, "conversion": conversion, "offset": offset}
+            kw["resolution"] = conversion
+            how = f"{counts_text} (converters: {self.cal.origin})."
+            encoding = "adc_counts" if kind == "v" else "dac_counts"
+            self.calibration_used = True
+        else:
+            kw = {"data": values, "conversion": unit_in_si}
+            how, encoding = f"Stored in {unit} (float64).", "float64"
+        kw["data"] = ns.dataset(kw["data"], self.compression)
+        self.columns[column] = {"path": f"{group}/{name}", "encoding": encoding}
+        return cls(
+            name=name,
+            electrode=self.electrode,
+            description=what + how,
+            comments=f"clampcore journal column '{column}'",
+            stimulus_description="dynamic clamp (see stimulus_notes)",
+            **kw,
+            **self.common,
         )
 
-    nwbfile.data_collection = _dumps(document, indent=1)
-    return nwbfile
+    def add_column(self, name: str, values: np.ndarray) -> None:
+        kind, element = _column_kind(name)
+        values = np.asarray(values, dtype=np.float64)
+        comment = f"clampcore journal column '{name}'"
+        f32 = "float32" if self.compact else "float64"
+        if kind == "v":
+            self.response = self._clamp(kind, name, values)
+        elif kind == "i":
+            self.stimulus = self._clamp(kind, name, values)
+        elif kind in ("g", "ie"):
+            derived = self._derivable(element, values) if kind == "ie" else None
+            if derived is not None:
+                self.columns[name] = derived
+                return
+            stem, unit, unit_in_si, short = (
+                ("conductance", "siemens", _NS_IN_S, "nS")
+                if kind == "g"
+                else ("current", "amperes", _PA_IN_A, "pA")
+            )
+            path = self._series(
+                _VC_MODULE,
+                f"{stem}_{nwb_name(element)}",
+                values.astype(f32),
+                unit=unit,
+                conversion=unit_in_si,  # data in the journal's nS or pA
+                description=f"{stem.capitalize()} of virtual element '{element}' ({f32} {short}).",
+                comments=comment,
+                **self.common,
+            )
+            self.columns[name] = {"path": path, "encoding": f32}
+        elif kind == "counter" and self.compact and (gaps := ns.counter_gaps(values)):
+            first, rows, missing = gaps
+            self.first_counter = first
+            mod = self.module(_TIMING_MODULE, _timing_description(first))
+            if rows.size:
+                add_counter_gaps(mod, first, rows, missing)
+            self.columns[name] = {"path": None, "encoding": "counter_gaps", "first": first}
+        elif kind == "turn":
+            path = self._series(
+                (_TIMING_MODULE, _timing_description(None)),
+                "host_turnaround",
+                values.astype(f32),
+                unit="seconds",
+                conversion=_US_IN_S,  # data in µs
+                description="Host turnaround from frame arrival to command written "
+                f"({f32} µs; NaN where unknown).",
+                comments=comment,
+                **self.common,
+            )
+            self.columns[name] = {"path": path, "encoding": f32}
+        elif kind in ("latency", "counter", "other"):
+            array, spec, note = self._small_ints(values)
+            if kind == "latency":
+                base, unit = "latency_samples", "samples"
+                what = (
+                    "Loop latency: samples between a sample and the one from which its command "
+                    "was in force, as reported by the board."
+                )
+            else:
+                base, unit, what = nwb_name(name), "n/a", f"Per-sample loop value '{name}'."
+            path = self._series(
+                (_TIMING_MODULE, _timing_description(None)),
+                base,
+                array,
+                unit=unit,
+                description=what + note,
+                comments=comment,
+                **self.common,
+            )
+            self.columns[name] = {"path": path, **spec}
+
+    def _derivable(self, element: str, values: np.ndarray) -> dict | None:
+        """The derivation spec when ``-g (V - E)`` reproduces this current, else None."""
+        if not self.compact:
+            return None
+        g = self.data.columns.get(f"g_nS/{element}")
+        v = self.data.columns.get("v_mV")
+        e0 = _elements(self.meta).get(element, {}).get("e_mV")
+        if g is None or v is None or not isinstance(e0, int | float) or isinstance(e0, bool):
+            return None
+        changes = _e_changes(self.data, element, len(values))
+        e = ns.e_schedule(float(e0), changes, len(values))
+        g32 = np.asarray(g, dtype=np.float32)
+        if not ns.current_is_derivable(values, g32, np.asarray(v), e):
+            return None
+        return {
+            "path": None,
+            "encoding": "derived_current",
+            "conductance": f"g_nS/{element}",
+            "e_mV": float(e0),
+            "e_changes": [[row, value] for row, value in changes],
+        }
+
+    def build(self) -> Any:
+        self.response = self.stimulus = None
+        spikes = {}
+        # The counter first: the timing module's description says how to rebuild it.
+        order = sorted(self.data.columns.items(), key=lambda kv: kv[0] != "sample_counter")
+        for name, values in order:
+            if _column_kind(name)[0] == "spike":
+                spikes[name] = values
+            else:
+                self.add_column(name, values)
+        nwbfile = self.nwbfile
+        if self.response is not None:
+            nwbfile.add_acquisition(self.response)
+        if self.stimulus is not None:
+            nwbfile.add_stimulus(self.stimulus)
+        if self.n_samples and (self.response is not None or self.stimulus is not None):
+            nwbfile.add_intracellular_recording(
+                electrode=self.electrode, stimulus=self.stimulus, response=self.response
+            )
+        table_names: set[str] = set()
+        spike_map = add_spike_tables(nwbfile, spikes, self.first_sample, self.rate_hz, table_names)
+        for name, where in spike_map.items():
+            self.columns[name] = {"path": where, "encoding": "spikes"}
+        event_map = add_event_tables(nwbfile, list(self.data.events), self.rate_hz, table_names)
+        if self.meta.get("timing"):
+            mod = self.module(_TIMING_MODULE, _timing_description(self.first_counter))
+            add_timing_statistics(mod, self.meta.get("timing"))
+        document = {
+            _FORMAT_KEY: _FORMAT_VERSION,
+            "written_by": f"clampcore {_version()}",
+            "journal_complete": bool(self.data.complete),
+            "journal_problems": list(self.data.problems),
+            "n_samples": self.n_samples,
+            "columns": {name: self.columns[name] for name in self.data.columns},
+            "calibration": self.cal.to_dict() if self.calibration_used else None,
+            "event_tables": event_map,
+            "placeholders": self.placeholders,
+            "meta": {k: v for k, v in self.meta.items() if k != "experiment_text"},
+        }
+        nwbfile.data_collection = dumps(document, indent=1)
+        return nwbfile
 
 
-def write_nwb(path: Path, data: JournalData, *, overwrite: bool = False) -> None:
+def write_nwb(
+    path: Path,
+    data: JournalData,
+    *,
+    overwrite: bool = False,
+    compact: bool = True,
+    compression: tuple[str, int | None] | None = ns.COMPRESSION,
+) -> None:
     """Write ``data`` (from :func:`~clampcore.journal.read_journal`) as an NWB file at ``path``.
 
     The file is written to ``<stem>.partial.nwb`` beside it and renamed when complete, so
     ``path`` is never left half-written. An existing ``path`` is an error unless
-    ``overwrite``.
+    ``overwrite``. ``compact=False`` writes the first layout (every series float64,
+    uncompressed), kept for comparison (``bench/bench_recording.py``); ``compression``
+    is ``(filter, level)`` for HDF5 (``("gzip", 1)``, ``("lzf", None)``) or None.
     """
     from pynwb import NWBHDF5IO
 
@@ -626,7 +441,7 @@ def write_nwb(path: Path, data: JournalData, *, overwrite: bool = False) -> None
         raise NwbError(f"{path} exists: choose another name or pass overwrite=True")
     if path.is_dir():
         raise NwbError(f"{path} is a directory")
-    nwbfile = _build_nwbfile(data)
+    nwbfile = _Writer(data, compact, compression).build()
     tmp = path.with_name(f"{path.stem}.partial{path.suffix or '.nwb'}")
     try:
         if tmp.exists():
@@ -651,6 +466,110 @@ def journal_to_nwb(journal: Path, out: Path, *, overwrite: bool = False) -> Path
     return Path(out)
 
 
+def convert_journal(journal: Path, out: Path, *, keep_journal: bool = False) -> tuple[Path, bool]:
+    """Journal -> NWB, read back and checked against the journal; then the journal is removed
+    unless ``keep_journal``. Returns ``(out, journal_removed)``. A failed check raises
+    :class:`NwbError` and keeps both files."""
+    journal, out = Path(journal), Path(out)
+    try:
+        data = read_journal(journal)
+    except JournalError as exc:
+        raise NwbError(f"cannot convert {journal}: {exc}") from exc
+    write_nwb(out, data, overwrite=True)
+    problems = check_against_journal(out, data)
+    if problems:
+        raise NwbError(
+            f"{out} does not match its journal ({'; '.join(problems[:3])}): kept both {out} "
+            f"and {journal}"
+        )
+    if keep_journal:
+        return out, False
+    shutil.rmtree(journal, ignore_errors=True)
+    return out, not journal.exists()
+
+
+def check_against_journal(path: Path, data: JournalData) -> list[str]:
+    """Problems found reading ``path`` back against the journal it came from (empty: none).
+
+    Opens the file with pynwb; every stored per-sample series must have the journal's
+    number of samples, every spike and event must be there, and the lossless columns
+    must equal the journal: the membrane potential bit for bit, the command's DAC
+    counts those of the journal's current, the sample counter rebuilt from its gaps.
+    (Float32 columns are checked by length: their rounding is the format's.)
+    """
+    from pynwb import NWBHDF5IO
+
+    try:
+        io = NWBHDF5IO(str(path), mode="r")
+        nwbfile = io.read()
+        document = json.loads(nwbfile.data_collection or "")
+    except Exception as exc:  # not readable as our NWB: that is the problem found
+        return [f"cannot read {path} back: {type(exc).__name__}: {exc}"]
+    problems: list[str] = []
+    with io:
+        n = len(next(iter(data.columns.values()))) if data.columns else 0
+        if document.get("n_samples") != n:
+            problems.append(f"{document.get('n_samples')} samples in the file, {n} in the journal")
+        cal_doc = document.get("calibration")
+        cal = ns.Calibration.from_dict(cal_doc) if cal_doc else None
+        first_sample = int(data.meta.get("first_sample", 0))
+        for name, spec in _storage(document).items():
+            values = data.columns.get(name)
+            encoding, where = spec["encoding"], spec.get("path")
+            if values is None:
+                problems.append(f"column {name} is not in the journal")
+            elif encoding == "spikes":
+                got = read_spike_samples(nwbfile, where)
+                want = first_sample + np.flatnonzero(np.asarray(values) > 0.5)
+                if not np.array_equal(got, want):
+                    problems.append(f"column {name}: {got.size} spikes, not {want.size}")
+            elif encoding == "counter_gaps":
+                first, rows, missing = ns.counter_gaps(values) or (None, None, None)
+                if first != spec["first"] or not np.array_equal(
+                    ns.rebuild_counter(first, n, rows, missing), values
+                ):
+                    problems.append(f"column {name}: the counter does not rebuild")
+            elif encoding != "derived_current":
+                series = _object(nwbfile, where)
+                if series.data.shape != (n,):
+                    problems.append(f"column {name}: {series.data.shape[0]} samples, not {n}")
+                elif encoding == "adc_counts" and not np.array_equal(
+                    ns.adc_to_mV(series.data[:], cal), values
+                ):
+                    problems.append(f"column {name}: values differ from the journal")
+                elif encoding == "dac_counts" and not np.array_equal(
+                    series.data[:], ns.pA_to_dac(values, cal)
+                ):
+                    problems.append(f"column {name}: counts differ from the journal's current")
+        events = sum(len(nwbfile.events[t]) for t in document["event_tables"])
+        if events != len(data.events):
+            problems.append(f"{events} events in the file, {len(data.events)} logged")
+    return problems
+
+
+def compact_bytes_per_row(columns: list[str], adc_bits: int = 16, dac_bits: int = 16) -> int:
+    """Bytes per sample row of the compact layout before compression, an upper bound.
+
+    ``columns`` are a run's journal columns (``RingLayout.names``). Counts for V and I,
+    float32 for conductances, element currents (as if none could be derived),
+    turnaround, and one byte for flags, status and latency; spikes and the counter
+    take no per-sample space. Compression typically divides this by 2-3 (README,
+    Recordings); use it as the conservative figure of a disk budget.
+    """
+    total = 0
+    for name in columns:
+        kind, _ = _column_kind(name)
+        if kind == "v":
+            total += 2 if adc_bits <= 16 else 4
+        elif kind == "i":
+            total += 2 if dac_bits <= 16 else 4
+        elif kind in ("g", "ie", "turn"):
+            total += 4
+        elif kind in ("latency", "other"):
+            total += 1
+    return total
+
+
 # --------------------------------------------------------------------------- reading
 
 
@@ -670,27 +589,81 @@ def _journal_scale(column: str) -> float:
     )
 
 
-def _decode(value: Any, encoding: str) -> Any:
-    if isinstance(value, bytes):
-        value = value.decode("utf-8")
-    if encoding == _JSON_ENCODING:
-        return json.loads(value)
-    if encoding == "int":
-        return int(value)
-    if encoding == "float":
-        return float(value)
-    return str(value)
+def _object(nwbfile: Any, where: str) -> Any:
+    group, _, name = where.partition("/")
+    if group == "acquisition":
+        return nwbfile.acquisition[name]
+    if group == "stimulus":
+        return nwbfile.stimulus[name]
+    if group == "events":
+        return nwbfile.events[name]
+    module_name, _, series_name = name.partition("/")
+    return nwbfile.processing[module_name][series_name]
+
+
+def _storage(document: dict) -> dict[str, dict]:
+    """Per-column storage specs; a version-1 file maps a column to its path (all float64)."""
+    out = {}
+    for column, spec in document["columns"].items():
+        if isinstance(spec, dict):
+            out[column] = spec
+        else:
+            kind = "spikes" if _column_kind(column)[0] == "spike" else "float64"
+            out[column] = {"path": spec, "encoding": kind}
+    return out
+
+
+def _read_columns(
+    nwbfile: Any, storage: dict[str, dict], cal: Any, n: int, first_sample: int, rate_hz: float
+) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    columns: dict[str, np.ndarray] = {}
+    spike_times: dict[str, np.ndarray] = {}
+    derived = []
+    for column, spec in storage.items():
+        encoding, where = spec["encoding"], spec.get("path")
+        if encoding == "spikes":
+            samples = read_spike_samples(nwbfile, where)
+            spike_times[_column_kind(column)[1]] = samples / rate_hz
+            flags = np.zeros(n, dtype=np.float64)
+            flags[samples - first_sample] = 1.0
+            columns[column] = flags
+        elif encoding == "derived_current":
+            derived.append((column, spec))
+        elif encoding == "counter_gaps":
+            rows = missing = np.zeros(0, dtype=np.int64)
+            timing = nwbfile.processing.get(_TIMING_MODULE)
+            if timing is not None and "sample_counter_gaps" in timing.data_interfaces:
+                gaps = timing["sample_counter_gaps"]
+                rows, missing = gaps["row"].data[:], gaps["missing"].data[:]
+            columns[column] = ns.rebuild_counter(int(spec["first"]), n, rows, missing)
+        else:
+            series = _object(nwbfile, where)
+            if encoding == "adc_counts":
+                columns[column] = ns.adc_to_mV(series.data[:], cal)
+            elif encoding == "dac_counts":
+                columns[column] = ns.dac_to_pA(series.data[:], cal)
+            elif encoding == "uint":
+                columns[column] = ns.from_uint(series.data[:], spec.get("unknown"))
+            else:
+                columns[column] = _in_unit(series, _journal_scale(column))
+    for column, spec in derived:
+        e = ns.e_schedule(spec["e_mV"], [tuple(c) for c in spec["e_changes"]], n)
+        columns[column] = ns.derive_current(columns[spec["conductance"]], columns["v_mV"], e)
+    return columns, spike_times
 
 
 def read_nwb_summary(path: Path) -> dict:
     """Read a clampcore NWB file back with pynwb, in the journal's units.
 
     Keys: ``rate_hz``, ``first_sample``, ``starting_time_s``, ``n_samples``,
-    ``v_mV`` and ``i_pA`` (arrays or None), ``columns`` (every journal column by
-    its name, spike columns rebuilt as 0/1), ``spike_times_s`` (source -> array),
-    ``param_changes`` and ``events`` (every event, with ``time_s``), ``timing``,
-    ``summary``, ``meta``, ``source``, ``experiment_text``, ``complete``,
-    ``problems``, ``placeholders``, ``subject``, ``session``, ``electrode``.
+    ``v_mV`` and ``i_pA`` (arrays or None; ``i_pA`` is the command as sent to the
+    board, i.e. rounded to DAC counts, in files of format 2), ``columns`` (every
+    journal column by its name, spike columns rebuilt as 0/1, derived element
+    currents computed), ``spike_times_s`` (source -> array), ``param_changes`` and
+    ``events`` (every event, with ``time_s``), ``timing``, ``summary``, ``meta``,
+    ``source``, ``experiment_text``, ``complete``, ``problems``, ``placeholders``,
+    ``subject``, ``session``, ``electrode``, ``storage`` (how each column is stored),
+    ``calibration`` (or None), ``format_version``.
     """
     from pynwb import NWBHDF5IO
 
@@ -707,57 +680,23 @@ def read_nwb_summary(path: Path) -> dict:
             document = json.loads(nwbfile.data_collection or "")
         except json.JSONDecodeError:
             document = None
-        if not isinstance(document, dict) or document.get(_FORMAT_KEY) != _FORMAT_VERSION:
+        if not isinstance(document, dict) or document.get(_FORMAT_KEY) not in _READABLE_VERSIONS:
             raise NwbError(f"{path} was not written by clampcore (no recording metadata)")
         meta = document["meta"]
         rate_hz = float(meta["rate_hz"])
         first_sample = int(meta.get("first_sample", 0))
         n_samples = int(document["n_samples"])
-
-        columns: dict[str, np.ndarray] = {}
-        spike_times: dict[str, np.ndarray] = {}
-        for column, where in document["columns"].items():
-            group, _, name = (where or "").partition("/")
-            _, element = _column_kind(column)
-            if where is None or group == "events":
-                samples = (
-                    np.zeros(0, dtype=np.int64)
-                    if where is None
-                    else np.asarray(nwbfile.events[name]["sample"].data[:], dtype=np.int64)
-                )
-                spike_times[element] = samples / rate_hz
-                flags = np.zeros(n_samples, dtype=np.float64)
-                flags[samples - first_sample] = 1.0
-                columns[column] = flags
-                continue
-            if group == "acquisition":
-                series = nwbfile.acquisition[name]
-            elif group == "stimulus":
-                series = nwbfile.stimulus[name]
-            else:
-                module_name, _, series_name = name.partition("/")
-                series = nwbfile.processing[module_name][series_name]
-            columns[column] = _in_unit(series, _journal_scale(column))
-
-        events: list[dict] = []
-        for table_name, spec in document["event_tables"].items():
-            table = nwbfile.events[table_name]
-            samples = np.asarray(table["sample"].data[:], dtype=np.int64)
-            field_values = {
-                column: [_decode(v, encoding) for v in table[column].data[:]]
-                for column, (_, encoding) in spec["fields"].items()
-            }
-            for row, sample in enumerate(samples):
-                record = {"sample": int(sample), "kind": spec["kind"]}
-                for column, (key, _) in spec["fields"].items():
-                    record[key] = field_values[column][row]
-                record["time_s"] = int(sample) / rate_hz
-                events.append(record)
-        events.sort(key=lambda record: record["sample"])
-
+        cal_doc = document.get("calibration")
+        cal = ns.Calibration.from_dict(cal_doc) if cal_doc else None
+        storage = _storage(document)
+        columns, spike_times = _read_columns(
+            nwbfile, storage, cal, n_samples, first_sample, rate_hz
+        )
+        events = read_events(nwbfile, document["event_tables"], rate_hz)
         subject = nwbfile.subject
         electrode = next(iter(nwbfile.icephys_electrodes.values()), None)
         summary = {
+            "format_version": document[_FORMAT_KEY],
             "rate_hz": rate_hz,
             "first_sample": first_sample,
             "starting_time_s": first_sample / rate_hz,
@@ -765,6 +704,8 @@ def read_nwb_summary(path: Path) -> dict:
             "v_mV": columns.get("v_mV"),
             "i_pA": columns.get("i_pA"),
             "columns": columns,
+            "storage": storage,
+            "calibration": cal,
             "spike_times_s": spike_times,
             "param_changes": [e for e in events if e["kind"] == "param"],
             "events": events,

@@ -31,7 +31,7 @@ import numpy as np
 
 from clampcore.experiment import Experiment
 from clampcore.journal import Journal, JournalData, JournalError, read_journal
-from clampcore.nwb import NwbError, journal_to_nwb, write_nwb
+from clampcore.nwb import NwbError, compact_bytes_per_row, convert_journal, write_nwb
 from clampcore.program import Program, build_program
 from clampcore.shared import CTRL_STOP, CTRL_ZERO, MAIL_TO_LOOP, RingLayout, SharedRun
 
@@ -55,16 +55,16 @@ class RecordingError(RuntimeError):
 def bytes_per_second(experiment: Experiment) -> float:
     """Disk bytes one second of a run of ``experiment`` needs, at most.
 
-    The journal stores one float64 per ring column (``RingLayout``: 7 fixed columns, g and
-    i of every element, a spike flag per spike source) and sample; at stop the NWB file
-    holds the same columns as float64 (gzip, used above 50 MB, only makes it smaller) and
-    both exist on disk until the run ends, so twice the journal's rate. Events (parameter
-    changes) are a few hundred bytes each and left out. Adjust here when the recording's
-    layout changes.
+    The journal stores one float64 per ring column (``RingLayout``: the fixed columns, g
+    and i of every element, a spike flag per spike source) and sample; at stop the NWB
+    file is written beside it (``clampcore.nwb.compact_bytes_per_row``, an upper bound
+    before compression) and both exist on disk until the NWB file is checked. Events
+    (parameter changes) are a few hundred bytes each and left out. Adjust here when the
+    recording's layout changes.
     """
-    layout = RingLayout.for_program(build_program(experiment))
-    journal = layout.columns * _JOURNAL_ITEM_BYTES * float(experiment.loop["rate_hz"])
-    return 2.0 * journal
+    names = RingLayout.for_program(build_program(experiment)).names
+    row_bytes = len(names) * _JOURNAL_ITEM_BYTES + compact_bytes_per_row(names)
+    return row_bytes * float(experiment.loop["rate_hz"])
 
 
 def _mb(n_bytes: float) -> str:
@@ -171,7 +171,8 @@ class Recorder:
         self._slot_names = _slot_names(program)
         # Why the recording failed (None while it works): the loop was told 0 pA and stop.
         self.error: str | None = None
-        self._row_bytes = self.layout.columns * _JOURNAL_ITEM_BYTES
+        self._bytes_per_s = bytes_per_second(program.experiment)
+        self._nwb_row_bytes = compact_bytes_per_row(self.layout.names)
         self._rate_hz = float(program.experiment.loop["rate_hz"])
         self._next_space_check = 0.0
         self._duration_s = duration_s  # None: open-ended
@@ -209,10 +210,10 @@ class Recorder:
             return
         self._next_space_check = now + SPACE_CHECK_S
         free = shutil.disk_usage(self.path).free
-        # The NWB file of what is recorded (at most the journal's size) plus a margin.
-        needed = self.journal.rows_written * self._row_bytes + SPACE_MARGIN_S * 2 * (
-            self._row_bytes * self._rate_hz
-        )  # 2x: journal and NWB, as in bytes_per_second
+        # The NWB file of what is recorded so far, and a margin of journal and NWB.
+        needed = (
+            self.journal.rows_written * self._nwb_row_bytes + SPACE_MARGIN_S * self._bytes_per_s
+        )
         if free < needed:
             self.fail(
                 f"the disk of {self.path} is almost full: {_mb(free)} free, "
@@ -221,9 +222,7 @@ class Recorder:
             return
         elapsed_s = self.journal.rows_written / self._rate_hz
         rest_s = OPEN_ENDED_S if self._duration_s is None else self._duration_s - elapsed_s
-        if self.warning is None and free < needed + max(rest_s, 0.0) * 2 * (
-            self._row_bytes * self._rate_hz
-        ):
+        if self.warning is None and free < needed + max(rest_s, 0.0) * self._bytes_per_s:
             span = "ten more minutes" if self._duration_s is None else "the rest of the run"
             self.warning = (
                 f"warning: the disk of {self.path} has {_mb(free)} free, not enough for {span}; "
@@ -268,10 +267,12 @@ class Recorder:
         self,
         final_meta: dict[str, Any] | None = None,
         nwb_path: Path | None = None,
-        overwrite: bool = False,
+        keep_journal: bool = False,
     ) -> Path | None:
         """Drain the rest, close the journal, convert it to NWB; returns the NWB path.
 
+        The journal is removed once the NWB file has been read back and checked against
+        it, unless ``keep_journal``; a failed check raises ``NwbError`` and keeps both.
         A run that recorded no sample (it never started) leaves no files: returns None.
         """
         self._stop.set()
@@ -297,7 +298,8 @@ class Recorder:
             return None
         out = Path(nwb_path or self.path.with_suffix(".nwb"))
         try:
-            return journal_to_nwb(self.path, out, overwrite=overwrite)
+            path, _ = convert_journal(self.path, out, keep_journal=keep_journal)
+            return path
         except (NwbError, OSError, RuntimeError) as exc:  # h5py reports a full disk so
             kept = self.journal.rows_written
             self.error = (

@@ -16,10 +16,11 @@ board needs no calibration and no ``exp``:
 * **spike detection**: adc >= ``spike_adc`` while armed (re-armed below
   ``rearm_adc``); a crossing during an imposed reset is the same spike;
 * **guards**: an ADC count outside [adc_ok_lo, adc_ok_hi] (|V| beyond the
-  implausible-V limit), no law, a law older than ``lifetime`` samples, a
-  non-finite x, or the zero request → the fault value (0 pA); x is clipped to
-  [limit_lo, limit_hi] (the current limit in DAC units), then rounded
-  (floor(x + 1/2)) and clipped to the DAC's counts.
+  implausible-V limit; such a count advances neither detector nor reset), no law,
+  a law older than ``lifetime`` samples, a non-finite x, or the zero request → the
+  fault value (0 pA); x is clipped to [limit_lo, limit_hi] (the current limit in DAC
+  units), then rounded (floor(x + 1/2), exactly: not x + 0.5 in float32, which
+  rounds 0.49999997 up) and clipped to the DAC's counts.
 
 Floating point: float32 throughout, one rounding per operation and no fused
 multiply-add (C: ``-ffp-contract=off``; numba does not contract without fastmath),
@@ -83,12 +84,15 @@ BF_FLAG_NONFINITE = 0x80  # the law gave a non-finite value
 
 
 def new_board_arrays(table_points: int = 0) -> tuple[np.ndarray, ...]:
-    """Zeroed ``(bf, bi, bs, law, table)``: no law, detector armed, block off."""
+    """Zeroed ``(bf, bi, bs, law, table)``: no law, block off, detector disarmed.
+
+    The detector arms once V falls below the re-arm count, as the host's step (a run
+    that starts above threshold does not count a spike at its first sample).
+    """
     bf = np.zeros(N_BF, dtype=np.float32)
     bi = np.zeros(N_BI, dtype=np.int64)
     bi[BI_BLOCK_SHIFT] = -1
     bs = np.zeros(N_BS, dtype=np.int64)
-    bs[BS_ARMED] = 1
     bs[BS_LAW_SAMPLE] = -1
     return bf, bi, bs, np.zeros(N_LAW, dtype=np.float32), np.ones(table_points, np.float32)
 
@@ -122,30 +126,34 @@ def board_eval(
 ) -> int:
     """The DAC count for sample ``k`` read as ``adc``; returns counts | flags << 16."""
     flags = 0
+    # An implausible count advances nothing (as the host's step): no spike, no reset.
+    bad_v = adc < bi[BI_ADC_OK_LO] or adc > bi[BI_ADC_OK_HI]
     # Spike detection, then threshold-and-reset (both on the fresh count).
     detected = False
-    if bs[BS_ARMED] != 0:
-        if adc >= bi[BI_SPIKE_ADC]:
-            bs[BS_ARMED] = 0
-            detected = True
-    elif adc < bi[BI_REARM_ADC]:
-        bs[BS_ARMED] = 1
-    clamping = bs[BS_TR_REMAIN] > 0
     fired = False
-    if not clamping and adc >= bi[BI_TR_ADC]:
-        bs[BS_TR_REMAIN] = bi[BI_TR_SAMPLES]
-        fired = True
-    reset_on = bs[BS_TR_REMAIN] > 0
-    if reset_on:
-        bs[BS_TR_REMAIN] -= 1
-        flags |= BF_FLAG_RESET
+    clamping = bs[BS_TR_REMAIN] > 0
+    reset_on = False
+    if not bad_v:
+        if bs[BS_ARMED] != 0:
+            if adc >= bi[BI_SPIKE_ADC]:
+                bs[BS_ARMED] = 0
+                detected = True
+        elif adc < bi[BI_REARM_ADC]:
+            bs[BS_ARMED] = 1
+        if not clamping and adc >= bi[BI_TR_ADC]:
+            bs[BS_TR_REMAIN] = bi[BI_TR_SAMPLES]
+            fired = True
+        reset_on = bs[BS_TR_REMAIN] > 0
+        if reset_on:
+            bs[BS_TR_REMAIN] -= 1
+            flags |= BF_FLAG_RESET
     if fired or (detected and not clamping):
         flags |= BF_FLAG_SPIKE
 
     fault = 0
     if bs[BS_HOLD_ZERO] != 0:
         fault = BF_FLAG_ZERO
-    elif adc < bi[BI_ADC_OK_LO] or adc > bi[BI_ADC_OK_HI]:
+    elif bad_v:
         fault = BF_FLAG_BAD_V
     elif bs[BS_LAW_SAMPLE] < 0 or k - bs[BS_LAW_SAMPLE] > bi[BI_LIFETIME]:
         fault = BF_FLAG_STALE
@@ -167,7 +175,11 @@ def board_eval(
             elif x > bf[BF_LIMIT_HI]:
                 x = bf[BF_LIMIT_HI]
                 flags |= BF_FLAG_LIMITED
-            c = math.floor(x + np.float32(0.5))
+            # floor(x + 1/2) exactly: x - floor(x) is exact in float32, x + 0.5 is not
+            # (0.49999997 + 0.5 rounds to 1).
+            c = math.floor(x)
+            if x - np.float32(c) >= np.float32(0.5):
+                c += 1
             counts = min(max(c, 0), bi[BI_DAC_TOP])
     if fault != 0:
         flags |= BF_FLAG_FAULT | fault

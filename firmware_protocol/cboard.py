@@ -4,11 +4,14 @@ Public names:
 
 * ``C_SOURCE_DIR`` - where ``ccb.h``, ``ccb_core.c`` and ``ports/`` live.
 * ``STRICT_FLAGS`` - the warning flags every C file must pass.
+* ``LAW_FLAGS`` - the extra flag ``ccb_law.c`` needs (no fused multiply-add).
 * ``CompilerMissingError`` - raised when no C compiler is found.
 * ``find_c_compiler() -> str | None`` - ``$CC``, ``cc``, ``gcc`` or ``clang``.
 * ``sanitizers_work(tmpdir) -> bool`` - whether ASan/UBSan binaries build and run here.
 * ``build_core_library(tmpdir) -> Path`` - shared library of the core plus the in-memory
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
+* ``build_law_library(tmpdir, opt="-O2", extra=()) -> Path`` - shared library of the board's
+  per-sample arithmetic (``ccb_law.c``) for ctypes (see ``firmware_protocol.claw``).
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
 * ``build_pty_board(tmpdir) -> Path`` - the pseudo-terminal board (``ports/pty_board.c``).
 * ``PtyBoard`` / ``start_pty_board(binary, *options) -> PtyBoard`` - run it; the
@@ -62,6 +65,26 @@ def build_core_library(tmpdir: str | os.PathLike[str]) -> Path:
     out = Path(tmpdir) / "libccb_mem.so"
     srcs = [*_core_sources(), str(C_SOURCE_DIR / "ports" / "memory_port.c")]
     _compile([*STRICT_FLAGS, *_OPT, "-fPIC", "-shared", *srcs, "-o", str(out)], "libccb_mem")
+    return out
+
+
+# The law's float32 arithmetic must round once per operation: no fused multiply-add.
+LAW_FLAGS = ("-ffp-contract=off",)
+
+
+def build_law_library(
+    tmpdir: str | os.PathLike[str], opt: str = "-O2", extra: tuple[str, ...] = ()
+) -> Path:
+    """Compile ``ccb_law.c`` into a shared library in ``tmpdir`` and return its path.
+
+    ``opt`` is the optimisation level (-O0, -O2, -Os ...), ``extra`` more flags (e.g.
+    ``-march=native``, which offers fused multiply-add where the machine has it).
+    """
+    out = Path(tmpdir) / f"libccb_law{opt}{''.join(extra)}.so"
+    src = str(C_SOURCE_DIR / "ccb_law.c")
+    args = [*STRICT_FLAGS, opt, *extra, *LAW_FLAGS, "-fPIC", "-shared", src, "-o", str(out)]
+    args.append("-lm")
+    _compile(args, "libccb_law")
     return out
 
 

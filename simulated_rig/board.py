@@ -1456,7 +1456,7 @@ class Board:
         ):
             st[i] = 0  # counters cover one run
         lb = self.law_board
-        lb.bs[:] = boardlaw.new_board_arrays()[2]  # detector armed, no law, zero request off
+        lb.bs[:] = boardlaw.new_board_arrays()[2]  # detector disarmed, no law, zero request off
         st[S_CMD_COUNTS] = st[S_FAULT_COUNTS]  # laws queued in READY for samples 0.. stay
         st[S_RUN] += 1
         self._log_events(

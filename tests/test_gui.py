@@ -288,11 +288,21 @@ def test_live_leak_change_reaches_the_recorded_current(qtbot, tmp_path):
     v = rec["columns"]["v_mV"]
     i = rec["columns"]["i_pA"]
     assert 1000 < s < v.size - 1000
-    # Reference: I = -g (V - E) from the recorded V, with g before and after the change.
-    np.testing.assert_allclose(i[:s], -2.0 * (v[:s] + 40.0), rtol=1e-9, atol=1e-9)
-    np.testing.assert_allclose(i[s:], -6.0 * (v[s:] + 40.0), rtol=1e-9, atol=1e-9)
+    # Reference: I = -g (V - E) from the recorded V, with g before and after the change; the
+    # recording holds the command as DAC counts sent: within half a DAC step.
+    half = _half_dac_step_pA(rec)
+    np.testing.assert_allclose(i[:s], -2.0 * (v[:s] + 40.0), rtol=0, atol=half)
+    np.testing.assert_allclose(i[s:], -6.0 * (v[s:] + 40.0), rtol=0, atol=half)
     # And the current did change there (not just both formulas agreeing on nothing).
     assert i[s] > 2.5 * i[s - 1] > 0
+
+
+def _half_dac_step_pA(rec: dict) -> float:
+    """Half of one DAC count in pA, from the recording's calibration (rounding to counts)."""
+    from clampcore.nwb_series import dac_to_pA
+
+    step = np.diff(dac_to_pA(np.array([0, 1]), rec["calibration"]))[0]
+    return float(abs(step)) / 2 * (1 + 1e-9)
 
 
 def test_zero_current_control(qtbot, tmp_path):
@@ -321,9 +331,10 @@ def test_zero_current_control(qtbot, tmp_path):
     assert held.sum() >= 1000
     edges = np.flatnonzero(np.diff(held.astype(int)))
     assert edges.size == 2  # one held stretch, then released
-    assert np.all(i[held] == 0.0)
+    half = _half_dac_step_pA(rec)  # the command is recorded as the DAC counts sent
+    assert np.all(np.abs(i[held]) <= half)
     # Outside it, the leak's current (I = -g (V - E), 2 nS, -40 mV) is commanded again.
-    np.testing.assert_allclose(i[~held], -2.0 * (v[~held] + 40.0), rtol=1e-9, atol=1e-9)
+    np.testing.assert_allclose(i[~held], -2.0 * (v[~held] + 40.0), rtol=0, atol=half)
     assert np.all(i[~held] > 0)
 
 

@@ -77,6 +77,13 @@ def _run(engine: Engine, duration_s: float | None, out: Path, timeout_s: float =
     return engine.finish()
 
 
+def _as_sent(offline) -> list[float]:
+    """The offline command as the board received it: recordings keep the DAC counts sent
+    (through the loop's own per-sample kernels, clampcore.calibration)."""
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, offline.experiment.amplifier)
+    return [counts_to_pA(conv, pA_to_counts(conv, x)) for x in offline.i_pA]
+
+
 def _valid(path: Path) -> dict:
     # pynwb's validator returns a list of problems (empty = valid); read what it returns.
     assert validate_nwb(path) == []
@@ -92,9 +99,11 @@ def test_lockstep_run_equals_offline_simulation(tmp_path, in_thread):
     rec = _valid(result.nwb_path)
     offline = clampcore.simulate(exp, 0.5, seed=3)
     np.testing.assert_array_equal(rec["v_mV"], offline.v_mV)
-    np.testing.assert_array_equal(rec["i_pA"], offline.i_pA)
+    # The recording keeps the command as the DAC counts sent, and conductances as float32.
+    np.testing.assert_array_equal(rec["i_pA"], _as_sent(offline))
     np.testing.assert_array_equal(
-        rec["columns"]["g_nS/background_exc"], offline.g_nS["background_exc"]
+        rec["columns"]["g_nS/background_exc"],
+        offline.g_nS["background_exc"].astype(np.float32),
     )
     np.testing.assert_allclose(rec["spike_times_s"].get("cell", []), offline.spike_times_s)
     # In lockstep every command is in force at the very next sample.
@@ -371,4 +380,4 @@ def test_pyserial_url_with_python_io_equals_offline_simulation(tmp_path):
     rec = _valid(result.nwb_path)
     offline = clampcore.simulate(exp, 0.2)
     np.testing.assert_array_equal(rec["v_mV"], offline.v_mV)
-    np.testing.assert_array_equal(rec["i_pA"], offline.i_pA)
+    np.testing.assert_array_equal(rec["i_pA"], _as_sent(offline))

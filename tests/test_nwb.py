@@ -18,8 +18,23 @@ import numpy as np
 import pytest
 from pynwb import NWBHDF5IO
 
+from clampcore.calibration import (
+    DEFAULT_BOARD_ADC,
+    DEFAULT_BOARD_DAC,
+    conversion_array,
+    counts_to_pA,
+    pA_to_counts,
+)
 from clampcore.journal import Journal, JournalData, read_journal
-from clampcore.nwb import NwbError, journal_to_nwb, read_nwb_summary, validate_nwb, write_nwb
+from clampcore.nwb import (
+    NwbError,
+    check_against_journal,
+    journal_to_nwb,
+    read_nwb_summary,
+    validate_nwb,
+    write_nwb,
+)
+from clampcore.nwb_metadata import SYNTHETIC_SPECIES
 
 RATE_HZ = 20000.0
 START = "2026-03-02T09:30:00+01:00"
@@ -40,15 +55,24 @@ COLUMNS = [
 EXPERIMENT_TEXT = '[loop]\nrate_hz = 20000\n\n[[element]]\nname = "gNa"\nkind = "hh_na"\n'
 
 
-def _serious_inspector_messages(path: Path) -> list[str]:
-    """nwbinspector messages of importance CRITICAL or above (incl. its own check errors)."""
+def _serious_inspector_messages(path: Path, least: str = "CRITICAL") -> list[str]:
+    """nwbinspector messages of importance ``least`` or above (incl. its own check errors)."""
     from nwbinspector import Importance, inspect_nwbfile
 
     return [
         f"{m.importance.name} {m.object_type} {m.object_name}: {m.message[:300]}"
         for m in inspect_nwbfile(nwbfile_path=str(path))
-        if m.importance.value >= Importance.CRITICAL.value
+        if m.importance.value >= Importance[least].value
     ]
+
+
+_AMPLIFIER = {
+    "vm_mV_per_V": 100.0,
+    "command_pA_per_V": 400.0,
+    "vm_offset_mV": 0.0,
+    "command_offset_pA": 0.0,
+    "liquid_junction_mV": 0.0,
+}
 
 
 def _meta(**extra: object) -> dict:
@@ -57,7 +81,7 @@ def _meta(**extra: object) -> dict:
         "session_start": START,
         "source": "simulated rig",
         "experiment_text": EXPERIMENT_TEXT,
-        "experiment": {"amplifier": {"vm_mV_per_V": 100.0, "command_pA_per_V": 400.0}},
+        "experiment": {"amplifier": dict(_AMPLIFIER)},
         "board": {"firmware": "clampcore-board 1", "adc_bits": 16},
         **extra,
     }
@@ -114,8 +138,19 @@ def test_round_trip_journal_nwb_pynwb(tmp_path: Path) -> None:
     assert _serious_inspector_messages(out) == []  # reference: nwbinspector
 
     summary = read_nwb_summary(out)
-    for name in COLUMNS:  # exact: data are stored in the journal's units
-        np.testing.assert_array_equal(summary["columns"][name], data.columns[name], err_msg=name)
+    # The command is stored as the DAC counts sent: expected through the loop's own per-sample
+    # kernels (clampcore.calibration) and the simulated rig's converters, not the writer's.
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, _AMPLIFIER)
+    sent = [counts_to_pA(conv, pA_to_counts(conv, x)) for x in data.columns["i_pA"]]
+    for name in COLUMNS:
+        expected = np.asarray(data.columns[name])
+        if name == "i_pA":
+            expected = np.asarray(sent)
+        elif name.startswith(("g_nS/", "i_pA/")) or name == "turnaround_us":
+            expected = expected.astype(np.float32)  # stored as float32
+        np.testing.assert_array_equal(summary["columns"][name], expected, err_msg=name)
+    # V here is random, not on the ADC's grid: stored as float64 mV, exactly.
+    assert summary["storage"]["v_mV"]["encoding"] == "float64"
     np.testing.assert_array_equal(summary["v_mV"], data.columns["v_mV"])
     np.testing.assert_array_equal(summary["spike_times_s"]["cell"], [40 / RATE_HZ, 0.045, 0.075])
     np.testing.assert_array_equal(summary["spike_times_s"]["quiet"], [])
@@ -145,7 +180,9 @@ def test_round_trip_journal_nwb_pynwb(tmp_path: Path) -> None:
         np.testing.assert_allclose(v.data[:] * v.conversion, data.columns["v_mV"] * 1e-3)
         i = nwbfile.stimulus["command_current"]
         assert type(i).__name__ == "CurrentClampStimulusSeries"
-        assert i.unit == "amperes" and i.conversion == 1e-12
+        assert i.unit == "amperes" and i.data.dtype == np.uint16
+        # NWB specification: value in SI = data x conversion + offset.
+        np.testing.assert_allclose(i.data[:] * i.conversion + i.offset, np.asarray(sent) * 1e-12)
         assert i.electrode is v.electrode and v.electrode.device.name == "clampcore board"
         g = nwbfile.processing["virtual_conductances"]["conductance_syn_AMPA"]
         assert g.unit == "siemens" and g.conversion == 1e-9
@@ -227,8 +264,8 @@ def test_metadata_from_the_experiment_file(tmp_path: Path) -> None:
 @pytest.mark.parametrize(
     ("source", "subject_id", "species"),
     [
-        ("offline simulation", "simulated-cell", "in silico model cell"),
-        ("simulated rig", "simulated-cell", "in silico model cell"),
+        ("offline simulation", "simulated-cell", SYNTHETIC_SPECIES),
+        ("simulated rig", "simulated-cell", SYNTHETIC_SPECIES),
         ("/dev/ttyUSB0", "unspecified", "unspecified"),
     ],
 )
@@ -246,6 +283,8 @@ def test_placeholders_when_metadata_is_missing(
     assert validate_nwb(out) == []  # reference: pynwb's validator
     # reference: nwbinspector calls a missing Subject, subject_id, age or sex CRITICAL
     assert _serious_inspector_messages(out) == []
+    if source != "/dev/ttyUSB0":  # a model cell's subject passes the species checks too
+        assert _serious_inspector_messages(out, "BEST_PRACTICE_VIOLATION") == []
     summary = read_nwb_summary(out)
     assert summary["subject"]["subject_id"] == subject_id
     assert summary["subject"]["species"] == species
@@ -397,5 +436,6 @@ def test_sixty_seconds_at_20_kHz_four_columns(tmp_path: Path) -> None:
     assert validate_nwb(out) == []  # reference: pynwb's validator
     summary = read_nwb_summary(out)
     data = read_journal(path)
-    for name in columns:
-        np.testing.assert_array_equal(summary["columns"][name], data.columns[name])
+    np.testing.assert_array_equal(summary["v_mV"], data.columns["v_mV"])  # float64 (off-grid)
+    np.testing.assert_array_equal(summary["columns"]["spike/cell"], data.columns["spike/cell"])
+    assert check_against_journal(out, data) == []

@@ -8,7 +8,7 @@
 
 void ccb_law_reset(ccb_law_state *s)
 {
-    s->armed = 1;
+    s->armed = 0; /* arms below rearm_adc, as the host's step: no spike at a first sample */
     s->tr_remain = 0;
     s->law_sample = -1;
     s->hold_zero = 0;
@@ -35,33 +35,38 @@ uint16_t ccb_law_eval(const ccb_law_params *p, ccb_law_state *s, const float *ta
     int32_t adc = (int32_t)adc_u;
     unsigned flags = 0u;
     unsigned fault = 0u;
-    int detected = 0, clamping, fired = 0, reset_on;
+    int detected = 0, clamping, fired = 0, reset_on, bad_v;
     int32_t counts = p->fault_counts;
 
-    if (s->armed) {
-        if (adc >= p->spike_adc) {
-            s->armed = 0;
-            detected = 1;
-        }
-    } else if (adc < p->rearm_adc) {
-        s->armed = 1;
-    }
+    /* An implausible count advances nothing (as the host's step): no spike, no reset. */
+    bad_v = adc < p->adc_ok_lo || adc > p->adc_ok_hi;
     clamping = s->tr_remain > 0;
-    if (!clamping && adc >= p->tr_adc) {
-        s->tr_remain = p->tr_samples;
-        fired = 1;
-    }
-    reset_on = s->tr_remain > 0;
-    if (reset_on) {
-        s->tr_remain -= 1;
-        flags |= CCB_LAW_RESET;
+    reset_on = 0;
+    if (!bad_v) {
+        if (s->armed) {
+            if (adc >= p->spike_adc) {
+                s->armed = 0;
+                detected = 1;
+            }
+        } else if (adc < p->rearm_adc) {
+            s->armed = 1;
+        }
+        if (!clamping && adc >= p->tr_adc) {
+            s->tr_remain = p->tr_samples;
+            fired = 1;
+        }
+        reset_on = s->tr_remain > 0;
+        if (reset_on) {
+            s->tr_remain -= 1;
+            flags |= CCB_LAW_RESET;
+        }
     }
     if (fired || (detected && !clamping))
         flags |= CCB_LAW_SPIKE;
 
     if (s->hold_zero)
         fault = CCB_LAW_ZERO;
-    else if (adc < p->adc_ok_lo || adc > p->adc_ok_hi)
+    else if (bad_v)
         fault = CCB_LAW_BAD_V;
     else if (s->law_sample < 0 || k - s->law_sample > (int64_t)p->lifetime)
         fault = CCB_LAW_STALE;
@@ -84,7 +89,11 @@ uint16_t ccb_law_eval(const ccb_law_params *p, ccb_law_state *s, const float *ta
                 x = p->limit_hi;
                 flags |= CCB_LAW_LIMITED;
             }
-            c = floorf(x + 0.5f);
+            /* floor(x + 1/2) exactly: x - floor(x) is exact in float32, x + 0.5f is not
+             * (0.49999997f + 0.5f rounds to 1). */
+            c = floorf(x);
+            if (x - c >= 0.5f)
+                c = c + 1.0f;
             if (c < 0.0f)
                 counts = 0;
             else if (c > (float)p->dac_top)

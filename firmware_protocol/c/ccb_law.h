@@ -10,6 +10,10 @@
  *   x = alpha - beta*adc + B(adc)*(alpha_b - beta_b*adc) [+ tr_alpha - tr_beta*adc]
  *   counts = clip(floor(clip(x, limit_lo, limit_hi) + 0.5), 0, dac_top)
  *
+ * counts = floor(x + 1/2) exactly (PROTOCOL.md section 6), not floorf(x + 0.5f), which
+ * rounds 0.49999997f up. An ADC count outside [adc_ok_lo, adc_ok_hi] advances neither
+ * the spike detector nor threshold-and-reset (as the host's step).
+ *
  * B is a table of the Mg2+ block that the host computes over the ADC range
  * (points 2^block_shift counts apart); the board interpolates it linearly.
  */
@@ -57,7 +61,7 @@ typedef struct {
     ccb_law law;        /* the law in force */
 } ccb_law_state;
 
-/* No law, detector armed, zero request off. */
+/* No law, detector disarmed (it arms once adc < rearm_adc), zero request off. */
 void ccb_law_reset(ccb_law_state *s);
 /* Put a law made for sample `sample` in force (call at that sample). */
 void ccb_law_set(ccb_law_state *s, const ccb_law *law, int64_t sample);
