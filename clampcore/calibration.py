@@ -15,7 +15,8 @@ applies. All four are compiled and read one float64 array ``conv`` built by
 
 Public names: ``Converter``, ``DEFAULT_BOARD_ADC``, ``DEFAULT_BOARD_DAC``,
 ``conversion_array``, ``counts_to_mV``, ``pA_to_counts``, ``mV_to_counts``,
-``counts_to_pA``, ``current_range_pA``, ``current_limit_problem``.
+``counts_to_pA``, ``current_range_pA``, ``current_limit_problem``,
+``range_limit_problem``.
 """
 
 from __future__ import annotations
@@ -105,7 +106,16 @@ def current_limit_problem(conv: np.ndarray, max_current_pA: float) -> str | None
     The rule for every run, live or offline: the DAC and amplifier must reach ±limit, or a
     command inside the limit would be clipped silently at the converter.
     """
-    lo, hi = current_range_pA(conv)
+    return range_limit_problem(current_range_pA(conv), max_current_pA)
+
+
+def range_limit_problem(range_pA: tuple[float, float], max_current_pA: float) -> str | None:
+    """``current_limit_problem`` for a known range (lo, hi) of commandable current, pA.
+
+    A running loop publishes its board's range; a live change of the limit passes this
+    same rule as Start, so the recording never shows a current the cell did not receive.
+    """
+    lo, hi = range_pA
     if lo > -max_current_pA or hi < max_current_pA:
         return (
             f"the board and amplifier can command {lo:.0f}..{hi:.0f} pA, "

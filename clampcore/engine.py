@@ -43,9 +43,14 @@ from typing import Any
 import numpy as np
 
 from clampcore.board_link import BoardError, BoardLink, board_converters
-from clampcore.calibration import conversion_array, current_limit_problem, pA_to_counts
+from clampcore.calibration import (
+    conversion_array,
+    current_limit_problem,
+    current_range_pA,
+    pA_to_counts,
+)
 from clampcore.elements import KIND_NEURON
-from clampcore.experiment import Experiment, load_experiment
+from clampcore.experiment import Experiment, ExperimentError, load_experiment
 from clampcore.health import loop_health
 from clampcore.hostloop import (
     EXIT_BOARD_SILENT,
@@ -240,6 +245,7 @@ def _loop_process(
         problem = current_limit_problem(conv, exp.loop["max_current_pA"])
         if problem:
             raise EngineError(f"refusing to start: {problem}")
+        shared.publish_current_range(*current_range_pA(conv))  # live changes: the same rule
         rate = round(exp.loop["rate_hz"])
         if rate > hello.max_rate_hz:
             raise EngineError(
@@ -598,7 +604,13 @@ class Engine:
 
     def change(self, element: str, field_name: str, value: Any) -> int:
         """Validate and send a live change; returns its mailbox number."""
-        stored = check_live_change(self.program, element, field_name, value)
+        board_range = self.shared.current_range_pA() if self.shared is not None else None
+        if board_range is None and (element, field_name) == ("loop", "max_current_pA"):
+            raise ExperimentError(
+                "section [loop]", field_name, value,
+                "the board's current range is known only once the run has started: try again",
+            )  # fmt: skip
+        stored = check_live_change(self.program, element, field_name, value, board_range)
         slot = self.program.param_slot(element, field_name)
         if self.shared is None:
             raise EngineError("not running")

@@ -18,6 +18,7 @@ import numpy as np
 
 from clampcore import elements as el_mod
 from clampcore import step as step_mod
+from clampcore.calibration import range_limit_problem
 from clampcore.elements import current, neuron, synapse
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.rng import seed_state
@@ -224,16 +225,27 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
     )
 
 
-def check_live_change(program: Program, element: str, field: str, value: Any) -> float:
+def check_live_change(
+    program: Program,
+    element: str,
+    field: str,
+    value: Any,
+    board_range_pA: tuple[float, float] | None = None,
+) -> float:
     """Validate a live change with the loader's own rules; return the float to store.
 
-    Raises ``ExperimentError`` (naming element, field and value) or ``KeyError``.
+    ``board_range_pA``: what board and amplifier can command, when a board runs; a
+    new ``max_current_pA`` must then pass the same rule as at Start
+    (``calibration.range_limit_problem``). Raises ``ExperimentError`` (naming element,
+    field and value, and why) or ``KeyError``.
     """
     exp = program.experiment
     program.param_slot(element, field)  # KeyError when not live
     if element == "loop":
         f = {x.name: x for x in SECTION_FIELDS["loop"]}[field]
         reason = check_value(f, value)
+        if not reason and field == "max_current_pA" and board_range_pA is not None:
+            reason = range_limit_problem(board_range_pA, float(value))
         if reason:
             raise ExperimentError("section [loop]", field, value, reason)
         return program.encode_value(value)

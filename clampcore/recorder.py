@@ -8,7 +8,7 @@ loses at most that interval. At stop the journal is converted to NWB.
 ``write_recording_nwb`` writes an offline ``Recording`` in the same format.
 
 Public names: ``Recorder``, ``RecordingError``, ``recording_meta``, ``write_recording_nwb``,
-``timing_summary``, ``bytes_per_second``, ``check_free_space``.
+``timing_summary``, ``zero_hold_events``, ``bytes_per_second``, ``check_free_space``.
 
 A recorder that cannot write (a full disk, a file-size limit, a vanished drive) never
 dies quietly: it asks the loop for 0 pA and a stop, says why in ``error`` (the live
@@ -146,6 +146,30 @@ def timing_summary(columns: dict[str, np.ndarray]) -> dict[str, float]:
     return out
 
 
+def zero_hold_events(columns: dict[str, np.ndarray], rate_hz: float) -> list[dict[str, Any]]:
+    """One event per period the zero-current control held 0 pA (``FLAG_ZEROED`` rows).
+
+    ``sample`` is the first held row, ``end_sample`` the first row after the hold.
+    """
+    from clampcore.hostloop import FLAG_ZEROED
+
+    flags = columns.get("flags")
+    if flags is None or flags.size == 0:
+        return []
+    held = (flags.astype(np.int64) & FLAG_ZEROED) != 0
+    edges = np.diff(np.concatenate([[0], held.astype(np.int8), [0]]))
+    starts, ends = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
+    return [
+        {
+            "sample": int(a),
+            "kind": "zero_hold",
+            "end_sample": int(b),
+            "duration_s": (int(b) - int(a)) / rate_hz,
+        }
+        for a, b in zip(starts, ends, strict=True)
+    ]
+
+
 class Recorder:
     """Copies a run's ring into a ``Journal`` on a background thread."""
 
@@ -272,7 +296,8 @@ class Recorder:
         """Drain the rest, close the journal, convert it to NWB; returns the NWB path.
 
         The journal is removed once the NWB file has been read back and checked against
-        it, unless ``keep_journal``; a failed check raises ``NwbError`` and keeps both.
+        it, unless ``keep_journal``; a conversion that fails (a full disk, a failed check)
+        keeps the journal, says so and how to recover in ``error``, and returns None.
         A run that recorded no sample (it never started) leaves no files: returns None.
         """
         self._stop.set()
@@ -284,6 +309,8 @@ class Recorder:
             self.fail(str(exc))
         final = dict(final_meta or {})
         columns = read_journal(self.path).columns
+        for event in zero_hold_events(columns, float(self.program.experiment.loop["rate_hz"])):
+            self.journal.event(event)  # NWB: events/zero_hold_events, one row per hold
         final["timing"] = timing_summary(columns)
         final["lost_rows"] = self.lost_rows
         if self.error:
@@ -305,8 +332,8 @@ class Recorder:
             self.error = (
                 (self.error + "; " if self.error else "")
                 + f"no NWB file written ({exc}). The journal {self.path} keeps {kept} samples "
-                f"({kept / self._rate_hz:.2f} s): make room, then run "
-                f"`clampcore recover {self.path} --out {out}`"
+                f"({kept / self._rate_hz:.2f} s): `clampcore recover {self.path} --out {out}` "
+                "converts it (on a full disk, once there is room)"
             )
             return None
 

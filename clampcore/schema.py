@@ -5,8 +5,11 @@ value must satisfy, and whether it may change while the loop runs (``live``).
 The experiment loader and the window validate with these same tables, so a value
 the window accepts is a value the loader accepts.
 
+Each field also says when it applies (``Field.when``: which kinetics, source,
+waveform or model it belongs to); ``field_applies`` answers it for given values.
+
 Public names: ``Field``, ``ELEMENT_FIELDS``, ``SECTION_FIELDS``, ``KINDS``,
-``check_value``.
+``check_value``, ``field_applies``.
 """
 
 from __future__ import annotations
@@ -37,10 +40,18 @@ class Field:
     choices: tuple[str, ...] = ()
     allow_inf: bool = False
     doc: str = ""
+    # Which fields apply: the field matters only when every (other field, values) pair
+    # holds (see ``_only``). Empty: it always applies.
+    when: tuple[tuple[str, tuple[str, ...]], ...] = ()
 
 
 def _f(name: str, default: Any, rule: str = "real", **kw: Any) -> Field:
     return Field(name, default, rule, **kw)
+
+
+def _only(other: str, *values: str) -> tuple[tuple[str, tuple[str, ...]], ...]:
+    """``Field.when``: the field applies only while field ``other`` is one of ``values``."""
+    return ((other, values),)
 
 
 # Fields every element has.
@@ -66,9 +77,27 @@ ELEMENT_FIELDS: dict[str, tuple[Field, ...]] = {
         _f("kinetics", "exp", "choice", live=False, choices=("exp", "alpha", "dual_exp")),
         _f("g_max_nS", 1.0, "nonnegative", doc="peak conductance of one event"),
         _f("e_mV", 0.0, doc="0 mV: glutamatergic; -70 to -80 mV: GABA-A (common practice)"),
-        _f("tau_decay_ms", 5.0, "positive", doc="exp and dual_exp kinetics"),
-        _f("tau_rise_ms", 0.5, "positive", doc="dual_exp kinetics"),
-        _f("tau_ms", 2.0, "positive", doc="alpha kinetics: time to peak"),
+        _f(
+            "tau_decay_ms",
+            5.0,
+            "positive",
+            doc="exp and dual_exp kinetics",
+            when=_only("kinetics", "exp", "dual_exp"),
+        ),
+        _f(
+            "tau_rise_ms",
+            0.5,
+            "positive",
+            doc="dual_exp kinetics",
+            when=_only("kinetics", "dual_exp"),
+        ),
+        _f(
+            "tau_ms",
+            2.0,
+            "positive",
+            doc="alpha kinetics: time to peak",
+            when=_only("kinetics", "alpha"),
+        ),
         _f("mg_mM", 0.0, "nonnegative", doc="NMDA-type Mg2+ block (Jahr & Stevens 1990); 0 = none"),
         _f("u_se", 0.5, "fraction", doc="Tsodyks-Markram release fraction"),
         _f("tau_rec_ms", 0.0, "nonnegative", doc="depression recovery; 0 = no depression"),
@@ -81,10 +110,11 @@ ELEMENT_FIELDS: dict[str, tuple[Field, ...]] = {
             live=False,
             doc="cell source: synaptic delay, rounded to whole samples; 0 = the same sample "
             "(current mode only: a board-evaluated law needs at least the look-ahead + 1 sample)",
+            when=_only("source", "cell"),
         ),
-        _f("rate_hz", 10.0, "positive", doc="poisson source"),
-        _f("times_ms", [], "times", live=False, doc="train source"),
-        _f("seed", 0, "int", live=False),
+        _f("rate_hz", 10.0, "positive", doc="poisson source", when=_only("source", "poisson")),
+        _f("times_ms", [], "times", live=False, doc="train source", when=_only("source", "train")),
+        _f("seed", 0, "int", live=False, when=_only("source", "poisson")),
         _f("target", "cell", "ref", live=False, doc="cell | <neuron name>"),
     ),
     "noise": (
@@ -107,11 +137,16 @@ ELEMENT_FIELDS: dict[str, tuple[Field, ...]] = {
         _f("reset_mV", -70.0),
         _f("refractory_ms", 2.0, "positive"),
         # EIF/AdEx shape: delta_T 2 mV, a 4 nS, b 80.5 pA, tau_w 144 ms (Brette & Gerstner 2005).
-        _f("delta_t_mV", 2.0, "positive"),
-        _f("v_peak_mV", 0.0, doc="eif/adex: a spike is cut here"),
-        _f("a_nS", 4.0, "real"),
-        _f("b_pA", 80.5, "real"),
-        _f("tau_w_ms", 144.0, "positive"),
+        _f("delta_t_mV", 2.0, "positive", when=_only("model", "eif", "adex")),
+        _f(
+            "v_peak_mV",
+            0.0,
+            doc="eif/adex: a spike is cut here",
+            when=_only("model", "eif", "adex"),
+        ),
+        _f("a_nS", 4.0, "real", when=_only("model", "adex")),
+        _f("b_pA", 80.5, "real", when=_only("model", "adex")),
+        _f("tau_w_ms", 144.0, "positive", when=_only("model", "adex")),
         _f("bias_pA", 0.0, doc="constant current into the virtual neuron"),
     ),
     "current": (
@@ -126,11 +161,17 @@ ELEMENT_FIELDS: dict[str, tuple[Field, ...]] = {
         _f("offset_pA", 0.0, doc="added while the waveform is on"),
         _f("start_ms", 0.0, "nonnegative"),
         _f("duration_ms", INF, "positive", allow_inf=True),
-        _f("period_ms", 100.0, "positive", doc="train"),
-        _f("pulse_ms", 10.0, "positive", doc="train"),
-        _f("frequency_hz", 10.0, "positive", doc="sine"),
-        _f("tau_ms", 5.0, "positive", doc="coloured noise correlation time"),
-        _f("seed", 0, "int", live=False),
+        _f("period_ms", 100.0, "positive", doc="train", when=_only("waveform", "train")),
+        _f("pulse_ms", 10.0, "positive", doc="train", when=_only("waveform", "train")),
+        _f("frequency_hz", 10.0, "positive", doc="sine", when=_only("waveform", "sine")),
+        _f(
+            "tau_ms",
+            5.0,
+            "positive",
+            doc="coloured noise correlation time",
+            when=_only("waveform", "coloured"),
+        ),
+        _f("seed", 0, "int", live=False, when=_only("waveform", "white", "coloured")),
     ),
 }
 
@@ -158,30 +199,44 @@ SECTION_FIELDS: dict[str, tuple[Field, ...]] = {
         ),
         # Law mode's look-ahead: a jitter buffer well above a USB link's 1-2 ms round trip
         # (full-speed USB's 1 ms frames both ways; common practice).
-        _f("lead_ms", 10.0, "positive", live=False, doc="law mode: laws computed this far ahead"),
+        _f(
+            "lead_ms",
+            10.0,
+            "positive",
+            live=False,
+            doc="law mode: laws computed this far ahead",
+            when=_only("mode", "law"),
+        ),
         # How long the board may hold the newest law past its own sample: short, because a
         # negative leak or a pure current is not self-limiting (PROTOCOL.md §10.3).
-        _f("lifetime_ms", 2.0, "positive", live=False, doc="law mode: then 0 pA"),
+        _f(
+            "lifetime_ms",
+            2.0,
+            "positive",
+            live=False,
+            doc="law mode: then 0 pA",
+            when=_only("mode", "law"),
+        ),
     ),
     "cell": (
         _f("model", "passive", "choice", live=False, choices=("passive", "hh")),
         _f("capacitance_pF", 100.0, "positive", live=False),
         # Passive defaults: tau = C/gL = 20 ms, within the typical 10-50 ms (common practice).
-        _f("leak_nS", 5.0, "positive", live=False),
-        _f("rest_mV", -70.0, live=False),
+        _f("leak_nS", 5.0, "positive", live=False, when=_only("model", "passive")),
+        _f("rest_mV", -70.0, live=False, when=_only("model", "passive")),
         _f("electrode_MOhm", 0.0, "nonnegative", live=False),
         _f("noise_pA", 0.0, "nonnegative", live=False),
         _f("measurement_noise_mV", 0.0, "nonnegative", live=False),
         _f("seed", 0, "int", live=False),
         _f("substeps", 0, "int", live=False, doc="0 = choose automatically"),
         # Hodgkin & Huxley 1952 squid axon, modern convention (rest -65 mV).
-        _f("gna_mS_per_cm2", 120.0, "nonnegative", live=False),
-        _f("gk_mS_per_cm2", 36.0, "nonnegative", live=False),
-        _f("gl_mS_per_cm2", 0.3, "nonnegative", live=False),
-        _f("ena_mV", 50.0, live=False),
-        _f("ek_mV", -77.0, live=False),
-        _f("el_mV", -54.4, live=False),
-        _f("cm_uF_per_cm2", 1.0, "positive", live=False),
+        _f("gna_mS_per_cm2", 120.0, "nonnegative", live=False, when=_only("model", "hh")),
+        _f("gk_mS_per_cm2", 36.0, "nonnegative", live=False, when=_only("model", "hh")),
+        _f("gl_mS_per_cm2", 0.3, "nonnegative", live=False, when=_only("model", "hh")),
+        _f("ena_mV", 50.0, live=False, when=_only("model", "hh")),
+        _f("ek_mV", -77.0, live=False, when=_only("model", "hh")),
+        _f("el_mV", -54.4, live=False, when=_only("model", "hh")),
+        _f("cm_uF_per_cm2", 1.0, "positive", live=False, when=_only("model", "hh")),
     ),
     "amplifier": (
         # Typical current-clamp amplifier: Vm output x10 (100 mV of membrane per V) and a
@@ -213,6 +268,11 @@ SECTION_FIELDS: dict[str, tuple[Field, ...]] = {
         _f("resistance_MOhm", 0.0, "nonnegative", live=False),
     ),
 }
+
+
+def field_applies(field: Field, values: dict[str, Any]) -> bool:
+    """Whether ``field`` matters given the other ``values`` of its section or element."""
+    return all(str(values.get(other, "")) in allowed for other, allowed in field.when)
 
 
 def check_value(field: Field, value: Any) -> str | None:

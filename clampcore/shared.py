@@ -43,6 +43,10 @@ CTRL_MAIL_APPLIED = 5  # mailbox slots applied by the loop so far
 CTRL_EXIT = 6  # why the loop stopped (EXIT_* in clampcore.hostloop)
 CTRL_FIRST_COUNTER = 7  # board sample counter of the first sample
 CTRL_HEARTBEAT = 8  # incremented by the loop on every pass, also when idle
+# What board and amplifier can command, pA, published by the loop process after the
+# handshake (float64 bits in these int64 words; both 0 until then).
+CTRL_RANGE_LO_PA = 9
+CTRL_RANGE_HI_PA = 10
 N_CTRL = 16
 
 STATE_STARTING, STATE_RUNNING, STATE_STOPPING, STATE_STOPPED, STATE_FAILED = 0, 1, 2, 3, 4
@@ -184,7 +188,16 @@ class SharedRun:
             raise ValueError("rows already overwritten")
         return self.ring[np.arange(start, stop) % self.layout.rows]
 
+    def current_range_pA(self) -> tuple[float, float] | None:
+        """What board and amplifier can command (lo, hi) in pA; None before the handshake."""
+        lo, hi = self.ctrl[CTRL_RANGE_LO_PA : CTRL_RANGE_HI_PA + 1].view(np.float64)
+        return (float(lo), float(hi)) if hi > lo else None
+
     # ------------------------------------------------------------------ writer
+    def publish_current_range(self, lo_pA: float, hi_pA: float) -> None:
+        """Tell every reader what board and amplifier can command (the loop process)."""
+        self.ctrl[CTRL_RANGE_LO_PA : CTRL_RANGE_HI_PA + 1].view(np.float64)[:] = (lo_pA, hi_pA)
+
     def post_change(self, array: float, row: int, col: int, value: float) -> int:
         """Queue a live change; returns its mailbox number. One writer process at a time."""
         written = int(self.ctrl[CTRL_MAIL_WRITTEN])

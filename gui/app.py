@@ -19,7 +19,12 @@ def add_parser(sub: Any, name: str) -> None:
     p = sub.add_parser(name, help="the tuning window (needs the 'gui' extra)")
     p.add_argument("experiment", nargs="?", help="experiment file (.toml); empty if omitted")
     p.add_argument("--port", default="sim", help="device path, pyserial URL, or 'sim' (default)")
-    p.add_argument("--record-dir", default=".", help="folder for the NWB recordings")
+    p.add_argument(
+        "--record-dir",
+        default=None,
+        help="folder for the NWB recordings (default: 'recordings' in the user's data folder, "
+        "e.g. ~/.local/share/clampcore/recordings)",
+    )
     add_run_options(p)
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
     p.set_defaults(func=_main)
@@ -32,7 +37,8 @@ def _main(args: argparse.Namespace) -> int:
     experiment = experiment_argument(args.experiment) if args.experiment is not None else None
 
     options = RunOptions(seed=args.seed, watchdog_ms=args.watchdog_ms, rig_clock=args.rig_clock)
-    return run_window(experiment, args.port, options, Path(args.record_dir))
+    record_dir = Path(args.record_dir) if args.record_dir else None
+    return run_window(experiment, args.port, options, record_dir)
 
 
 _HEADLESS_HINT = (

@@ -1,11 +1,14 @@
 """The parameter editor: every section and element of an experiment, field by field.
 
 Each field shows its value, its unit and whether it can change while the loop
-runs. A value typed in is parsed by ``parse_value`` and handed to the window's
-``submit`` callback, which validates it with the experiment loader's rules and
-either sends it to the running loop or keeps it for the next run; a refused
-value stays on screen marked invalid, with the reason, and nothing is sent.
-Elements can be switched on and off, removed, and added from the list of kinds.
+runs. A value typed in counts only when Enter is pressed: it is parsed by
+``parse_value`` and handed to the window's ``submit`` callback, which validates
+it with the experiment loader's rules and either sends it to the running loop or
+keeps it for the next run. A refused value is not sent: the field goes back to
+the value in force and is marked, with the reason beside it. Leaving a field
+without Enter applies nothing and also puts back the value in force, so the form
+always shows what the loop holds. Elements can be switched on and off, removed,
+and added from the list of kinds.
 
 Public names: ``ParameterEditor``, ``parse_value``, ``format_value``, ``unit_of``,
 ``Target``, ``SECTIONS``.
@@ -18,10 +21,17 @@ import re
 from collections.abc import Callable
 from typing import Any
 
-from PySide6 import QtCore, QtWidgets
+from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.experiment import Experiment
-from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, KINDS, SECTION_FIELDS, Field
+from clampcore.schema import (
+    COMMON_FIELDS,
+    ELEMENT_FIELDS,
+    KINDS,
+    SECTION_FIELDS,
+    Field,
+    field_applies,
+)
 
 # Sections shown in the editor (session/subject/electrode are kept as loaded).
 SECTIONS = ("loop", "cell", "amplifier")
@@ -56,6 +66,16 @@ def unit_of(field_name: str) -> str:
         if field_name.endswith("_" + suffix):
             return _UNITS[suffix]
     return ""
+
+
+def unit_label(field: Field) -> str:
+    """The unit shown beside a field: its unit, or what a number without one is."""
+    unit = unit_of(field.name)
+    if unit or field.rule in ("choice", "bool", "text", "ref"):
+        return unit
+    return {"fraction": "fraction", "int": "count" if field.name != "seed" else "—"}.get(
+        field.rule, "—"
+    )
 
 
 def parse_value(field: Field, text: str) -> Any:
@@ -109,13 +129,27 @@ def format_value(field: Field, value: Any) -> str:
 SubmitFn = Callable[[Target, str, Any], str | None]
 
 
+class _FieldEdit(QtWidgets.QLineEdit):
+    """A text field that reports losing focus (other than to its own context menu)."""
+
+    left = QtCore.Signal()
+
+    def focusOutEvent(self, event: QtGui.QFocusEvent) -> None:
+        super().focusOutEvent(event)
+        if event.reason() != QtCore.Qt.FocusReason.PopupFocusReason:
+            self.left.emit()
+
+
 class _FieldRow:
     """The widgets of one field."""
 
-    def __init__(self, field: Field, widget: QtWidgets.QWidget, note: QtWidgets.QLabel) -> None:
+    def __init__(
+        self, field: Field, widget: QtWidgets.QWidget, note: QtWidgets.QLabel, others: tuple
+    ) -> None:
         self.field = field
         self.widget = widget
         self.note = note
+        self.others = others  # the name and unit labels: shown and hidden with the field
         self.invalid_reason: str | None = None
         self.shown_text = ""
 
@@ -132,6 +166,9 @@ class ParameterEditor(QtWidgets.QWidget):
         self.experiment: Experiment | None = None
         self._running_names: set[str] = set()
         self._running = False
+        # Why a live field cannot change in this run (a rule the board applies), or None;
+        # the window sets it for each run.
+        self.held_by_board: Callable[[Target, str], str | None] = lambda _t, _f: None
 
         outer = QtWidgets.QVBoxLayout(self)
         outer.setContentsMargins(4, 4, 4, 4)
@@ -259,29 +296,50 @@ class ParameterEditor(QtWidgets.QWidget):
             row += 1
         for f in fields:
             # While running, only live fields of elements the loop runs can change.
-            editable = not self._running or new_element or f.live
+            held = self.held_by_board(target, f.name) if self._running and f.live else None
+            editable = not self._running or new_element or (f.live and held is None)
             name = QtWidgets.QLabel(f.name)
             name.setToolTip(_describe(f))
             widget = self._field_widget(target, f, values.get(f.name, f.default), editable)
-            unit = QtWidgets.QLabel(unit_of(f.name))
+            unit = QtWidgets.QLabel(unit_label(f))
+            if not unit_of(f.name):
+                unit.setToolTip("no unit")
             note = QtWidgets.QLabel("")
             if self._running and not new_element:
                 note.setText("live" if editable else "fixed")
                 note.setToolTip(
                     "changes are applied by the running loop at a sample boundary"
                     if editable
-                    else "cannot change while running: takes effect at the next start"
+                    else f"cannot change while running{': ' + held if held else ''}: "
+                    "takes effect at the next start"
                 )
             note.setStyleSheet("color: #8a9099;")
             grid.addWidget(name, row, 0)
             grid.addWidget(widget, row, 1)
             grid.addWidget(unit, row, 2)
             grid.addWidget(note, row, 3)
-            self._rows[(target, f.name)] = _FieldRow(f, widget, note)
+            self._rows[(target, f.name)] = _FieldRow(f, widget, note, (name, unit))
             self._rows[(target, f.name)].shown_text = format_value(f, values.get(f.name, f.default))
             row += 1
         grid.setColumnStretch(1, 1)
+        self._show_applicable(target, values)
         return box
+
+    def _show_applicable(self, target: Target, values: dict[str, Any], keep: str = "") -> None:
+        """Show only the fields that apply to the chosen kinetics/source/waveform/model.
+
+        ``keep``: a field just edited stays in view (it is about to apply).
+        """
+        for (t, name), row in self._rows.items():
+            if t == target:
+                kept = name == keep and not row.widget.isHidden()
+                on = kept or field_applies(row.field, values)
+                for w in (row.widget, row.note, *row.others):
+                    w.setHidden(not on)
+
+    def is_shown(self, target: Target | str, field_name: str) -> bool:
+        """Whether the field is on the form (it applies to the element's current choices)."""
+        return not self._row(target, field_name).widget.isHidden()
 
     def _field_widget(
         self, target: Target, f: Field, value: Any, editable: bool
@@ -301,11 +359,13 @@ class ParameterEditor(QtWidgets.QWidget):
                 lambda _i, t=target, n=f.name, box=w: self._send(t, n, box.currentText(), None)
             )
         else:
-            w = QtWidgets.QLineEdit(format_value(f, value))
+            w = _FieldEdit(format_value(f, value))
             w.setReadOnly(not editable)
             if not editable:
                 w.setStyleSheet("color: #8a9099;")
-            w.editingFinished.connect(lambda t=target, n=f.name, e=w: self._on_text(t, n, e))
+            # Only Enter applies; leaving the field puts back the value in force.
+            w.returnPressed.connect(lambda t=target, n=f.name, e=w: self._on_text(t, n, e))
+            w.left.connect(lambda t=target, n=f.name, e=w: self._on_leave(t, n, e))
         w.setObjectName(key)
         w.setToolTip(_describe(f))
         return w
@@ -343,47 +403,76 @@ class ParameterEditor(QtWidgets.QWidget):
         if row is None or edit.isReadOnly():
             return
         text = edit.text()
-        if text == row.shown_text and row.invalid_reason is None:
-            return  # nothing changed (editingFinished also fires on losing focus)
+        if text == row.shown_text:
+            return  # nothing changed
         try:
             value = parse_value(row.field, text)
         except ValueError as exc:
-            self._mark(target, field_name, str(exc))
+            self._mark(target, field_name, str(exc), text)
+            self._restore(target, field_name)
             return
         self._send(target, field_name, value, text)
+
+    def _on_leave(self, target: Target, field_name: str, edit: QtWidgets.QLineEdit) -> None:
+        """Focus left a field: whatever was typed without Enter is dropped, not applied."""
+        row = self._rows.get((target, field_name))
+        if row is None or edit.isReadOnly() or edit.text() == row.shown_text:
+            return
+        dropped = edit.text()
+        self._restore(target, field_name)
+        self.message.setStyleSheet(_NEXT_RUN_STYLE)
+        self.message.setText(
+            f"Not applied: {target[1]}.{field_name} '{dropped}' (press Enter to apply); "
+            f"it stays {row.shown_text}"
+        )
 
     def _send(self, target: Target, field_name: str, value: Any, text: str | None) -> None:
         reason = self._submit(target, field_name, value)
         row = self._rows.get((target, field_name))
         if reason is not None:
-            self._mark(target, field_name, reason)
-            if row is not None and not isinstance(row.widget, QtWidgets.QLineEdit):
-                self._restore(target, field_name)  # a box or a check cannot show a bad value
+            self._mark(target, field_name, reason, text)
+            self._restore(target, field_name)  # the form shows what is in force
+            # A refusal that names another field (a train source needs its times): show it.
+            for other in re.findall(r"field '(\w+)'", reason):
+                needed = self._rows.get((target, other))
+                if needed is not None and other != field_name:
+                    for w in (needed.widget, needed.note, *needed.others):
+                        w.setHidden(False)
             return
         if row is not None:
             row.shown_text = text if text is not None else format_value(row.field, value)
         self._mark(target, field_name, None)
+        if self.experiment is not None:
+            exp = self.experiment
+            values = getattr(exp, target[1]) if target[0] == "section" else exp.element(target[1])
+            self._show_applicable(target, values, keep=field_name)
         self.message.setStyleSheet("")
         self.message.setText(
             f"{target[1]}.{field_name} = {format_value(row.field, value) if row else value}"
         )
 
     def _restore(self, target: Target, field_name: str) -> None:
+        """Show the value in force again (what the loop holds, or will start with)."""
         row = self._rows[(target, field_name)]
         exp = self.experiment
         if exp is None:
             return
         values = getattr(exp, target[1]) if target[0] == "section" else exp.element(target[1])
-        value = values.get(field_name)
+        value = values.get(field_name, row.field.default)
         w = row.widget
         w.blockSignals(True)
         if isinstance(w, QtWidgets.QCheckBox):
             w.setChecked(bool(value))
         elif isinstance(w, QtWidgets.QComboBox):
             w.setCurrentText(str(value))
+        elif isinstance(w, QtWidgets.QLineEdit):
+            row.shown_text = format_value(row.field, value)
+            w.setText(row.shown_text)
         w.blockSignals(False)
 
-    def _mark(self, target: Target, field_name: str, reason: str | None) -> None:
+    def _mark(
+        self, target: Target, field_name: str, reason: str | None, text: str | None = None
+    ) -> None:
         row = self._rows.get((target, field_name))
         if row is None:
             return
@@ -401,12 +490,17 @@ class ParameterEditor(QtWidgets.QWidget):
             if row.note.text().startswith("refused"):
                 row.note.setText("live" if self._running else "")
         else:
+            typed = f" '{text}'" if text is not None else ""
             w.setStyleSheet(_INVALID_STYLE)
-            w.setToolTip(f"refused, not sent: {reason}")
+            w.setToolTip(f"refused{typed}, not sent: {reason}")
             row.note.setText("refused")
+            row.note.setToolTip(reason)
             row.note.setStyleSheet("color: #ff5a5a; font-weight: bold;")
             self.message.setStyleSheet("color: #ff7f7f;")
-            self.message.setText(f"Refused, not sent: {target[1]}.{field_name}: {reason}")
+            self.message.setText(
+                f"Refused, not sent: {target[1]}.{field_name}{typed}: {reason} "
+                "(the field shows the value in force)"
+            )
 
     def _suggest_name(self) -> None:
         if self.experiment is None:
@@ -421,15 +515,35 @@ class ParameterEditor(QtWidgets.QWidget):
     def _on_add(self) -> None:
         if self.add_requested is None:
             return
-        reason = self.add_requested(self.add_kind.currentText(), self.add_name.text().strip())
-        self._report(reason, f"added {self.add_name.text().strip()}")
+        name = self.add_name.text().strip()  # before the rebuilt form suggests the next name
+        reason = self.add_requested(self.add_kind.currentText(), name)
+        self.report(reason, f"added {name}")
+        if reason is None:
+            self.focus_element(name)
 
     def _on_remove(self, name: str) -> None:
-        if self.remove_requested is None:
-            return
-        self._report(self.remove_requested(name), f"removed {name}")
+        if self.remove_requested is not None:
+            self.remove_requested(name)  # the window asks first during a run, then reports
 
-    def _report(self, reason: str | None, done: str) -> None:
+    def focus_element(self, name: str) -> None:
+        """Scroll to element ``name`` and put the cursor in its first editable field."""
+        if self._body is None:
+            return
+        box = self._body.findChild(QtWidgets.QGroupBox, f"element:{name}")
+        if box is None:
+            return
+        self._body.adjustSize()
+        self.scroll.ensureWidgetVisible(box, 0, 0)
+        for (target, _field), row in self._rows.items():
+            w = row.widget
+            mine = target == ("element", name)
+            if mine and isinstance(w, QtWidgets.QLineEdit) and not w.isReadOnly():
+                w.setFocus(QtCore.Qt.FocusReason.OtherFocusReason)
+                w.selectAll()
+                return
+
+    def report(self, reason: str | None, done: str) -> None:
+        """Say below the form that ``done`` happened, or why not (``reason``)."""
         if reason:
             self.message.setStyleSheet("color: #ff7f7f;")
             self.message.setText(f"Refused: {reason}")

@@ -20,6 +20,8 @@ from PySide6 import QtCore, QtWidgets
 
 from clampcore.shared import LAT_BINS, TURN_BIN_US
 
+_WITHIN_2_WARN = 0.9  # see HealthPanel.update_from
+
 
 @dataclass
 class Alarm:
@@ -60,8 +62,14 @@ class AlarmBanner(QtWidgets.QFrame):
         self.level = ""
         self.hide()
 
-    def update_from(self, health: dict[str, Any]) -> None:
-        """Raise (or escalate) the banner when a counter has grown since acknowledged."""
+    def update_from(
+        self, health: dict[str, Any], limit_episodes: int = 0, beyond_pA: float = 0.0
+    ) -> None:
+        """Raise (or escalate) the banner when a counter has grown since acknowledged.
+
+        ``limit_episodes`` and ``beyond_pA`` (how often the limit was reached and the
+        most the elements asked beyond it) say how often and by how much.
+        """
         latest = Alarm(health["faults"], health["watchdog"], health["limited"])
         self._latest = latest
         new_faults = latest.faults - self.seen.faults
@@ -73,7 +81,13 @@ class AlarmBanner(QtWidgets.QFrame):
         if new_watchdog > 0:
             parts.append(f"WATCHDOG: the board held its fault output for {new_watchdog} samples")
         if new_limited > 0:
-            parts.append(f"CURRENT LIMIT: {new_limited} samples clipped to ±max_current_pA")
+            share = latest.limited / max(health["samples"], 1)
+            often = f" in {limit_episodes} episodes" if limit_episodes > 1 else ""
+            much = f", asked up to {beyond_pA:.0f} pA beyond it" if beyond_pA > 0 else ""
+            parts.append(
+                f"CURRENT LIMIT: {new_limited:,} samples clipped to ±max_current_pA "
+                f"({share:.1%} of the run{often}{much})"
+            )
         if not parts:
             return
         level = "fault" if (new_faults > 0 or new_watchdog > 0) else "limit"
@@ -104,6 +118,7 @@ class HealthPanel(QtWidgets.QWidget):
     _ROWS = (
         ("samples", "samples taken"),
         ("latency", "command latency p50 / p99"),
+        ("latency_us", "   the same in µs"),
         ("within_2", "commands within 2 samples"),
         ("turnaround", "host turnaround p50 / p99"),
         ("late", "late commands (flagged by the board)"),
@@ -123,7 +138,9 @@ class HealthPanel(QtWidgets.QWidget):
         grid = QtWidgets.QGridLayout()
         self.values: dict[str, QtWidgets.QLabel] = {}
         for r, (key, text) in enumerate(self._ROWS):
-            grid.addWidget(QtWidgets.QLabel(text), r, 0)
+            name = QtWidgets.QLabel(text)
+            name.setWordWrap(True)  # a narrow panel wraps the names, not the figures
+            grid.addWidget(name, r, 0)
             value = QtWidgets.QLabel("–")
             value.setAlignment(QtCore.Qt.AlignmentFlag.AlignRight)
             value.setObjectName(f"health:{key}")
@@ -133,7 +150,7 @@ class HealthPanel(QtWidgets.QWidget):
 
         self.plots = pg.GraphicsLayoutWidget()
         self.plots.setBackground("#111418")
-        self.plots.setMinimumHeight(320)
+        self.plots.setMinimumHeight(160)  # two small histograms: the window fits 1280x720
         self.p_lat = self.plots.addPlot(row=0, col=0)
         self.p_lat.setLabel("left", "% of commands")
         self.p_lat.setLabel("bottom", "command latency", units="samples")
@@ -185,8 +202,15 @@ class HealthPanel(QtWidgets.QWidget):
 
         s50, u50 = lat(h["latency_p50_samples"], h["latency_p50_us"])
         s99, u99 = lat(h["latency_p99_samples"], h["latency_p99_us"])
-        v["latency"].setText(f"{s50} / {s99} samples ({u50} / {u99} µs)")
+        v["latency"].setText(f"{s50} / {s99} samples")
+        v["latency_us"].setText(f"{u50} / {u99} µs")
         v["within_2"].setText(f"{h['within_2_samples']:.2%}")
+        # Fewer than 9 in 10 commands within 2 samples: the clamp is not keeping up, shown
+        # in red (a warning level of our own, common practice for a closed loop's delay).
+        slow = h["samples"] > 0 and h["within_2_samples"] < _WITHIN_2_WARN
+        if v["within_2"].property("bad") != slow:
+            v["within_2"].setProperty("bad", slow)
+            v["within_2"].setStyleSheet("color: #ff5a5a; font-weight: bold;" if slow else "")
         v["turnaround"].setText(f"{h['turnaround_p50_us']:.0f} / {h['turnaround_p99_us']:.0f} µs")
         for key in ("late", "missing", "unanswered", "bad_frames", "watchdog", "faults",
                     "limited", "zeroed"):  # fmt: skip

@@ -10,8 +10,16 @@ spike rasters of the cell and every virtual neuron, and firing rates. Its curves
 are created once per run (``attach``); ``refresh`` only copies new ring rows and
 calls ``setData``; the window calls it from its timer.
 
-Public names: ``PeakDecimator``, ``SpikeTimes``, ``TracePanel``,
-``CONDUCTANCE_KINDS``, ``TARGET_BINS``, ``RATE_WINDOW_S``.
+The rows taken also go through ``gui.events.EventScanner``: each event becomes a
+vertical marker with a short label (and reaches the window's Log through
+``take_events``). The Vm and command axes follow the data (a level outside them is
+not drawn; beyond ±max_current_pA is shaded). The display can be paused while the
+run goes on, zoomed and panned with the mouse, and reset to follow the data.
+``Readout`` is the strip under the plots: mean Vm and command, firing rates, and
+the input resistance from a test pulse (``gui.testpulse``).
+
+Public names: ``PeakDecimator``, ``SpikeTimes``, ``TracePanel``, ``Readout``,
+``CONDUCTANCE_KINDS``, ``TARGET_BINS``, ``RATE_WINDOW_S``, ``WINDOW_CHOICES_S``.
 """
 
 from __future__ import annotations
@@ -24,6 +32,9 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.experiment import Experiment
+from gui import testpulse
+from gui.events import EVENT_COLOURS, EventScanner, TraceEvent
+from gui.testpulse import input_resistance_MOhm
 
 # Element kinds that have a conductance (a current waveform and a virtual neuron have none).
 CONDUCTANCE_KINDS = ("leak", "threshold_reset", "synapse", "noise")
@@ -41,6 +52,13 @@ RATE_WINDOW_S = 1.0
 # The firing-rate legend (each source's current rate) is rewritten every 15th redraw:
 # twice a second, as often as a number can be read.
 _LEGEND_EVERY = 15
+# Time shown: from a few spikes to the 10 s the first issue asked for; the ring holds
+# 20 s (clampcore.shared.RING_SECONDS), so each can be refilled from it.
+WINDOW_CHOICES_S = (0.5, 1.0, 2.0, 5.0, 10.0)
+# Markers kept at most (older ones go first): a screen's worth of readable labels.
+_MAX_MARKERS = 60
+# Labels of close markers stack downwards, this many deep, from the top of the plot.
+_STACK = 6
 # Points of the firing-rate curve across the display window.
 _RATE_POINTS = 200
 
@@ -203,6 +221,74 @@ class SpikeTimes:
         return counts * (rate / window_samples)
 
 
+class Readout(QtWidgets.QFrame):
+    """The strip of figures under the traces: Vm, mean command, firing rates."""
+
+    def __init__(self, parent: QtWidgets.QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setObjectName("readout")
+        row = QtWidgets.QHBoxLayout(self)
+        row.setContentsMargins(6, 2, 6, 2)
+        row.setSpacing(28)  # figures apart enough to read as separate
+        self.labels: dict[str, QtWidgets.QLabel] = {}
+        for key, tip in (
+            ("vm", "mean membrane potential over the window stated at the right"),
+            ("command", "mean command current over the same window"),
+            ("rin", "input resistance from the newest test pulse: ΔV/ΔI (Ohm's law)"),
+            ("rates", "spikes counted in the same window, per second"),
+            ("window", "the window the figures are taken over"),
+        ):
+            if key == "rin":
+                self.pulse_box = QtWidgets.QCheckBox("test pulse")
+                self.pulse_box.setToolTip(
+                    "a small current pulse (an element named test_pulse, recorded with the "
+                    "run) from which the input resistance is read"
+                )
+                row.addWidget(self.pulse_box)
+            label = QtWidgets.QLabel()
+            label.setObjectName(f"readout:{key}")
+            label.setToolTip(tip)
+            label.setTextInteractionFlags(QtCore.Qt.TextInteractionFlag.TextSelectableByMouse)
+            if key != "window":
+                font = label.font()
+                font.setPointSize(font.pointSize() + 2)
+                font.setBold(True)
+                label.setFont(font)
+            if key == "rates":
+                label.setWordWrap(True)  # many sources: more lines, never a wider window
+            row.addWidget(label, 0 if key != "rates" else 1)
+            self.labels[key] = label
+        self.clear()
+
+    def clear(self) -> None:
+        self.labels["vm"].setText("Vm –")
+        self.labels["command"].setText("command –")
+        self.labels["rin"].setText("Rin –")
+        self.labels["rates"].setText("firing –")
+        self.labels["window"].setText(f"over the last {RATE_WINDOW_S:g} s")
+
+    def show_values(
+        self, vm_mV: float, command_pA: float, rates_hz: dict[str, float], span_s: float
+    ) -> None:
+        """Show the means and rates taken over the last ``span_s`` seconds."""
+        self.labels["vm"].setText(f"Vm {vm_mV:.1f} mV")
+        self.labels["command"].setText(f"command {command_pA:.0f} pA")
+        rates = "  ·  ".join(f"{name} {hz:.1f} Hz" for name, hz in rates_hz.items())
+        self.labels["rates"].setText(f"firing  {rates}")
+        self.labels["window"].setText(f"over the last {span_s:.2g} s")
+
+    def show_resistance(self, r_MOhm: float | None, pulse: str) -> None:
+        """The input resistance from the test pulse (``pulse`` says which), or why none."""
+        if not pulse:
+            self.labels["rin"].setText("Rin –")
+            self.labels["rin"].setToolTip("switch the test pulse on to read it")
+        elif r_MOhm is None:
+            self.labels["rin"].setText("Rin … (waiting for a pulse)")
+        else:
+            self.labels["rin"].setText(f"Rin {r_MOhm:.0f} MΩ")
+            self.labels["rin"].setToolTip(f"ΔV/ΔI of the newest test pulse: {pulse}")
+
+
 def _unit_axis(label: str, unit: str) -> dict[str, Any]:
     return {"text": label, "units": unit}
 
@@ -228,22 +314,23 @@ class TracePanel(QtWidgets.QWidget):
         self._v_levels: tuple[float, ...] = ()
         self._i_levels: tuple[float, ...] = ()
         self.redraws = 0  # refreshes that drew something (for the benchmark)
+        self._ticks = 0
         self._shown_g: set[str] = set()
+        self._known_g: set[str] = set()
 
         layout = QtWidgets.QVBoxLayout(self)
         layout.setContentsMargins(0, 0, 0, 0)
         bar = QtWidgets.QHBoxLayout()
         bar.addWidget(QtWidgets.QLabel("Time shown"))
-        self.window_box = QtWidgets.QDoubleSpinBox()
-        # 0.1-10 s: from a few spikes to the 10 s the issue asks for; the ring holds
-        # 20 s (clampcore.shared.RING_SECONDS), so a longer window can be refilled from it.
-        self.window_box.setRange(0.1, 10.0)
-        self.window_box.setDecimals(1)
-        self.window_box.setSingleStep(0.5)
-        self.window_box.setSuffix(" s")
-        self.window_box.setValue(self.window_s)
-        self.window_box.setKeyboardTracking(False)
-        self.window_box.valueChanged.connect(self.set_window_s)
+        # A list, not a typed number: nothing typed can be silently changed into another value.
+        self.window_box = QtWidgets.QComboBox()
+        for seconds in WINDOW_CHOICES_S:
+            self.window_box.addItem(f"{seconds:g} s", seconds)
+        self.window_box.setCurrentIndex(WINDOW_CHOICES_S.index(self.window_s))
+        self.window_box.setToolTip("how many seconds the traces show")
+        self.window_box.activated.connect(
+            lambda k: self.set_window_s(float(self.window_box.itemData(k)))
+        )
         bar.addWidget(self.window_box)
         bar.addSpacing(16)
         bar.addWidget(QtWidgets.QLabel("Conductance of:"))
@@ -253,16 +340,46 @@ class TracePanel(QtWidgets.QWidget):
         self._no_g = QtWidgets.QLabel("(no conductance elements)")
         self._g_box.addWidget(self._no_g)
         bar.addStretch(1)
+        self.pause_button = QtWidgets.QPushButton("Pause display")
+        self.pause_button.setCheckable(True)
+        self.pause_button.setToolTip(
+            "freeze the traces to look at them; the run and the recording go on"
+        )
+        self.pause_button.toggled.connect(self.set_paused)
+        bar.addWidget(self.pause_button)
+        self.reset_button = QtWidgets.QPushButton("Reset view")
+        self.reset_button.setToolTip(
+            "follow the newest data again, axes fitted to it (after zooming or panning: "
+            "wheel zooms, dragging pans)"
+        )
+        self.reset_button.clicked.connect(self.reset_view)
+        bar.addWidget(self.reset_button)
         layout.addLayout(bar)
 
         self.plots = pg.GraphicsLayoutWidget()
         self.plots.setBackground(_BACKGROUND)
         layout.addWidget(self.plots, 1)
-        self.p_v = self._add_plot(0, _unit_axis("membrane potential", "mV"))
+        self.readout = Readout()
+        layout.addWidget(self.readout)
+        self.paused = False
+        self.follow = True  # the view scrolls with the data (False after a zoom or pan)
+        self._events: EventScanner | None = None
+        self._event_cols: list[int] = []
+        self._asked_cols: list[int] = []
+        self._new_events: list[TraceEvent] = []
+        self._markers: list[tuple[float, list[tuple[pg.PlotItem, Any]]]] = []
+        self._limit_pA = math.inf
+        self._pulse_col: int | None = None
+        self._pulse_text = ""
+        self._pulse_rows = 0
+        self.limit_episodes = 0
+        self.limit_worst_pA = 0.0
+        # Short axis names (Vm, command, g, rate): they fit beside the plots at 720 pixels high.
+        self.p_v = self._add_plot(0, _unit_axis("Vm", "mV"))
         self.p_i = self._add_plot(1, _unit_axis("command", "pA"))
-        self.p_g = self._add_plot(2, _unit_axis("conductance", "nS"))
+        self.p_g = self._add_plot(2, _unit_axis("g", "nS"))
         self.p_raster = self._add_plot(3, {"text": "spikes"})
-        self.p_rate = self._add_plot(4, _unit_axis("firing rate", "Hz"))
+        self.p_rate = self._add_plot(4, _unit_axis("rate", "Hz"))
         self.p_rate.setLabel("bottom", "time", units="s")
         self._all_plots = (self.p_v, self.p_i, self.p_g, self.p_raster, self.p_rate)
         for p in (self.p_i, self.p_g, self.p_raster, self.p_rate):
@@ -273,6 +390,24 @@ class TracePanel(QtWidgets.QWidget):
         for row, stretch in enumerate((30, 18, 14, 10, 10)):
             ci.layout.setRowStretchFactor(row, stretch)
         self.p_raster.setMouseEnabled(x=False, y=False)
+        for p in (self.p_v, self.p_i, self.p_g, self.p_rate):
+            # Wheel zooms, dragging pans (time is shared by all plots); Reset view follows again.
+            p.setMouseEnabled(x=True, y=True)
+            p.vb.sigRangeChangedManually.connect(self._manual_range)
+        # The current limit as a band: the shaded zones lie beyond ±max_current_pA.
+        self._limit_bands = [
+            pg.LinearRegionItem(
+                (0.0, 0.0),
+                orientation="horizontal",
+                movable=False,
+                brush=pg.mkBrush(255, 90, 90, 40),
+                pen=pg.mkPen(None),
+            )
+            for _ in range(2)
+        ]
+        for band in self._limit_bands:
+            band.setZValue(-10)
+            self.p_i.addItem(band, ignoreBounds=True)
 
         # Curves created once; refresh() only calls setData on them.
         self.v_curve = self._curve(self.p_v, "#e8e8e8")
@@ -338,12 +473,50 @@ class TracePanel(QtWidgets.QWidget):
         self._cols += [names.index(f"g_nS/{n}") for n in self._g_names]
         self._spike_cols = [names.index(f"spike/{s}") for s in self._sources]
         self._v_col = names.index("v_mV")
+        self._i_col = names.index("i_pA")
+        pulse = next((e for e in experiment.elements if e["name"] == testpulse.NAME), None)
+        column = f"i_pA/{testpulse.NAME}"
+        self._pulse_col = names.index(column) if pulse and column in names else None
+        self._pulse_text = testpulse.describe(pulse) if pulse else ""
+        if pulse:  # the newest complete pulse and the baseline before it are in this span
+            self._pulse_rows = round(1.2 * (pulse["period_ms"] + pulse["pulse_ms"]) * 1e-3
+                                     * self.rate_hz)  # fmt: skip
+        self._event_cols = [names.index(c) for c in ("sample_counter", "flags", "board_status")]
+        self._asked_cols = [k for k, c in enumerate(names) if c.startswith("i_pA/")]
+        self._events = EventScanner(self.rate_hz)
+        self._new_events = []
+        self.limit_episodes = 0
+        self.limit_worst_pA = 0.0
+        self._clear_markers()
         self.shared = shared
+        self._scanned = 0  # rows the event scanner has seen (a refill must not repeat them)
+        self.follow = True
         self._restart(from_ring=True)
 
     def detach(self) -> None:
-        """Stop reading the ring (before the run's shared memory closes)."""
+        """Stop reading the ring (before the run's shared memory closes).
+
+        The rows not yet taken are taken first, so that no event is missed.
+        """
+        if self.shared is not None and self._dec is not None:
+            self.take_new_rows()
+            if self._events is not None:
+                self._queue_events(self._events.finish())
         self.shared = None
+
+    def clear(self) -> None:
+        """Forget the last run's traces (another experiment is shown)."""
+        self.detach()
+        self._clear_markers()
+        self.readout.clear()
+        self._new_events = []
+        self._dec = None
+        self._spikes = None
+        for curve in (self.v_curve, self.i_curve, *self._g_curves.values(), *self._rate_curves):
+            curve.setData([], [])
+        self.spike_marks.setData([], [])
+        for item in self._raster_items:
+            item.setData([], [])
 
     def _build_run_items(self) -> None:
         for check in self._g_checks.values():
@@ -360,6 +533,9 @@ class TracePanel(QtWidgets.QWidget):
             swatch = QtGui.QPixmap(12, 12)
             swatch.fill(QtGui.QColor(colour))
             check.setIcon(QtGui.QIcon(swatch))  # the checkbox is the legend
+            if name not in self._known_g:  # a new conductance is drawn until unticked
+                self._known_g.add(name)
+                self._shown_g.add(name)
             check.setChecked(name in self._shown_g)
             check.toggled.connect(lambda on, n=name: self.show_conductance(n, on))
             self._g_box.addWidget(check)
@@ -387,6 +563,29 @@ class TracePanel(QtWidgets.QWidget):
         self.p_raster.setYRange(-0.7, n - 0.3, padding=0)
         self.p_raster.enableAutoRange(axis="y", enable=False)
 
+    def _update_readout(self) -> None:
+        """Mean Vm and command, and each source's firing rate, over the last RATE_WINDOW_S."""
+        shared = self.shared
+        if shared is None:
+            return
+        written = shared.written()
+        n = min(written, round(RATE_WINDOW_S * self.rate_hz))
+        if n <= 0:
+            return
+        idx = np.arange(written - n, written) % shared.layout.rows
+        v = shared.ring[idx, self._v_col]
+        i = shared.ring[idx, self._i_col]
+        self.readout.show_values(
+            float(np.nanmean(v)), float(np.nanmean(i)), self.current_rates_hz(), n / self.rate_hz
+        )
+        r_MOhm = None
+        if self._pulse_col is not None:
+            n = min(written, self._pulse_rows, shared.layout.rows - int(self.rate_hz))
+            idx = np.arange(written - n, written) % shared.layout.rows
+            pulse = shared.ring[idx, self._pulse_col]
+            r_MOhm = input_resistance_MOhm(shared.ring[idx, self._v_col], pulse)
+        self.readout.show_resistance(r_MOhm, self._pulse_text)
+
     def update_levels(self, experiment: Experiment) -> None:
         """Redraw the threshold and current-limit lines from ``experiment``'s values.
 
@@ -406,6 +605,10 @@ class TracePanel(QtWidgets.QWidget):
             if e["kind"] == "threshold_reset" and e["enabled"]
         ]
         limit = loop["max_current_pA"]
+        self._limit_pA = float(limit)
+        # Shaded beyond ±limit (to a million times it: off any scale the data can reach).
+        self._limit_bands[0].setRegion((limit, limit * 1e6))
+        self._limit_bands[1].setRegion((-limit * 1e6, -limit))
         self._v_levels = tuple(v for v, _, _ in levels)
         self._i_levels = (limit, -limit)
         self._y_ranges.clear()
@@ -446,8 +649,11 @@ class TracePanel(QtWidgets.QWidget):
     def set_window_s(self, window_s: float) -> None:
         """Show the last ``window_s`` seconds (refilled from the ring)."""
         self.window_s = float(window_s)
-        if abs(self.window_box.value() - self.window_s) > 1e-9:
-            self.window_box.setValue(self.window_s)
+        k = self.window_box.findData(self.window_s)
+        if k < 0:
+            self.window_box.addItem(f"{self.window_s:g} s", self.window_s)
+            k = self.window_box.count() - 1
+        self.window_box.setCurrentIndex(k)
         if self.shared is not None:
             self._restart(from_ring=True)
 
@@ -489,16 +695,110 @@ class TracePanel(QtWidgets.QWidget):
         self._dec.append(start, data)
         assert self._spikes is not None
         self._spikes.append(start, block[:, self._spike_cols], block[:, self._v_col])
+        if self._events is not None and written > self._scanned:
+            first = max(start, self._scanned)  # rows refilled from the ring were seen before
+            new = block[first - start :]
+            self._scanned = written
+            c, f, st = self._event_cols
+            asked = new[:, self._asked_cols].sum(axis=1) if self._asked_cols else None
+            self._queue_events(
+                self._events.scan(first, new[:, c], new[:, f], new[:, st], asked, self._limit_pA)
+            )
         self._done = written
         return written - start
 
+    # ------------------------------------------------------------------ events
+    def _queue_events(self, events: list[TraceEvent]) -> None:
+        for ev in events:
+            if ev.kind == "limit":
+                if ev.ended:
+                    self.limit_worst_pA = max(self.limit_worst_pA, ev.amount)
+                else:
+                    self.limit_episodes += 1
+            if not ev.ended:
+                self.add_marker(ev.sample, ev.kind, ev.label)
+        self._new_events += events
+
+    def limit_summary(self) -> tuple[int, float]:
+        """Limit episodes so far, and the most the elements asked beyond the limit (pA)."""
+        now = self._events.open_amount("limit") if self._events is not None else 0.0
+        return self.limit_episodes, max(self.limit_worst_pA, now)
+
+    def take_events(self) -> list[TraceEvent]:
+        """Events found since the last call (for the Log)."""
+        out, self._new_events = self._new_events, []
+        return out
+
+    def add_marker(self, sample: int, kind: str, label: str) -> None:
+        """A vertical line at ``sample`` with a short label on the potential plot."""
+        t = sample / self.rate_hz
+        colour = EVENT_COLOURS.get(kind, _TEXT)
+        # Labels of markers close together are stacked, not drawn over each other.
+        near = sum(1 for t0, _ in self._markers[-_STACK:] if t - t0 < 0.03 * self.window_s)
+        position = 0.96 - 0.09 * (near % _STACK)
+        pen = pg.mkPen(colour, width=1, style=QtCore.Qt.PenStyle.DotLine)
+        items = []
+        for plot in (self.p_v, self.p_i, self.p_g):
+            line = pg.InfiniteLine(pos=t, angle=90, pen=pen, movable=False)
+            if plot is self.p_v:
+                pg.InfLineLabel(
+                    line, text=label, position=position, anchors=[(0, 0), (0, 0)],
+                    color=colour, fill=pg.mkBrush(17, 20, 24, 200),
+                )  # fmt: skip
+            plot.addItem(line, ignoreBounds=True)
+            items.append((plot, line))
+        self._markers.append((t, items))
+        while len(self._markers) > _MAX_MARKERS:
+            self._drop_marker(0)
+
+    def markers(self) -> list[tuple[float, str]]:
+        """(time in s, label) of every marker drawn."""
+        out = []
+        for t, items in self._markers:
+            labels = [c for c in items[0][1].childItems() if isinstance(c, pg.InfLineLabel)]
+            out.append((t, labels[0].format if labels else ""))
+        return out
+
+    def _drop_marker(self, k: int) -> None:
+        _t, items = self._markers.pop(k)
+        for plot, line in items:
+            plot.removeItem(line)
+
+    def _clear_markers(self) -> None:
+        while self._markers:
+            self._drop_marker(0)
+
+    def set_paused(self, paused: bool) -> None:
+        """Freeze the drawing (True) while the run and the recording go on, or resume."""
+        self.paused = bool(paused)
+        if self.pause_button.isChecked() != self.paused:
+            self.pause_button.setChecked(self.paused)
+        self.pause_button.setText("Resume display" if self.paused else "Pause display")
+
+    def reset_view(self) -> None:
+        """Follow the newest data again with the axes fitted to it (after a zoom or pan)."""
+        self.follow = True
+        self._y_ranges.clear()
+        self.set_paused(False)
+
+    def _manual_range(self, *_args: Any) -> None:
+        self.follow = False  # the user zoomed or panned: keep that view until Reset view
+
     def refresh(self) -> bool:
-        """Take new rows and redraw; False when there is nothing to draw."""
+        """Take new rows and redraw; False when there is nothing to draw.
+
+        Paused, the rows are still taken (events, readouts) but nothing is redrawn.
+        """
         if self.shared is None or self._dec is None:
             return False
-        if abs(self._plot_bins() - self._bins) > 0.25 * self._bins:
+        if not self.paused and abs(self._plot_bins() - self._bins) > 0.25 * self._bins:
             self._restart(from_ring=True)  # the plot was resized: one bin per pixel again
         self.take_new_rows()
+        self._ticks += 1
+        if self._ticks % _LEGEND_EVERY == 1:
+            self._update_readout()
+        if self.paused:
+            return False
         x_samples, y = self._dec.envelope()
         if x_samples.size == 0:
             return False
@@ -506,13 +806,16 @@ class TracePanel(QtWidgets.QWidget):
         x = x_samples * dt
         self.v_curve.setData(x, y[0])
         self.i_curve.setData(x, y[1])
-        self._fit_y(self.p_v, y[0], self._v_levels)
-        self._fit_y(self.p_i, y[1], self._i_levels)
+        follow = self.follow
+        if follow:
+            # Both axes on the data: a threshold or the limit outside it is not drawn.
+            self._fit_y(self.p_v, y[0], ())
+            self._fit_y(self.p_i, y[1], (0.0,))
         shown = [2 + k for k, name in enumerate(self._g_names) if name in self._shown_g]
         for k, name in enumerate(self._g_names):
             if name in self._shown_g:
                 self._g_curves[name].setData(x, y[2 + k])
-        if shown:
+        if shown and follow:
             self._fit_y(self.p_g, y[shown], (0.0,))
         t_end = self._done * dt
         t_start = t_end - self.window_s
@@ -537,9 +840,13 @@ class TracePanel(QtWidgets.QWidget):
                 label = self.rate_legend.items[j][1]
                 label.setText(f"{self._sources[j]}  {rate[-1]:.1f} Hz")
         # Rate axis from 0; 10 Hz at least so that an idle cell reads as 0.
-        if rates:
+        if rates and follow:
             self._fit_y(self.p_rate, np.concatenate(rates), (0.0, 10.0))
-        self.p_v.setXRange(t_start, t_end, padding=0)
+        if follow:
+            # The first seconds of a run fill the window from the left (no negative times).
+            self.p_v.setXRange(max(t_start, 0.0), max(t_end, self.window_s), padding=0)
+            while self._markers and self._markers[0][0] < t_start - self.window_s:
+                self._drop_marker(0)  # a window's width out of view: gone
         for plot in self._all_plots:
             # Apply the new ranges now: pyqtgraph would otherwise do it while painting,
             # which dirties the scene and repaints everything a second time.

@@ -7,9 +7,17 @@ so a busy or frozen window cannot make the loop miss a sample. One timer
 periodically. Slow jobs (checking a board, stopping a run and writing its NWB
 file) run on worker threads and are polled by the same timer.
 
-Layout, top to bottom: the run bar (state, port, Connect, Start, Stop, where
-recordings go, the zero-current control), the alarm banner, then the traces on
-the left and tabs on the right (Parameters, Loop health, Log).
+Layout, top to bottom: the run bar (state, port, Connect, Start, Stop and the
+zero-current control; then where recordings go, this run's recording and the
+progress of writing it), the alarm banner, then the traces with their readout
+strip on the left and tabs on the right (Parameters, Loop health, Log). It fits
+1280x720 (tests/test_gui_layout.py).
+
+Safety controls stay in reach whatever else is open: Esc is caught by an
+application-wide event filter (modal dialogs, menus and text fields cannot keep
+it from holding 0 pA), and the window's own dialogs are not modal, so the
+zero-current button can always be clicked. Quitting, opening another experiment
+or removing an element during a run first asks, saying what will happen.
 
 Public names: ``TuningWindow``, ``REFRESH_HZ``, ``ZERO_SHORTCUT``.
 """
@@ -24,12 +32,14 @@ from typing import Any
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from clampcore.engine import Engine, EngineError, RunOptions
+from clampcore.engine import Engine, EngineError, RunOptions, board_owns
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.health import loop_health
 from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
+from gui import testpulse
 from gui.editor import ParameterEditor, Target
 from gui.health import AlarmBanner, HealthPanel
+from gui.savefile import experiment_toml
 from gui.traces import TracePanel
 
 # The issue asks for at least 30 redraws a second (smooth to the eye: film runs at 24). Timer
@@ -44,6 +54,7 @@ ZERO_SHORTCUT = "Esc"
 
 _STATE_COLOURS = {
     "idle": "#3a3f47",
+    "connected": "#3a5f8a",
     "checking": "#3a5f8a",
     "starting": "#3a5f8a",
     "running": "#1f7a3a",
@@ -75,6 +86,26 @@ class _Job:
     def wait(self, timeout_s: float | None = None) -> bool:
         self._thread.join(timeout_s)
         return self.done
+
+
+class _ZeroKeyFilter(QtCore.QObject):
+    """Esc anywhere in the application holds 0 pA (an application-wide event filter).
+
+    It sees the key before any widget, dialog or menu does; it lets the key go on
+    (Esc still closes the dialog or menu it was pressed in).
+    """
+
+    def __init__(self, window: TuningWindow) -> None:
+        super().__init__(window)
+        self._window = window
+
+    def eventFilter(self, obj: QtCore.QObject, event: QtCore.QEvent) -> bool:
+        kind = event.type()
+        if kind in (QtCore.QEvent.Type.KeyPress, QtCore.QEvent.Type.ShortcutOverride):
+            key_event = event  # a QKeyEvent
+            if key_event.key() == QtCore.Qt.Key.Key_Escape and not key_event.isAutoRepeat():
+                self._window.set_zero_current(True)
+        return False
 
 
 def _copy_experiment(exp: Experiment) -> Experiment:
@@ -127,6 +158,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.result: Any = None  # RunResult of the last run
         self.last_error: str | None = None
         self._finishing: _Job | None = None
+        self._finish_t0 = 0.0
         self._checking: _Job | None = None
         self._zero_held = False
         self._run_count = 0
@@ -134,6 +166,13 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._slot_names: dict[tuple[float, int, int], tuple[str, str]] | None = None
         self._ticks = 0
         self._state = ""
+        self._saved = self.experiment.to_dict()  # what the file holds: unsaved edits differ
+        # The file's own text: saving edits it in place (comments kept, see gui.savefile).
+        self._source_text = self.experiment.text if self.experiment.path else None
+        self._pending_open: Path | None = None  # opened once the stopping run is written
+        self._close_confirmed = False
+        self.question: QtWidgets.QMessageBox | None = None  # the open question, if any
+        self.dialog: QtWidgets.QFileDialog | None = None  # the open file dialog, if any
         self.setWindowTitle("clampcore — tuning")
         self.resize(1500, 920)
 
@@ -142,7 +181,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.traces = TracePanel()
         self.editor = ParameterEditor(self._submit)
         self.editor.add_requested = self.add_element
-        self.editor.remove_requested = self.remove_element
+        self.editor.remove_requested = self.request_remove
         self.editor.fileAction.connect(self._file_action)
         self.health = HealthPanel()
         self.log = QtWidgets.QPlainTextEdit()
@@ -168,11 +207,11 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.setCentralWidget(central)
         self._build_menu()
 
-        self.zero_action = QtGui.QAction("Zero current", self)
-        self.zero_action.setShortcut(QtGui.QKeySequence(ZERO_SHORTCUT))
-        self.zero_action.setShortcutContext(QtCore.Qt.ShortcutContext.ApplicationShortcut)
-        self.zero_action.triggered.connect(lambda: self.set_zero_current(True))
-        self.addAction(self.zero_action)
+        # Esc: caught before any widget, dialog or menu can take it (see _ZeroKeyFilter).
+        self._zero_filter = _ZeroKeyFilter(self)
+        app = QtWidgets.QApplication.instance()
+        if app is not None:
+            app.installEventFilter(self._zero_filter)
 
         self.timer = QtCore.QTimer(self)
         self.timer.setTimerType(QtCore.Qt.TimerType.PreciseTimer)
@@ -182,25 +221,30 @@ class TuningWindow(QtWidgets.QMainWindow):
 
         self.editor.set_experiment(self.experiment)
         self.traces.show_experiment(self.experiment)
+        self.traces.readout.pulse_box.toggled.connect(self.set_test_pulse)
+        self._sync_pulse_box()
         self._set_state("idle", "not running")
         self._update_title()
 
     # ------------------------------------------------------------------ building
     def _build_run_bar(self, port: str, record_dir: Path | str | None) -> None:
+        """Two rows: state and run controls with the zero-current button; then recordings."""
         bar = QtWidgets.QFrame()
         bar.setObjectName("runbar")
-        row = QtWidgets.QHBoxLayout(bar)
-        row.setContentsMargins(4, 2, 4, 2)
+        rows = QtWidgets.QVBoxLayout(bar)
+        rows.setContentsMargins(4, 2, 4, 2)
+        rows.setSpacing(3)
+        row = QtWidgets.QHBoxLayout()
+        rows.addLayout(row)
         self.state_label = QtWidgets.QLabel()
-        self.state_label.setMinimumWidth(110)
+        self.state_label.setMinimumWidth(130)
         self.state_label.setAlignment(QtCore.Qt.AlignmentFlag.AlignCenter)
         font = self.state_label.font()
         font.setBold(True)
         font.setPointSize(font.pointSize() + 2)
         self.state_label.setFont(font)
         row.addWidget(self.state_label)
-        self.state_detail = QtWidgets.QLabel()
-        self.state_detail.setMinimumWidth(260)
+        self.state_detail = _ElidedLabel()
         row.addWidget(self.state_detail, 1)
         row.addWidget(QtWidgets.QLabel("Port"))
         self.port_box = QtWidgets.QComboBox()
@@ -225,23 +269,44 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.stop_button = QtWidgets.QPushButton("Stop")
         self.stop_button.clicked.connect(self.stop_run)
         row.addWidget(self.stop_button)
-        row.addWidget(QtWidgets.QLabel("Record into"))
-        self.record_dir = QtWidgets.QLineEdit(str(Path(record_dir or Path.cwd())))
-        self.record_dir.setMinimumWidth(160)
-        self.record_dir.setToolTip("folder for the NWB recordings; each run gets its own file")
-        row.addWidget(self.record_dir)
-        browse = QtWidgets.QPushButton("…")
-        browse.setMaximumWidth(28)
-        browse.clicked.connect(self._choose_record_dir)
-        row.addWidget(browse)
-        self.zero_button = QtWidgets.QPushButton(f"Zero current  [{ZERO_SHORTCUT}]")
+        self.zero_button = QtWidgets.QPushButton()
         self.zero_button.setCheckable(True)
-        self.zero_button.setMinimumWidth(230)
         self.zero_button.setToolTip(
-            f"hold the injected current at 0 pA ({ZERO_SHORTCUT}); click again to release"
+            f"hold the injected current at 0 pA ({ZERO_SHORTCUT}, from anywhere in the "
+            "application); click again to release"
         )
         self.zero_button.clicked.connect(self.set_zero_current)
         row.addWidget(self.zero_button)
+
+        files = QtWidgets.QHBoxLayout()
+        rows.addLayout(files)
+        files.addWidget(QtWidgets.QLabel("Record into"))
+        self.record_dir = QtWidgets.QLineEdit(str(Path(record_dir or default_record_dir())))
+        self.record_dir.setToolTip("folder for the NWB recordings; each run gets its own file")
+        files.addWidget(self.record_dir, 2)
+        browse = QtWidgets.QPushButton("Choose…")
+        browse.setToolTip("choose the folder for recordings")
+        browse.clicked.connect(self._choose_record_dir)
+        files.addWidget(browse)
+        files.addSpacing(12)
+        files.addWidget(QtWidgets.QLabel("Recording"))
+        # The full path of the current (or last) recording: selectable, and a button copies it.
+        self.recording_path = QtWidgets.QLineEdit()
+        self.recording_path.setReadOnly(True)
+        self.recording_path.setPlaceholderText("none yet")
+        self.recording_path.setToolTip("the NWB file of this run (select to copy)")
+        files.addWidget(self.recording_path, 3)
+        copy = QtWidgets.QPushButton("Copy path")
+        copy.clicked.connect(
+            lambda: QtWidgets.QApplication.clipboard().setText(self.recording_path.text())
+        )
+        files.addWidget(copy)
+        self.progress = QtWidgets.QProgressBar()
+        self.progress.setRange(0, 0)  # busy: the writer gives no fraction done
+        self.progress.setMaximumWidth(260)
+        self.progress.setTextVisible(True)
+        self.progress.hide()
+        files.addWidget(self.progress)
         self.run_bar = bar
         self._style_zero()
 
@@ -256,7 +321,7 @@ class TuningWindow(QtWidgets.QMainWindow):
             action.setShortcut(QtGui.QKeySequence(key))
             action.triggered.connect(slot)
         menu.addSeparator()
-        menu.addAction("&Quit", QtGui.QKeySequence.StandardKey.Quit, self.close)
+        menu.addAction("&Quit", QtGui.QKeySequence.StandardKey.Quit, self.request_quit)
 
     # ------------------------------------------------------------------ state
     @property
@@ -283,7 +348,7 @@ class TuningWindow(QtWidgets.QMainWindow):
 
     @property
     def state(self) -> str:
-        """idle, checking, starting, running, stopping, stopped or failed."""
+        """idle, checking, connected, starting, running, stopping, stopped or failed."""
         return self._state
 
     def _update_title(self) -> None:
@@ -359,12 +424,28 @@ class TuningWindow(QtWidgets.QMainWindow):
         assert engine.shared is not None
         self.traces.attach(engine.shared, engine.experiment)
         self.health.set_rate(engine.experiment.loop["rate_hz"])
+        self.editor.held_by_board = self._held_by_board
         self.editor.set_experiment(
             self.experiment, {e["name"] for e in engine.experiment.elements}, running=True
         )
+        self.recording_path.setText(str(engine.nwb_path))
+        self.recording_path.end(False)  # the file name in view; the whole path on selecting
         self._set_state("starting", f"opening {port}; recording to {engine.nwb_path.name}")
         self._note(f"run {self._run_count}: started on {port}, recording to {engine.nwb_path}")
         return True
+
+    def _held_by_board(self, target: Target, field: str) -> str | None:
+        """In law mode the board applies some rules itself: those cannot change live."""
+        engine = self.engine
+        if engine is None or not engine.law_mode_requested:
+            return None
+        element = "loop" if target[0] == "section" else target[1]
+        if target[0] == "section" and target[1] != "loop":
+            return None
+        with contextlib.suppress(KeyError):
+            if board_owns(engine.program, element, field):
+                return "the board applies it from the rules it got at start (law mode)"
+        return None
 
     def _fail_start(self, why: str) -> None:
         self.last_error = why
@@ -377,9 +458,14 @@ class TuningWindow(QtWidgets.QMainWindow):
         engine = self.engine
         if engine is None or self._finishing is not None:
             return
-        self.traces.detach()  # before the shared memory closes
+        self._log_changes()
+        self.traces.detach()  # before the shared memory closes (takes the last rows)
+        self._log_events()
         self._finishing = _Job("clampcore-finish", engine.finish)
-        self._set_state("stopping", "0 pA, stopping the board, writing the recording…")
+        self._finish_t0 = time.monotonic()
+        self.progress.setFormat("writing the recording…")
+        self.progress.show()
+        self._set_state("stopping", "0 pA, board stopped; writing the recording…")
 
     def wait_finished(self, timeout_s: float = 30.0) -> Any:
         """Block until a stopping run is written (for scripts and tests); returns its result."""
@@ -390,18 +476,25 @@ class TuningWindow(QtWidgets.QMainWindow):
         return self.result
 
     def set_zero_current(self, on: bool = True) -> None:
-        """Hold the injected current at 0 pA (True) or give it back to the elements."""
+        """Hold the injected current at 0 pA (True) or give it back to the elements.
+
+        The loop sees it at once (a shared control word it reads every sample).
+        """
+        changed = self._zero_held != bool(on)
         self._zero_held = bool(on)
         if self.engine is not None and self._finishing is None:
             self.engine.set_zero_current(self._zero_held)
-        self._style_zero()
-        self._note("current held at 0 pA" if on else "current released to the elements")
+        if changed:
+            self._style_zero()
+            self._note("current held at 0 pA" if on else "current released to the elements")
+        elif self.zero_button.isChecked() != on:
+            self._style_zero()
 
     def _style_zero(self) -> None:
         held = self._zero_held
         self.zero_button.setChecked(held)
         self.zero_button.setText(
-            "HELD AT 0 pA — click to release" if held else f"Zero current  [{ZERO_SHORTCUT}]"
+            "HELD AT 0 pA: click to release" if held else f"Zero current [{ZERO_SHORTCUT}]"
         )
         colour = "#b00020" if held else "#7a1f1f"
         self.zero_button.setStyleSheet(
@@ -423,10 +516,12 @@ class TuningWindow(QtWidgets.QMainWindow):
                 self._set_state("failed", f"no board: {job.error}")
             else:
                 self._note(f"connect: {job.result}")
-                self._set_state("idle", job.result)
+                self._set_state("connected", job.result)
         if self._finishing is not None:
             if self._finishing.done:
                 self._finished()
+            else:
+                self._show_writing()
             return
         engine = self.engine
         if engine is None:
@@ -439,8 +534,9 @@ class TuningWindow(QtWidgets.QMainWindow):
             health = loop_health(stats, engine.experiment.loop["rate_hz"])
             if self._ticks % _HEALTH_EVERY == 0 or self.tabs.currentWidget() is self.health:
                 self.health.update_from(health)
-            self.banner.update_from(health)
+            self.banner.update_from(health, *self.traces.limit_summary())
             self._log_changes()
+            self._log_events()
             elapsed = health["samples"] / engine.experiment.loop["rate_hz"]
             zero = "  ·  0 pA HELD" if self._zero_held else ""
             self._set_state("running", f"{elapsed:.1f} s  ·  {engine.nwb_path.name}{zero}")
@@ -450,6 +546,20 @@ class TuningWindow(QtWidgets.QMainWindow):
         elif state in (STATE_STOPPED, STATE_FAILED) or not engine.running:
             self._log_changes()
             self.stop_run()
+
+    def _show_writing(self) -> None:
+        """Progress while the recording is written: time so far and the NWB file's size."""
+        elapsed = time.monotonic() - self._finish_t0
+        nwb = self.engine.nwb_path if self.engine is not None else None
+        size = nwb.stat().st_size if nwb is not None and nwb.exists() else 0
+        text = f"writing the recording: {elapsed:.0f} s, {size / 1e6:.0f} MB so far"
+        if text != self.progress.format():
+            self.progress.setFormat(text)
+
+    def _log_events(self) -> None:
+        """Events found on the traces, timed, into the Log."""
+        for ev in self.traces.take_events():
+            self._note(ev.text)
 
     def _log_changes(self) -> None:
         engine = self.engine
@@ -463,13 +573,15 @@ class TuningWindow(QtWidgets.QMainWindow):
             key = (ch["array"], ch["row"], ch["col"])
             element, field = (self._slot_names or {}).get(key, ("?", "?"))
             self._note(
-                f"applied {element}.{field} = {ch['value']:g} at sample {ch['sample']} "
-                f"(t = {ch['sample'] / rate:.4f} s)"
+                f"t = {ch['sample'] / rate:.3f} s: applied {element}.{field} = {ch['value']:g} "
+                f"(sample {ch['sample']})"
             )
+            self.traces.add_marker(ch["sample"], "param", f"{field} {ch['value']:g}")
             self._changes_logged = ch["number"] + 1
 
     def _finished(self) -> None:
         job, self._finishing = self._finishing, None
+        self.progress.hide()
         self.engine = None
         assert job is not None
         if job.error is not None:
@@ -481,6 +593,13 @@ class TuningWindow(QtWidgets.QMainWindow):
             result = job.result
             self.result = result
             where = f"saved {result.nwb_path}" if result.nwb_path else "no recording written"
+            journal = result.journal_path
+            if result.nwb_path is not None and journal is not None and journal.exists():
+                size = sum(f.stat().st_size for f in journal.rglob("*") if f.is_file())
+                where += (
+                    f"; its journal ({size / 1e6:.0f} MB) is kept at {journal}: delete it once "
+                    "the NWB file is checked, or rebuild the NWB from it with clampcore recover"
+                )
             self._note(f"run {self._run_count} ended: {result.exit_reason}; {where}")
             if result.error:
                 self.last_error = result.error
@@ -490,6 +609,9 @@ class TuningWindow(QtWidgets.QMainWindow):
                 self._set_state("stopped", f"{result.exit_reason} · {where}")
         self.editor.set_experiment(self.experiment)
         self.traces.show_experiment(self.experiment)
+        if self._pending_open is not None:
+            path, self._pending_open = self._pending_open, None
+            self._show_file_result(self.load_file(path))
 
     # ------------------------------------------------------------------ edits
     def _submit(self, target: Target, field: str, value: Any) -> str | None:
@@ -537,6 +659,8 @@ class TuningWindow(QtWidgets.QMainWindow):
         if not checked.amplifier_given:
             checked.amplifier = dict(old.amplifier)
         self.experiment = checked
+        self.editor.experiment = checked  # what a refused or dropped value snaps back to
+        self._sync_pulse_box()
 
     def add_element(self, kind: str, name: str) -> str | None:
         """Add an element with default values; None when added, else why not."""
@@ -552,6 +676,75 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._refresh_editor()
         self._note(f"added {kind} '{name}'" + (" (next run)" if self.running else ""))
         return None
+
+    def set_test_pulse(self, on: bool) -> None:
+        """Switch the test pulse (an element, see gui.testpulse) on or off.
+
+        On adds it to the experiment if it has none (a running loop gets it at the next
+        start: elements cannot be added to a run); then on and off are its ``enabled``,
+        live during a run.
+        """
+        pulse = next((e for e in self.experiment.elements if e["name"] == testpulse.NAME), None)
+        if pulse is None and on:
+            draft = self.experiment.to_dict()
+            draft["element"].append(dict(testpulse.ELEMENT))
+            try:
+                checked = load_experiment(draft)
+            except ExperimentError as exc:
+                self.editor.report(f"no test pulse: {exc}", "")
+                self._sync_pulse_box()
+                return
+            self._adopt(checked)
+            self._refresh_editor()
+            later = " (from the next run)" if self.running else ""
+            self._note(f"test pulse added{later}: {testpulse.describe(testpulse.ELEMENT)}")
+        elif pulse is not None and bool(pulse["enabled"]) != on:
+            reason = self._submit(("element", testpulse.NAME), "enabled", on)
+            if reason:
+                self.editor.report(reason, "")
+            else:
+                self._refresh_editor()
+                self._note("test pulse " + ("on" if on else "off"))
+        self._sync_pulse_box()
+
+    def _sync_pulse_box(self) -> None:
+        pulse = next((e for e in self.experiment.elements if e["name"] == testpulse.NAME), None)
+        box = self.traces.readout.pulse_box
+        box.blockSignals(True)
+        box.setChecked(bool(pulse and pulse["enabled"]))
+        box.blockSignals(False)
+
+    def request_remove(self, name: str) -> None:
+        """The form's Remove: during a run, ask first (the element is switched off now)."""
+        runs_now = (
+            self.running
+            and self.engine is not None
+            and any(e["name"] == name for e in self.engine.experiment.elements)
+        )
+        if not runs_now:
+            self.editor.report(self.remove_element(name), f"removed {name}")
+            return
+        engine = self.engine
+
+        def remove() -> None:
+            if self.engine is not engine or not self.running:
+                self.editor.report(self.remove_element(name), f"removed {name}")
+                return
+            try:  # it would go on injecting until the next start: off now, at a sample boundary
+                engine.change(name, "enabled", False)
+            except (ExperimentError, KeyError, RuntimeError) as exc:
+                self.editor.report(f"cannot switch {name!r} off: {exc}", "")
+                return
+            self._note(f"switched '{name}' off (removed from the next run)")
+            self.editor.report(self.remove_element(name), f"removed {name}; switched off now")
+
+        self._ask(
+            f"Remove {name}?",
+            f"'{name}' is running. It is switched off now (it injects nothing from the next "
+            "sample on) and is left out of the next run. The recording goes on.",
+            "Switch off and remove",
+            remove,
+        )
 
     def remove_element(self, name: str) -> str | None:
         """Remove an element; None when removed, else why not."""
@@ -579,8 +772,38 @@ class TuningWindow(QtWidgets.QMainWindow):
             self.traces.show_experiment(self.experiment)
 
     # ------------------------------------------------------------------ files
+    @property
+    def unsaved(self) -> bool:
+        """The experiment differs from the file it came from (or was saved to)."""
+        return self.experiment.to_dict() != self._saved
+
+    def request_open(self, path: Path | str) -> None:
+        """Open ``path`` as the form's Open does: first asks when a run or edits would be lost."""
+        path = Path(path)
+        consequences = []
+        if self.running:
+            assert self.engine is not None
+            consequences.append(
+                f"The run is stopped (0 pA, board stopped) and its recording is written to "
+                f"{self.engine.nwb_path}."
+            )
+        if self.unsaved:
+            consequences.append("Unsaved edits to the current experiment are discarded.")
+        if not consequences:
+            self._show_file_result(self.load_file(path))
+            return
+
+        def go() -> None:
+            if self.running:
+                self._pending_open = path
+                self.stop_run()
+            else:
+                self._show_file_result(self.load_file(path))
+
+        self._ask(f"Open {path.name}?", " ".join(consequences), "Open", go)
+
     def load_file(self, path: Path | str) -> str | None:
-        """Open an experiment file; None when loaded, else why not."""
+        """Open an experiment file; None when loaded, else why not (no question asked)."""
         if self.running:
             return "stop the run before opening another experiment"
         try:
@@ -589,8 +812,13 @@ class TuningWindow(QtWidgets.QMainWindow):
             return str(exc)
         self.experiment = exp
         self.experiment_path = Path(path)
+        self._saved = exp.to_dict()
+        self._source_text = exp.text
         self.editor.set_experiment(exp)
+        self._sync_pulse_box()
+        self.traces.clear()  # the last run's traces do not belong to this experiment
         self.traces.show_experiment(exp)
+        self.banner.reset()
         self._update_title()
         self._note(f"opened {path}")
         return None
@@ -598,7 +826,7 @@ class TuningWindow(QtWidgets.QMainWindow):
     def save_file(self, path: Path | str) -> str | None:
         """Write the experiment (as edited) to ``path``; None when saved, else why not."""
         path = Path(path)
-        text = self.experiment.to_toml()
+        text = experiment_toml(self.experiment, self._source_text)
         try:
             back = load_experiment(text)  # what is saved must load back to the same
         except ExperimentError as exc:
@@ -611,24 +839,81 @@ class TuningWindow(QtWidgets.QMainWindow):
             return f"not saved: {exc}"
         self.experiment.path = path
         self.experiment_path = path
+        self._saved = self.experiment.to_dict()
+        self._source_text = text
         self._update_title()
         self._note(f"saved {path}")
         return None
 
     def _file_action(self, what: str) -> None:
+        """Open or save through a file dialog that does not block the rest of the window."""
         start = str(self.experiment_path or Path.cwd())
         if what == "load":
-            path, _ = QtWidgets.QFileDialog.getOpenFileName(
-                self, "Open experiment", start, "Experiment (*.toml)"
-            )
-            if path:
-                self._show_file_result(self.load_file(path))
+            self._file_dialog("Open experiment", start, False, self.request_open)
         else:
-            path, _ = QtWidgets.QFileDialog.getSaveFileName(
-                self, "Save experiment", start, "Experiment (*.toml)"
+            self._file_dialog(
+                "Save experiment", start, True, lambda p: self._show_file_result(self.save_file(p))
             )
-            if path:
-                self._show_file_result(self.save_file(path))
+
+    def _file_dialog(self, title: str, start: str, save: bool, chosen: Any) -> None:
+        _close_quietly(self.dialog)
+        dialog = QtWidgets.QFileDialog(self, title, start, "Experiment (*.toml)")
+        dialog.setAcceptMode(
+            QtWidgets.QFileDialog.AcceptMode.AcceptSave
+            if save
+            else QtWidgets.QFileDialog.AcceptMode.AcceptOpen
+        )
+        dialog.setFileMode(
+            QtWidgets.QFileDialog.FileMode.AnyFile
+            if save
+            else QtWidgets.QFileDialog.FileMode.ExistingFile
+        )
+        if save:
+            dialog.setDefaultSuffix("toml")
+        self._show_modeless(dialog)
+        dialog.fileSelected.connect(chosen)
+        self.dialog = dialog
+
+    @staticmethod
+    def _show_modeless(dialog: QtWidgets.QDialog) -> None:
+        """Show ``dialog`` without blocking the window: the zero-current button stays usable."""
+        if isinstance(dialog, QtWidgets.QFileDialog):
+            # Qt's own dialog: a platform's native one may block the window whatever we ask.
+            dialog.setOption(QtWidgets.QFileDialog.Option.DontUseNativeDialog, True)
+        dialog.setWindowModality(QtCore.Qt.WindowModality.NonModal)
+        dialog.setAttribute(QtCore.Qt.WidgetAttribute.WA_DeleteOnClose)
+        dialog.show()
+
+    def _ask(self, title: str, text: str, yes: str, on_yes: Any) -> None:
+        """Ask a yes/no question without blocking the window; ``on_yes()`` if confirmed."""
+        _close_quietly(self.question)
+        box = QtWidgets.QMessageBox(self)
+        box.setWindowTitle(title)
+        box.setIcon(QtWidgets.QMessageBox.Icon.Question)
+        box.setText(title)
+        box.setInformativeText(text)
+        yes_button = box.addButton(yes, QtWidgets.QMessageBox.ButtonRole.AcceptRole)
+        box.addButton(QtWidgets.QMessageBox.StandardButton.Cancel)
+        box.setDefaultButton(QtWidgets.QMessageBox.StandardButton.Cancel)
+
+        def answered(button: QtWidgets.QAbstractButton) -> None:
+            self.question = None
+            if button is yes_button:
+                on_yes()
+
+        box.buttonClicked.connect(answered)
+        self._show_modeless(box)
+        self.question = box
+
+    def answer(self, yes: bool) -> None:
+        """Answer the open question (for scripts and tests)."""
+        box = self.question
+        if box is None:
+            raise RuntimeError("no question is open")
+        buttons = box.buttons()
+        role = QtWidgets.QMessageBox.ButtonRole.AcceptRole
+        chosen = next(b for b in buttons if (box.buttonRole(b) == role) == yes)
+        chosen.click()
 
     def _save_here(self) -> None:
         if self.experiment_path is None:
@@ -643,15 +928,52 @@ class TuningWindow(QtWidgets.QMainWindow):
             self._note(reason)
 
     def _choose_record_dir(self) -> None:
-        path = QtWidgets.QFileDialog.getExistingDirectory(
-            self, "Record into", self.record_dir.text()
-        )
-        if path:
-            self.record_dir.setText(path)
+        _close_quietly(self.dialog)
+        dialog = QtWidgets.QFileDialog(self, "Record into", self.record_dir.text())
+        dialog.setFileMode(QtWidgets.QFileDialog.FileMode.Directory)
+        dialog.setOption(QtWidgets.QFileDialog.Option.ShowDirsOnly, True)
+        self._show_modeless(dialog)
+        dialog.fileSelected.connect(self.record_dir.setText)
+        self.dialog = dialog
 
     # ------------------------------------------------------------------ closing
+    def request_quit(self) -> None:
+        """Quit (Ctrl+Q, the window's close button): asks first if a run or edits would go."""
+        consequences = []
+        if self.running:
+            assert self.engine is not None
+            consequences.append(
+                "The run is stopped (0 pA, board stopped) and its recording is written to "
+                f"{self.engine.nwb_path} before the window closes."
+            )
+        if self.unsaved:
+            consequences.append("Unsaved edits to the experiment are discarded.")
+        if not consequences:
+            self._close_confirmed = True
+            self.close()
+            return
+
+        def go() -> None:
+            self._close_confirmed = True
+            self.close()
+
+        self._ask("Quit clampcore?", " ".join(consequences), "Quit", go)
+
     def closeEvent(self, event: QtGui.QCloseEvent) -> None:
-        """Closing the window stops a run cleanly (0 pA, board stopped, NWB written)."""
+        """Closing the window stops a run cleanly (0 pA, board stopped, NWB written).
+
+        Closed by the user (the title bar's button) during a run or with unsaved
+        edits, it asks first; closed by a program (``close()``), it does not.
+        """
+        if event.spontaneous() and not self._close_confirmed and (self.running or self.unsaved):
+            event.ignore()
+            self.request_quit()
+            return
+        app = QtWidgets.QApplication.instance()
+        if app is not None:
+            app.removeEventFilter(self._zero_filter)
+        _close_quietly(self.question)
+        _close_quietly(self.dialog)
         self.timer.stop()
         if self.engine is not None:
             if self._finishing is None:
@@ -660,6 +982,56 @@ class TuningWindow(QtWidgets.QMainWindow):
             self._finishing.wait(30.0)
             self._tick()
         super().closeEvent(event)
+
+
+def default_record_dir() -> Path:
+    """Where recordings go unless told: ``recordings`` in the user's data folder.
+
+    (platformdirs: ~/.local/share/clampcore/recordings on Linux, the platform's
+    equivalent elsewhere.)
+    """
+    import platformdirs
+
+    return platformdirs.user_data_path("clampcore") / "recordings"
+
+
+class _ElidedLabel(QtWidgets.QLabel):
+    """A one-line status that never widens the window: cut with "…" and whole in its tooltip."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._full = ""
+        self.setSizePolicy(
+            QtWidgets.QSizePolicy.Policy.Ignored, QtWidgets.QSizePolicy.Policy.Preferred
+        )
+        self.setTextInteractionFlags(QtCore.Qt.TextInteractionFlag.TextSelectableByMouse)
+
+    def setText(self, text: str) -> None:
+        self._full = text
+        self.setToolTip(text)
+        self._fit()
+
+    def text(self) -> str:
+        return self._full
+
+    def resizeEvent(self, event: QtGui.QResizeEvent) -> None:
+        super().resizeEvent(event)
+        self._fit()
+
+    def _fit(self) -> None:
+        metrics = self.fontMetrics()
+        shown = metrics.elidedText(self._full, QtCore.Qt.TextElideMode.ElideMiddle, self.width())
+        super().setText(shown)
+
+    def is_elided(self) -> bool:
+        return super().text() != self._full
+
+
+def _close_quietly(widget: QtWidgets.QWidget | None) -> None:
+    """Close a dialog that may already be closed (and deleted by Qt)."""
+    if widget is not None:
+        with contextlib.suppress(RuntimeError):
+            widget.close()
 
 
 def _hello_text(link: Any, where: str) -> str:
