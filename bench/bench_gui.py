@@ -19,7 +19,8 @@ Medians over the repeated phases are compared: open vs closed, same run.
 
 Usage: ``QT_QPA_PLATFORM=offscreen .venv/bin/python bench/bench_gui.py [--phase-s S]
 [--repeats N] [--realtime PRIO] [--rig-realtime PRIO] [--no-low-latency]``. Timing on a
-2-core virtual machine varies from run to run (REALTIME-NOTES): read the ratios, not the
+2-core virtual machine varies from run to run (DEVELOPERS.md, Figures the code relies on):
+read the ratios, not the
 absolute figures.
 """
 

@@ -61,7 +61,7 @@ from simulated_rig.groundtruth import LOG_BEHIND, NO_COMMAND, read_log
 
 ROOT = Path(__file__).resolve().parent.parent
 EXPERIMENT = ROOT / "examples" / "imposed_lif.toml"
-TRIPS = 20_000  # round trips per turnaround measurement (as in REALTIME-NOTES)
+TRIPS = 20_000  # round trips per turnaround measurement (DEVELOPERS.md, Figures)
 SPIN_US = RunOptions().spin_us  # the engine's default spin before sleeping in poll()
 
 

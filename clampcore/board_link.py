@@ -74,10 +74,23 @@ class BoardLink:
             else:
                 # The baud rate is ignored by USB CDC boards and pseudo-terminals; 2 Mbaud
                 # covers 20 kHz x ~22-byte frames for a real UART (common practice).
+                # exclusive: pyserial takes an flock(2) on POSIX, so a second run (or any
+                # program that asks for the lock) cannot open the port while this one holds
+                # it; Windows opens COM ports exclusively by itself.
                 self.serial = serial.Serial(
-                    port, baudrate=2_000_000, timeout=0.05, write_timeout=1.0
+                    port,
+                    baudrate=2_000_000,
+                    timeout=0.05,
+                    write_timeout=1.0,
+                    exclusive=True if os.name == "posix" else None,
                 )
         except (serial.SerialException, OSError, ValueError) as exc:
+            if "exclusively lock" in str(exc):
+                raise BoardError(
+                    port,
+                    "cannot open the port",
+                    "another program holds it (a second clampcore run?); stop that one first",
+                ) from exc
             raise BoardError(port, "cannot open the port", str(exc)) from exc
         self._seq = _CONTROL_SEQ_START
         self._pending = b""
@@ -93,7 +106,7 @@ class BoardLink:
             fd = self.serial.fileno()
         except (AttributeError, NotImplementedError, serial.SerialException):
             return None
-        # pyserial leaves O_NONBLOCK set (REALTIME-NOTES): clear it for blocking reads.
+        # pyserial opens with O_NONBLOCK (DEVELOPERS.md, Figures): clear it for blocking reads.
         flags = fcntl.fcntl(fd, fcntl.F_GETFL)
         fcntl.fcntl(fd, fcntl.F_SETFL, flags & ~os.O_NONBLOCK)
         return fd

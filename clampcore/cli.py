@@ -1,35 +1,137 @@
 """The ``clampcore`` command line.
 
     clampcore check EXPERIMENT                  validate and summarise
-    clampcore simulate EXPERIMENT --duration S [--out FILE.nwb|.npz] [--seed N]
-    clampcore run EXPERIMENT --port PORT [--duration S] [--out FILE.nwb]
+    clampcore simulate EXPERIMENT --duration S [--out FILE.nwb|.npz] [--seed N] [--force]
+    clampcore run EXPERIMENT --port PORT [--duration S] [--out FILE.nwb] [--force]
     clampcore rig [EXPERIMENT] [--rate HZ] [--clock wall|lockstep] [--log FILE]
     clampcore ports                             serial ports with their USB identity
-    clampcore recover JOURNAL [--out FILE.nwb]  NWB from what a crashed run left
+    clampcore recover JOURNAL [--out FILE.nwb] [--force]  NWB from what a crashed run left
     clampcore show RUN.nwb [--from S --to S] [--out FIG.png]   summary and figure
     clampcore gui [EXPERIMENT] [--port PORT]    the tuning window
     clampcore demo                              an example on the simulated rig
     clampcore characterize --port PORT [--out DIR]   measure the cell (clampcore.characterize)
     clampcore fit CHARACTERIZATION.json [--out FILE]  a virtual neuron like it (clampcore.cellfit)
 
-Public names: ``main``.
+Every value is checked before anything starts; a bad one gets one line naming the
+option, the value and what is accepted. No existing recording is replaced without
+``--force``. Errors are printed once, as one line; ``--debug`` adds the traceback.
+
+Public names: ``main``, ``run_with_status``, ``scheduling_text``, ``real_option``,
+``int_option``, ``experiment_argument``, ``add_run_options``, ``TimingWatch``.
 """
 
 from __future__ import annotations
 
 import argparse
+import math
+import os
+import re
 import signal
 import sys
+import traceback
+from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
+
+import numpy as np
 
 from clampcore import stability
-from clampcore.experiment import ExperimentError, load_experiment
+from clampcore.experiment import (
+    Experiment,
+    ExperimentError,
+    load_experiment,
+    model_warnings,
+)
 from clampcore.realtime import LOOP_FIFO_PRIORITY
+
+# Accepted ranges of the command line's values (each says where it comes from).
+WATCHDOG_MS_RANGE = (1.0, 1000.0)  # the rig's 1 ms floor; beyond 1 s a stalled host would
+# keep injecting for too long (conservative; the board may narrow it further)
+SPIN_US_RANGE = (0.0, 1000.0)  # the engine caps it at a quarter sample period anyway
+SEED_RANGE = (0, 2**63 - 1)  # seeds are mixed into 64-bit generator states (clampcore.rng)
+PRIORITY_RANGE = (0, 99)  # SCHED_FIFO priorities on Linux (sched(7)); 0: ordinary
+OFFLINE_MEMORY_SHARE = 0.5  # an offline simulation may take at most half the free memory
+# Warn once when, over one status interval, more than this share of commands came late
+# (the board's LATE bit) or the p99 latency reaches this many samples. On this project's
+# machines a healthy run stays below 1% late and p99 4 samples at 20 kHz (README, Benchmarks).
+WARN_LATE_PERCENT = 5.0
+WARN_LATENCY_SAMPLES = 8
+
+
+class _Parser(argparse.ArgumentParser):
+    """An argument parser whose errors are one line (no usage block), exit code 2."""
+
+    def error(self, message: str) -> NoReturn:
+        message = re.sub(r"^argument (\S+?): ", r"\1 ", message)  # "--seed '-1': must be ..."
+        self.exit(2, f"{self.prog}: {message} (see {self.prog} --help)\n")
+
+
+def real_option(
+    low: float,
+    high: float = math.inf,
+    low_open: bool = False,
+    unit: str = "",
+) -> Callable[[str], float]:
+    """An argparse type: a finite real number in [low, high] ((low, high] if ``low_open``)."""
+    unit_text = f" {unit}" if unit else ""
+    if math.isinf(high):
+        accepted = f"a finite number {'>' if low_open else '>='} {low:g}{unit_text}"
+    else:
+        above = f"above {low:g} and at most" if low_open else f"from {low:g} to"
+        accepted = f"a number {above} {high:g}{unit_text}"
+
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            value = math.nan
+        ok = math.isfinite(value) and (value > low if low_open else value >= low) and value <= high
+        if not ok:
+            raise argparse.ArgumentTypeError(f"{text!r}: must be {accepted}")
+        return value
+
+    return parse
+
+
+def int_option(low: int, high: int) -> Callable[[str], int]:
+    """An argparse type: an integer in [low, high]."""
+
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            value = low - 1
+        if not low <= value <= high:
+            raise argparse.ArgumentTypeError(f"{text!r}: must be an integer from {low} to {high}")
+        return value
+
+    return parse
+
+
+def experiment_argument(text: str) -> Experiment:
+    """Load the experiment a command line names: always a file path, never TOML text."""
+    if not text.strip():
+        raise ExperimentError("experiment file ''", None, None, "no file given (an empty path)")
+    return load_experiment(Path(text))
+
+
+def _print_warnings(exp: Experiment) -> None:
+    for warning in model_warnings(exp):
+        print(f"warning: {warning}", file=sys.stderr)
+
+
+def _refuse_existing(path: Path, force: bool) -> None:
+    """An existing output is replaced only with --force."""
+    if path.is_dir():
+        raise FileExistsError(f"{path} is a folder: choose a file name for --out")
+    if path.exists() and not force:
+        raise FileExistsError(f"{path} exists: choose another --out, or pass --force to replace it")
 
 
 def _check(args: argparse.Namespace) -> int:
-    exp = load_experiment(args.experiment)
+    from clampcore.recorder import bytes_per_second
+
+    exp = experiment_argument(args.experiment)
     loop = exp.loop
     print(
         f"{args.experiment}: valid. Loop {loop['rate_hz']:g} Hz, current limit "
@@ -47,27 +149,57 @@ def _check(args: argparse.Namespace) -> int:
         print(f"  {el['kind']:<16} {el['name']}{extra}{state}")
     report = stability.from_args(args, exp, args.port)
     print("\n".join(report.lines()))
+    print(
+        f"recording: about {bytes_per_second(exp) * 60 / 1e6:,.1f} MB per minute (journal and NWB)"
+    )
+    _print_warnings(exp)
     return 0
 
 
 def _simulate(args: argparse.Namespace) -> int:
     from clampcore.offline import simulate
+    from clampcore.recorder import bytes_per_second
 
-    report = stability.from_args(args, args.experiment)
+    exp = experiment_argument(args.experiment)
+    _print_warnings(exp)
+    report = stability.from_args(args, exp)
     print("\n".join(report.lines()[1:]))
-    rec = simulate(args.experiment, args.duration, seed=args.seed)
+    out = None
+    if args.out:
+        out = Path(args.out)
+        if out.suffix != ".nwb":  # Recording.save writes .npz, adding the suffix if missing
+            out = out if out.suffix == ".npz" else out.with_name(out.name + ".npz")
+        _refuse_existing(out, args.force)
+    # The whole run is kept in memory (about half the disk rate: no NWB copy).
+    needed = bytes_per_second(exp) / 2 * args.duration
+    free = _free_memory_bytes()
+    if free is not None and needed > OFFLINE_MEMORY_SHARE * free:
+        raise MemoryError(
+            f"--duration {args.duration:g}: the offline simulation would hold about "
+            f"{needed / 1e9:.1f} GB in memory, {free / 1e9:.1f} GB are free; simulate less"
+        )
+    rec = simulate(exp, args.duration, seed=args.seed)
     rec.extra["stability"] = report.as_meta()
     print(rec.summary_text())
-    if args.out:
-        path = rec.save(args.out)
+    if out is not None:
+        path = rec.save(out, overwrite=args.force)
         print(f"wrote {path}")
     return 0
+
+
+def _free_memory_bytes() -> float | None:
+    try:
+        return float(os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
+    except (ValueError, OSError, AttributeError):
+        return None
 
 
 def _run(args: argparse.Namespace) -> int:
     from clampcore.engine import Engine, RunOptions
 
-    report = stability.from_args(args, args.experiment, args.port)
+    exp = experiment_argument(args.experiment)
+    _print_warnings(exp)
+    report = stability.from_args(args, exp, args.port)
     print("\n".join(report.lines()[1:]))
     options = RunOptions(
         seed=args.seed,
@@ -80,46 +212,148 @@ def _run(args: argparse.Namespace) -> int:
         keep_journal=args.keep_journal,
         extra_meta={"stability": report.as_meta()},
     )
-    result = run_with_status(Engine(args.experiment, args.port, options), args.duration, args.out)
+    watch = TimingWatch(args.warn_late_percent, args.warn_latency_samples)
+    engine = Engine(exp, args.port, options)
+    result = run_with_status(engine, args.duration, args.out, force=args.force, watch=watch)
     return 0 if result.error is None else 1
 
 
-def run_with_status(engine: Any, duration_s: float | None, out: str | None) -> Any:
-    """Start ``engine``, print a live status line until it ends (or Ctrl-C), then a summary."""
+class TimingWatch:
+    """Warns once when, over one status interval, the late share or p99 latency crosses
+    its threshold (the loop's timing collapsing mid-run)."""
+
+    def __init__(
+        self,
+        late_percent: float = WARN_LATE_PERCENT,
+        latency_samples: int = WARN_LATENCY_SAMPLES,
+    ) -> None:
+        self.late_percent = late_percent
+        self.latency_samples = latency_samples
+        self._last: dict[str, Any] | None = None
+        self.warned = False
+
+    def check(self, status: dict[str, Any], rate_hz: float) -> str | None:
+        """The warning to print for this status, once per run; else None."""
+        last, self._last = self._last, status
+        if self.warned or not status or last is None or not last:
+            return None
+        samples = status["samples"] - last["samples"]
+        if samples < rate_hz * 0.2:  # too few samples in this interval to judge
+            return None
+        late = 100.0 * (status["late"] - last["late"]) / samples
+        hist = status["latency_hist"] - last["latency_hist"]
+        total = float(hist.sum())
+        p99 = int(np.searchsorted(np.cumsum(hist), 0.99 * total)) if total else 0
+        why = []
+        if late > self.late_percent:
+            why.append(
+                f"{late:.1f}% of commands came late (--warn-late-percent {self.late_percent:g})"
+            )
+        if total and p99 >= self.latency_samples:
+            last_bin = hist.size - 1
+            shown = f">= {last_bin}" if p99 >= last_bin else f"{p99}"
+            why.append(
+                f"latency p99 {shown} samples (--warn-latency-samples {self.latency_samples})"
+            )
+        if not why:
+            return None
+        self.warned = True
+        return (
+            f"warning: the loop's timing collapsed at t = {status['elapsed_s']:.1f} s: "
+            + "; ".join(why)
+            + ". Close other programs; the run goes on (warned once)"
+        )
+
+
+def _interrupt_handlers(
+    journal: Path | None,
+) -> tuple[Callable[[int, Any], None], Callable[[int, Any], None]]:
+    """The handler of the first Ctrl-C / SIGTERM: it installs the second one's, then stops
+    the run. The second (and any later) only says that the recording is being written and
+    how to rebuild it if the program is killed now."""
+
+    def again(signum: int, frame: Any) -> None:
+        where = f"`clampcore recover {journal}`" if journal else "`clampcore recover JOURNAL`"
+        print(
+            "\nalready stopping: the recording is being written, please wait. If this program "
+            f"is killed now, the journal keeps every sample and {where} rebuilds the NWB file",
+            file=sys.stderr,
+            flush=True,
+        )
+
+    def first(signum: int, frame: Any) -> None:
+        signal.signal(signal.SIGINT, again)
+        signal.signal(signal.SIGTERM, again)
+        raise KeyboardInterrupt
+
+    return first, again
+
+
+def run_with_status(
+    engine: Any,
+    duration_s: float | None,
+    out: str | None,
+    force: bool = False,
+    watch: TimingWatch | None = None,
+) -> Any:
+    """Start ``engine``, print a live status line until it ends (or Ctrl-C), then a summary.
+
+    A second Ctrl-C (or SIGTERM) while stopping does not interrupt writing the recording:
+    it says so, and how to rebuild the NWB from the journal if the program is killed.
+    """
     from clampcore.engine import status_line
 
     rate = float(engine.experiment.loop["rate_hz"])
+    watch = watch or TimingWatch()
+    engine.start(duration_s=duration_s, out=out, force=force)
     # SIGTERM (e.g. `kill`) stops the run as cleanly as Ctrl-C does.
-    signal.signal(signal.SIGTERM, _interrupt)
-    engine.start(duration_s=duration_s, out=out)
+    first, again = _interrupt_handlers(getattr(engine.recorder, "path", None))
+    signal.signal(signal.SIGINT, first)
+    signal.signal(signal.SIGTERM, first)
     tty = sys.stdout.isatty()
+    warned: set[str] = set()
     try:
         while not engine.wait(0.5):
-            line = status_line(engine.status(), rate)
+            status = engine.status()
+            line = status_line(status, rate)
             print(("\r" + line) if tty else line, end="" if tty else "\n", flush=True)
+            for warning in (watch.check(status, rate), status.get("recording_warning")):
+                if warning and warning not in warned:
+                    warned.add(warning)
+                    print(("\n" if tty else "") + warning, file=sys.stderr, flush=True)
     except KeyboardInterrupt:
         print("\nstopping: 0 pA first, then the board, then the recording", flush=True)
-    result = engine.finish()
-    print(("\n" if tty else "") + status_line(result.summary, rate))
-    print(f"ended: {result.exit_reason}")
+    signal.signal(signal.SIGINT, again)  # from here on nothing interrupts the writing
+    signal.signal(signal.SIGTERM, again)
+    try:
+        result = engine.finish()
+    finally:
+        signal.signal(signal.SIGINT, signal.default_int_handler)
+        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+    if result.samples:
+        print(("\n" if tty else "") + status_line(result.summary, rate))
     if result.error:
-        print(f"clampcore: {result.error}", file=sys.stderr)
+        print(f"clampcore: {result.error}", file=sys.stderr)  # the reason, printed once
+    else:
+        print(f"ended: {result.exit_reason}")
     t = result.timing
     if result.samples == 0:
         print("no samples were recorded; no recording written")
-    elif t:
+    elif t.get("latency_p50_samples") is not None and t.get("turnaround_p50_us") is not None:
         print(
             "timing: latency p50 {:.0f} / p99 {:.0f} samples; within 1/2/3 samples "
             "{:.2%} / {:.2%} / {:.2%}; host turnaround p50 {:.1f} µs, p99.9 {:.1f} µs".format(
-                t.get("latency_p50_samples", float("nan")),
-                t.get("latency_p99_samples", float("nan")),
-                t.get("share_within_1_samples", float("nan")),
-                t.get("share_within_2_samples", float("nan")),
-                t.get("share_within_3_samples", float("nan")),
-                t.get("turnaround_p50_us", float("nan")),
-                t.get("turnaround_p99.9_us", float("nan")),
+                t["latency_p50_samples"],
+                t["latency_p99_samples"],
+                t["share_within_1_samples"],
+                t["share_within_2_samples"],
+                t["share_within_3_samples"],
+                t["turnaround_p50_us"],
+                t["turnaround_p99.9_us"],
             )
         )
+    else:
+        print("timing: too few answered samples to measure latency")
     if result.samples and result.scheduling:
         print(scheduling_text(result.scheduling))
     if result.nwb_path:
@@ -137,10 +371,6 @@ def scheduling_text(scheduling: dict[str, Any]) -> str:
     return f"loop process: {fifo}; /dev/cpu_dma_latency {dma} (see README, timing options)"
 
 
-def _interrupt(signum: int, frame: Any) -> None:
-    raise KeyboardInterrupt
-
-
 def _ports(args: argparse.Namespace) -> int:
     from clampcore.board_link import list_ports
 
@@ -154,10 +384,14 @@ def _ports(args: argparse.Namespace) -> int:
 
 
 def _recover(args: argparse.Namespace) -> int:
+    from clampcore.engine import nwb_path_for
     from clampcore.nwb import convert_journal
 
     journal = Path(args.journal)
-    out = Path(args.out) if args.out else journal.with_suffix(".nwb")
+    if not str(args.journal).strip() or not journal.is_dir():
+        raise FileNotFoundError(f"journal {args.journal!r}: no such journal folder")
+    out = nwb_path_for(args.out) if args.out else journal.with_suffix(".nwb")
+    _refuse_existing(out, args.force)
     _, removed = convert_journal(journal, out, keep_journal=args.keep_journal)
     print(f"wrote {out}" + ("; journal checked against it and removed" if removed else ""))
     return 0
@@ -175,14 +409,48 @@ def _demo(args: argparse.Namespace) -> int:
     return run_demo(Path(args.out_dir), args.duration)
 
 
+def _add_bounded(
+    p: argparse.ArgumentParser,
+    option: str,
+    bounds: tuple[float, float],
+    unit: str,
+    default: float,
+    what: str,
+) -> None:
+    lo, hi = bounds
+    p.add_argument(
+        option,
+        type=real_option(lo, hi, unit=unit),
+        default=default,
+        help=f"{what}, {lo:g}..{hi:g} {unit} (default {default:g})",
+    )
+
+
+def _add_seed(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--seed",
+        type=int_option(*SEED_RANGE),
+        default=0,
+        help=f"random seed, {SEED_RANGE[0]}..{SEED_RANGE[1]} (default 0)",
+    )
+
+
+def add_run_options(p: argparse.ArgumentParser) -> None:
+    """Options that `run` and the window share."""
+    _add_seed(p)
+    _add_bounded(p, "--watchdog-ms", WATCHDOG_MS_RANGE, "ms", 20.0, "board watchdog")
+
+
 _KEEP_JOURNAL_HELP = "keep the journal after the NWB file was written and checked"
 
 
 def _parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
-        prog="clampcore", description="Dynamic clamp on a serial board."
+    parser = _Parser(prog="clampcore", description="Dynamic clamp on a serial board.")
+    parser.add_argument(
+        "--debug", action="store_true", help="print the traceback of an error (for bug reports)"
     )
     sub = parser.add_subparsers(dest="command", required=True)
+    duration = real_option(0.0, low_open=True, unit="seconds")
 
     p = sub.add_parser("check", help="validate an experiment file and summarise it")
     p.add_argument("experiment")
@@ -192,23 +460,29 @@ def _parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("simulate", help="run an experiment offline against its model cell")
     p.add_argument("experiment")
-    p.add_argument("--duration", type=float, default=2.0, help="seconds (default 2)")
-    p.add_argument("--out", help="write .nwb or .npz")
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--duration", type=duration, default=2.0, help="seconds (default 2)")
+    p.add_argument("--out", help="write .nwb or .npz (other names get .npz added)")
+    _add_seed(p)
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
     stability.add_options(p)
     p.set_defaults(func=_simulate)
 
     p = sub.add_parser("run", help="run an experiment on a board (or 'sim')")
     p.add_argument("experiment")
     p.add_argument("--port", required=True, help="device path, pyserial URL, or 'sim'")
-    p.add_argument("--duration", type=float, default=None, help="seconds (default: until Ctrl-C)")
-    p.add_argument("--out", help="recording path (.nwb; its journal goes once the file is checked)")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--watchdog-ms", type=float, default=20.0, help="board watchdog (default 20)")
-    p.add_argument("--spin-us", type=float, default=30.0, help="spin before sleeping (µs)")
+    p.add_argument(
+        "--duration", type=duration, default=None, help="seconds (default: until Ctrl-C)"
+    )
+    p.add_argument(
+        "--out",
+        help="recording path (.nwb added unless given; its journal goes once the file is checked)",
+    )
+    p.add_argument("--force", action="store_true", help="replace an existing recording at --out")
+    add_run_options(p)
+    _add_bounded(p, "--spin-us", SPIN_US_RANGE, "µs", 30.0, "spin before sleeping")
     p.add_argument(
         "--realtime",
-        type=int,
+        type=int_option(*PRIORITY_RANGE),
         default=0,
         metavar="PRIO",
         help="SCHED_FIFO priority of the loop, where permitted (e.g. "
@@ -219,6 +493,20 @@ def _parser() -> argparse.ArgumentParser:
         action=argparse.BooleanOptionalAction,
         default=True,
         help="hold /dev/cpu_dma_latency at 0 while running, where permitted (default: on)",
+    )
+    p.add_argument(
+        "--warn-late-percent",
+        type=real_option(0.0, 100.0, low_open=True, unit="%"),
+        default=WARN_LATE_PERCENT,
+        help="warn once when more than this share of commands comes late within a status "
+        f"interval (default {WARN_LATE_PERCENT:g})",
+    )
+    p.add_argument(
+        "--warn-latency-samples",
+        type=int_option(1, 15),
+        default=WARN_LATENCY_SAMPLES,
+        help="warn once when the latency p99 of a status interval reaches this many samples "
+        f"(default {WARN_LATENCY_SAMPLES}; 15 is the live histogram's last bin)",
     )
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
     p.add_argument("--rig-log", help="for 'sim': the rig's ground-truth log")
@@ -231,20 +519,25 @@ def _parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("recover", help="convert what a crashed run left to NWB")
     p.add_argument("journal")
-    p.add_argument("--out")
+    p.add_argument("--out", help="NWB path (default: the journal's name with .nwb)")
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
     p.add_argument("--keep-journal", action="store_true", help=_KEEP_JOURNAL_HELP)
     p.set_defaults(func=_recover)
 
     p = sub.add_parser("show", help="summarise a recording and plot it (or a slice of it)")
     p.add_argument("recording", help="an NWB file written by clampcore")
-    p.add_argument("--from", dest="from_s", type=float, default=None, help="start, s")
-    p.add_argument("--to", dest="to_s", type=float, default=None, help="end, s")
+    p.add_argument("--from", dest="from_s", type=real_option(0.0), default=None, help="start, s")
+    p.add_argument("--to", dest="to_s", type=real_option(0.0), default=None, help="end, s")
     p.add_argument("--out", help="figure path (.png; default: beside the recording)")
     p.set_defaults(func=_show)
 
     p = sub.add_parser("demo", help="run an example on the simulated rig and plot it")
     p.add_argument("--out-dir", default="demo-output")
-    p.add_argument("--duration", type=float, default=5.0)
+    p.add_argument(
+        "--duration",
+        type=real_option(0.0, 600.0, low_open=True, unit="seconds"),
+        default=5.0,
+    )
     p.set_defaults(func=_demo)
 
     for name, module in _EXTRA_COMMANDS.items():
@@ -266,17 +559,24 @@ _EXTRA_COMMANDS: dict[str, str] = {
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code (2: bad input, 1: failure, 130: Ctrl-C)."""
     args = _parser().parse_args(argv)
     try:
         return int(args.func(args) or 0)
-    except ExperimentError as exc:
-        print(f"clampcore: {exc}", file=sys.stderr)
-        return 2
-    except (RuntimeError, ValueError, OSError) as exc:  # BoardError, EngineError, NwbError, ...
-        print(f"clampcore: {exc}", file=sys.stderr)
-        return 1
     except KeyboardInterrupt:
+        print("\nclampcore: interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:
+        if args.debug:
+            traceback.print_exc()
+        code = 2 if isinstance(exc, ExperimentError) else 1
+        if isinstance(exc, (ExperimentError, RuntimeError, ValueError, OSError, MemoryError)):
+            # BoardError, EngineError, RecordingError, NwbError, ...: their message says it all
+            message = str(exc) or type(exc).__name__
+        else:
+            message = f"unexpected {type(exc).__name__}: {exc} (run with --debug, report it)"
+        print(f"clampcore: {message}", file=sys.stderr)
+        return code
 
 
 if __name__ == "__main__":

@@ -35,7 +35,7 @@ def run_demo(out_dir: Path, duration_s: float = 5.0, example: str = "imposed_lif
         "(the board evaluates the current law at its own V)"
     )
     engine = Engine(exp, "sim", RunOptions(mode=LAW_MODE))
-    result = run_with_status(engine, duration_s, str(out_dir / "demo.nwb"))
+    result = run_with_status(engine, duration_s, str(out_dir / "demo.nwb"), force=True)
     if result.nwb_path is None:
         return 1
     problems = validate_nwb(result.nwb_path)

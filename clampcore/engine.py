@@ -31,6 +31,7 @@ import ctypes
 import ctypes.util
 import math
 import multiprocessing as mp
+import shutil
 import signal
 import tempfile
 import time
@@ -82,13 +83,14 @@ from clampcore.program import (
     delay_samples,
 )
 from clampcore.realtime import fifo_scheduling, hold_cpu_dma_latency_zero
-from clampcore.recorder import Recorder, recording_meta
+from clampcore.recorder import Recorder, check_free_space, recording_meta
 from clampcore.shared import (
     CTRL_EXIT,
     CTRL_STATE,
     CTRL_STOP,
     CTRL_WRITTEN,
     CTRL_ZERO,
+    LAT_BINS,
     STATE_FAILED,
     STATE_RUNNING,
     STATE_STARTING,
@@ -117,10 +119,10 @@ class RunOptions:
 
     seed: int = 0
     # The board's watchdog: no command for this long and it outputs 0 pA. Several times
-    # the worst scheduling stall measured on these machines (~4 ms, REALTIME-NOTES).
+    # the worst scheduling stall measured on these machines (~4 ms; DEVELOPERS.md, Figures).
     watchdog_ms: float = 20.0
     # Spin this long for input before sleeping in poll(): waking a sleeping reader costs
-    # 50-90 µs here (REALTIME-NOTES). Longer spins starve the other processes on a 2-core
+    # 50-90 µs here (DEVELOPERS.md, Figures). Longer spins starve the other processes on a 2-core
     # machine: 30 µs gave the fewest late commands against the simulated rig (bench_loop.py).
     spin_us: float = 30.0
     # The loop stops if the board sends nothing for this long (a vanished board).
@@ -178,6 +180,30 @@ SPIN_SHARE = 0.25
 # 2.7 µs, p99.9 33 µs; README, Benchmarks) and a high-speed USB board's 125 µs microframes
 # many times over; a full-speed USB board needs about 2 ms (1 ms frames both ways).
 MIN_LEAD_MS = 1.0
+
+
+def nwb_path_for(out: Path | str) -> Path:
+    """The NWB path of ``--out``: the user's name, with ``.nwb`` added unless it ends so
+    (``slice1.cell2`` gives ``slice1.cell2.nwb``, never ``slice1.nwb``)."""
+    out = Path(out)
+    return out if out.suffix.lower() == ".nwb" else out.with_name(out.name + ".nwb")
+
+
+def _check_outputs(nwb_path: Path, journal_path: Path, force: bool) -> None:
+    """Refuse to overwrite a recording unless ``force``; never lose an unconverted journal."""
+    if nwb_path.is_dir():
+        raise EngineError(f"{nwb_path} is a folder: choose a file name for --out")
+    if nwb_path.exists() and not force:
+        raise EngineError(f"{nwb_path} exists: choose another --out, or pass --force to replace it")
+    if journal_path.exists() and any(journal_path.iterdir()):
+        if not (journal_path / "final.json").is_file() or not nwb_path.exists():
+            raise EngineError(
+                f"{journal_path} holds a recording that was never converted: run "
+                f"`clampcore recover {journal_path}` or choose another --out"
+            )
+        if not force:
+            raise EngineError(f"{journal_path} exists: choose another --out, or pass --force")
+        shutil.rmtree(journal_path)  # a finished run's journal; its NWB is replaced too
 
 
 def _neuron_rows(program: Program) -> np.ndarray:
@@ -479,14 +505,26 @@ class Engine:
         self.result: RunResult | None = None
 
     # ------------------------------------------------------------------ lifecycle
-    def start(self, duration_s: float | None = None, out: Path | str | None = None) -> None:
-        """Start the loop (and the rig for port "sim") and the recorder; returns at once."""
+    def start(
+        self,
+        duration_s: float | None = None,
+        out: Path | str | None = None,
+        force: bool = False,
+    ) -> None:
+        """Start the loop (and the rig for port "sim") and the recorder; returns at once.
+
+        Refuses (``EngineError``, ``RecordingError``) a duration that is not a finite number
+        of seconds > 0, an existing recording at ``out`` unless ``force``, and a recording
+        that will not fit on its disk.
+        """
         exp = self.experiment
+        if duration_s is not None and not (math.isfinite(duration_s) and duration_s > 0):
+            raise EngineError(f"duration {duration_s!r} s: must be a finite number of seconds > 0")
         out_path = Path(out) if out else Path(time.strftime("clampcore-run-%Y%m%d-%H%M%S.nwb"))
-        self.nwb_path = out_path.with_suffix(".nwb")
-        journal_path = out_path.with_suffix(".journal")
-        if journal_path.exists() and any(journal_path.iterdir()):
-            raise EngineError(f"{journal_path} already holds a recording: choose another --out")
+        self.nwb_path = nwb_path_for(out_path)
+        journal_path = self.nwb_path.with_suffix(".journal")
+        _check_outputs(self.nwb_path, journal_path, force)
+        check_free_space(self.nwb_path.parent, exp, duration_s)
         self._tmpdir = tempfile.TemporaryDirectory(prefix="clampcore-")
         try:
             self._start(exp, journal_path, duration_s)
@@ -516,7 +554,7 @@ class Engine:
             source = "simulated rig"
         self.shared = SharedRun.create(self.layout)
         meta = recording_meta(exp, source, seed=self.options.seed, **self.options.extra_meta)
-        self.recorder = Recorder(self.shared, self.program, journal_path, meta)
+        self.recorder = Recorder(self.shared, self.program, journal_path, meta, duration_s)
         max_samples = round(duration_s * exp.loop["rate_hz"]) if duration_s else 0
         ctx = mp.get_context("spawn")
         self._conn, child_conn = ctx.Pipe(duplex=False)
@@ -635,7 +673,9 @@ class Engine:
             self._rig.stop()
         status = self.status()
         final = {
-            "exit_reason": report.get("error") or EXIT_MESSAGES.get(report["exit_code"], "?"),
+            "exit_reason": report.get("error")
+            or self.recorder.error
+            or EXIT_MESSAGES.get(report["exit_code"], "?"),
             "summary": status,
             "board": report.get("board"),
             "board_final_status": report.get("board_status"),
@@ -652,6 +692,9 @@ class Engine:
         finally:
             self.shared.close()
         timing = self.recorder.final_meta.get("timing", {})
+        error = report.get("error")
+        if self.recorder.error:
+            error = f"{error}; {self.recorder.error}" if error else self.recorder.error
         self.result = RunResult(
             exit_reason=final["exit_reason"],
             exit_code=int(report["exit_code"]),
@@ -661,7 +704,7 @@ class Engine:
             timing=timing,
             summary=status,
             board_status=report.get("board_status"),
-            error=report.get("error"),
+            error=error,
             scheduling=final["scheduling"],
             mode=final["mode"],
             notice=final["notice"],
@@ -679,18 +722,35 @@ class Engine:
         out["state"] = int(self.shared.ctrl[CTRL_STATE])
         out["written"] = int(self.shared.ctrl[CTRL_WRITTEN])
         out["zero_held"] = bool(self.shared.ctrl[CTRL_ZERO])
+        out["recording_error"] = self.recorder.error if self.recorder is not None else None
+        out["recording_warning"] = self.recorder.warning if self.recorder is not None else None
         return out
 
 
 def status_line(s: dict[str, Any], rate_hz: float) -> str:
-    """The one-line live status."""
+    """The one-line live status (what the board reports included: late commands, samples
+    under its watchdog, frames it rejected)."""
+    if s.get("recording_error"):
+        return "RECORDING FAILED: 0 pA commanded, stopping (see the message below)"
     if not s or s["samples"] == 0:
         return "starting: connecting to the board and loading the compiled loop"
+    last_bin = LAT_BINS - 1  # the live histogram's last bin holds that many samples or more
+
+    def lat(value: float) -> str:
+        if value != value:  # NaN: nothing answered yet (a stop during start-up)
+            return "-"
+        return f">={last_bin}" if value >= last_bin else f"{value:.0f}"
+
+    def us(value: float) -> str:
+        return "-" if value != value else f"{value:.0f}"
+
     return (
         f"t {s['elapsed_s']:6.1f} s | {rate_hz / 1000:g} kHz "
-        f"| latency p50 {s['latency_p50_samples']:.0f} "
-        f"p99 {s['latency_p99_samples']:.0f} samples | turnaround p50 {s['turnaround_p50_us']:.0f} "
-        f"p99 {s['turnaround_p99_us']:.0f} µs | late {s['late']} missing {s['missing']} "
+        f"| latency p50 {lat(s['latency_p50_samples'])} "
+        f"p99 {lat(s['latency_p99_samples'])} samples | turnaround p50 "
+        f"{us(s['turnaround_p50_us'])} p99 {us(s['turnaround_p99_us'])} µs "
+        f"| late {s['late']} missing {s['missing']} watchdog {s['watchdog']} "
+        f"rejected {s.get('rx_errors', 0)} "
         f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "
         f"({s['firing_rate_hz']:.1f} Hz)" + (" | ZERO CURRENT" if s["zero_held"] else "")
     )

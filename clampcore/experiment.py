@@ -7,7 +7,7 @@ no sense is refused here, with an error naming the element, the field and the
 value, so that nothing can fail later inside the running loop.
 
 Public names: ``Experiment``, ``ExperimentError``, ``load_experiment``,
-``validate_element``.
+``validate_element``, ``read_experiment_text``, ``model_warnings``.
 """
 
 from __future__ import annotations
@@ -95,22 +95,56 @@ def load_experiment(source: str | Path | dict[str, Any] | Experiment) -> Experim
         return exp
     else:
         if isinstance(source, Path) or (
-            isinstance(source, str) and "\n" not in source and source.endswith(".toml")
+            isinstance(source, str)
+            and "\n" not in source
+            and (source.endswith(".toml") or (source.strip() and Path(source).is_file()))
         ):
             path = Path(source)
-            if not path.is_file():
-                raise ExperimentError(f"experiment file {str(path)!r}", None, None, "not found")
-            text = path.read_text(encoding="utf-8")
+            text = read_experiment_text(path)
         else:
-            text = str(source)
+            text = str(source).removeprefix("\ufeff")
+        where = f"experiment file {str(path)!r}" if path else "experiment text"
         try:
             raw = tomllib.loads(text)
         except tomllib.TOMLDecodeError as exc:
-            where = str(path) if path else "experiment text"
             raise ExperimentError(where, None, None, f"not valid TOML: {exc}") from exc
+        if not raw:
+            raise ExperimentError(where, None, None, EMPTY_REASON)
     exp = _validate(raw)
     exp.text, exp.path = text, path
     return exp
+
+
+EMPTY_REASON = (
+    "is empty: an experiment needs at least a [loop] section (rate_hz, max_current_pA) and, "
+    "to run on a board, [amplifier] (vm_mV_per_V, command_pA_per_V) and one [[element]] "
+    "per virtual element (see examples/)"
+)
+
+
+def read_experiment_text(path: Path) -> str:
+    """The text of an experiment file (UTF-8, a byte-order mark allowed), or an
+    ``ExperimentError`` naming the file: missing, a folder, unreadable, not text."""
+    where = f"experiment file {str(path)!r}"
+    if not path.exists():
+        raise ExperimentError(where, None, None, "no such file")
+    if not path.is_file():
+        raise ExperimentError(where, None, None, "is not a file")
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise ExperimentError(where, None, None, f"cannot be read: {exc.strerror or exc}") from exc
+    if b"\x00" in data:
+        raise ExperimentError(where, None, None, "is not a text file (it holds NUL bytes)")
+    try:
+        return data.decode("utf-8-sig")  # TOML is UTF-8; editors on Windows may add a BOM
+    except UnicodeDecodeError as exc:
+        raise ExperimentError(
+            where,
+            None,
+            None,
+            f"is not UTF-8 text (byte {exc.start} is 0x{data[exc.start]:02x}); save it as UTF-8",
+        ) from exc
 
 
 def _validate(raw: dict[str, Any]) -> Experiment:
@@ -265,8 +299,39 @@ def _cross_check(el: dict[str, Any], where: str, dt_ms: float) -> None:
         )
     if kind == "synapse" and el["source"] == "train" and not el["times_ms"]:
         raise ExperimentError(where, "times_ms", el["times_ms"], "a train source needs times")
+    if kind == "current" and el["waveform"] == "ramp" and math.isinf(el["duration_ms"]):
+        # Refused rather than warned: its slope is amplitude_pA / duration_ms, so with the
+        # default (infinite) duration it would hold offset_pA for the whole run, never ramping.
+        raise ExperimentError(
+            where,
+            "duration_ms",
+            el["duration_ms"],
+            "a ramp needs a finite duration_ms (it rises by amplitude_pA over that time)",
+        )
     if kind == "current" and el["waveform"] == "train" and el["pulse_ms"] > el["period_ms"]:
         raise ExperimentError(where, "pulse_ms", el["pulse_ms"], "must not exceed period_ms")
+
+
+# Above this mean count per sample (rate x dt) a Poisson input is visibly shaped by the
+# sample grid: events coincide within a sample and the intervals are quantised (issue #11).
+POISSON_EVENTS_PER_SAMPLE_WARN = 0.1
+
+
+def model_warnings(experiment: Experiment) -> list[str]:
+    """Things that load but may not do what was meant, one sentence each, naming the element."""
+    out = []
+    dt_s = 1.0 / experiment.loop["rate_hz"]
+    for el in experiment.elements:
+        if el["kind"] == "synapse" and el["source"] == "poisson":
+            mean = el["rate_hz"] * dt_s
+            if mean > POISSON_EVENTS_PER_SAMPLE_WARN:
+                out.append(
+                    f"element '{el['name']}', field 'rate_hz' = {el['rate_hz']:g}: "
+                    f"{mean:.2g} events per sample on average (more than "
+                    f"{POISSON_EVENTS_PER_SAMPLE_WARN:g}); at {experiment.loop['rate_hz']:g} Hz "
+                    "the sample grid shapes this input (events share samples)"
+                )
+    return out
 
 
 def _toml_value(value: Any) -> str:

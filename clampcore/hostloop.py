@@ -57,6 +57,7 @@ from clampcore.shared import (
     ST_LIMITED,
     ST_MISSING,
     ST_OTHER_FRAMES,
+    ST_RX_ERROR,
     ST_SAMPLES,
     ST_SPIKES,
     ST_TURN_HIST,
@@ -85,6 +86,7 @@ from firmware_protocol.codec import (
     SAMPLE_NFIELDS,
     SAMPLE_STATUS,
     STATUS_LATE,
+    STATUS_RX_ERROR,
     STATUS_WATCHDOG,
     decode_sample,
     deframe_next,
@@ -301,6 +303,8 @@ def process_rx(
             stats[ST_LATE] += 1.0
         if status & STATUS_WATCHDOG:
             stats[ST_WATCHDOG] += 1.0
+        if status & STATUS_RX_ERROR:
+            stats[ST_RX_ERROR] += 1.0
         if flags & (FAULT_BAD_V | FAULT_NONFINITE):
             stats[ST_FAULTS] += 1.0
         if flags & FLAG_LIMITED:

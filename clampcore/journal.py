@@ -239,34 +239,44 @@ class Journal:
         line = _to_json(dict(record), f"event {record!r}")  # json escapes newlines: one line
         self._events += line.encode("utf-8") + b"\n"
 
-    def _write_all(self, fd: int, data: bytearray, name: str) -> None:
-        """Write ``data`` to ``fd``; on failure cut the file back to where it was and raise."""
+    def _write_all(self, fd: int, data: bytearray, name: str, unit: int) -> None:
+        """Write ``data`` to ``fd`` and empty it.
+
+        On failure (a full disk, a file-size limit) the file keeps the whole ``unit``-sized
+        records the operating system took (``unit`` 0: none, cut back to where it was), those
+        leave ``data``, and the rest stays buffered; then raises ``JournalError``.
+        """
         start = os.fstat(fd).st_size
-        view = memoryview(data)
         done = 0
         try:
-            while done < len(view):
-                done += os.write(fd, view[done:])
+            with memoryview(data) as view:
+                while done < len(view):
+                    done += os.write(fd, view[done:])
         except OSError as exc:
-            view.release()
-            with contextlib.suppress(
-                OSError
-            ):  # keep whole rows/lines so later writes stay readable
-                os.ftruncate(fd, start)
+            keep = done - done % unit if unit else 0
+            with contextlib.suppress(OSError):  # whole rows/lines only: later reads stay valid
+                os.ftruncate(fd, start + keep)
+            del data[:keep]
             raise JournalError(f"cannot write {self.path / name}: {exc}") from exc
-        view.release()
+        data.clear()
 
     def flush(self) -> None:
-        """Hand buffered rows, then buffered events, to the operating system (no fsync)."""
+        """Hand buffered rows, then buffered events, to the operating system (no fsync).
+
+        On a write error the rows the operating system took count as written, the rest
+        stay buffered for a later ``flush``, and ``JournalError`` is raised.
+        """
         self._check_open()
         if self._rows:
-            self._write_all(self._samples_fd, self._rows, _SAMPLES_FILE)
-            self._rows_written += len(self._rows) // self._row_bytes
-            self._rows.clear()
+            before = len(self._rows)
+            try:
+                self._write_all(self._samples_fd, self._rows, _SAMPLES_FILE, self._row_bytes)
+            finally:
+                self._rows_written += (before - len(self._rows)) // self._row_bytes
         if self._events:
-            self._write_all(self._events_fd, self._events, _EVENTS_FILE)
-            self._events_written += self._events.count(b"\n")
-            self._events.clear()
+            count = self._events.count(b"\n")
+            self._write_all(self._events_fd, self._events, _EVENTS_FILE, 0)
+            self._events_written += count
 
     def _release(self) -> None:
         for fd in (self._samples_fd, self._events_fd):

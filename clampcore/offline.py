@@ -24,6 +24,7 @@ from clampcore.calibration import (
     conversion_array,
     counts_to_mV,
     counts_to_pA,
+    current_limit_problem,
     mV_to_counts,
     pA_to_counts,
 )
@@ -174,13 +175,13 @@ class Recording:
             cols[f"spike/{name}"] = s.astype(np.float64)
         return cols
 
-    def save(self, path: str | Path) -> Path:
-        """Write ``.npz`` or, for a ``.nwb`` path, NWB."""
+    def save(self, path: str | Path, overwrite: bool = False) -> Path:
+        """Write ``.npz`` or, for a ``.nwb`` path, NWB (an existing NWB only if ``overwrite``)."""
         path = Path(path)
         if path.suffix == ".nwb":
             from clampcore.recorder import write_recording_nwb
 
-            return write_recording_nwb(self, path)
+            return write_recording_nwb(self, path, overwrite=overwrite)
         np.savez_compressed(path, t_s=self.t_s, **self.columns())
         return path if path.suffix == ".npz" else path.with_suffix(path.suffix + ".npz")
 
@@ -216,6 +217,9 @@ def simulate(
     cell_cfg["seed"] = int(cell_cfg["seed"]) + (int(seed) << 20)
     cell = make_cell(cell_cfg, exp.dt_ms)
     conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, exp.amplifier)
+    problem = current_limit_problem(conv, exp.loop["max_current_pA"]) if quantise else None
+    if problem:  # the live engine's rule (clampcore.calibration)
+        raise ValueError(f"refusing to simulate: {problem}")
     n_el = len(program.names)
     rows = _spike_rows(program)
     delay = 1 + int(exp.loop["extra_delay_samples"])

@@ -1,7 +1,7 @@
 """Operating-system settings for real-time work, each applied only where permitted.
 
 Standard Linux practice for low-latency acquisition (common practice, not project
-findings; REALTIME-NOTES in the team's shared notes measured their effect here):
+findings; their effect here is measured in README, Benchmarks):
 
 - ``fifo_scheduling``: SCHED_FIFO for the calling thread, so that ordinary
   processes (the recorder, a window, the desktop) cannot hold it off the CPU;

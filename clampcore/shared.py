@@ -64,11 +64,12 @@ ST_LIMITED = 8  # samples clipped to the current limit
 ST_SPIKES = 9  # spikes of the recorded cell
 ST_ZEROED = 10  # samples commanded to 0 pA by the zero-current control
 ST_COMMANDS = 11  # commands sent
+ST_RX_ERROR = 12  # samples the board flagged RX_ERROR (a bad frame or rejected command)
 ST_LAT_HIST = 16  # latency histogram in samples: bins 0..LAT_BINS-1 (last bin: that many or more)
 LAT_BINS = 16
 ST_TURN_HIST = ST_LAT_HIST + LAT_BINS  # turnaround histogram, TURN_BIN_US wide bins
 TURN_BINS = 200
-TURN_BIN_US = 5.0  # 5 µs bins up to 1 ms: the pty round trip is 5-100 µs (REALTIME-NOTES)
+TURN_BIN_US = 5.0  # 5 µs bins up to 1 ms: the pty round trip is 5-100 µs (DEVELOPERS.md, Figures)
 N_STATS = ST_TURN_HIST + TURN_BINS
 
 MAILBOX_SLOTS = 1024

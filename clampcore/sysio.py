@@ -78,7 +78,7 @@ def wait_readable(
     fd: int, spin_us: float, timeout_ms: int, timespec: np.ndarray, pollfd: np.ndarray
 ) -> int:
     """Wait for input as the host loop does: spin up to ``spin_us`` (a sleeping reader wakes
-    50-90 µs late on these machines, REALTIME-NOTES), then sleep in poll() for up to
+    50-90 µs late on these machines; DEVELOPERS.md, Figures), then sleep in poll() for up to
     ``timeout_ms``. Returns as ``fd_wait_readable``."""
     ready = fd_wait_readable(fd, 0, pollfd)
     if ready == 0 and spin_us > 0:

@@ -4,8 +4,8 @@ References, named beside each check: the closed-form RC step response; Ohm's
 law; the stationary variance of a first-order autoregressive process; and
 scipy.integrate.solve_ivp on the Hodgkin–Huxley 1952 equations written out
 here, per unit area, independently of the module under test.  Published
-numbers from /work/shared/REALTIME-NOTES.md are also checked with a stated
-tolerance (they were computed with solve_ivp on the same equations).
+figures stated in DEVELOPERS.md ("Figures the code relies on") are also checked with a
+stated tolerance (they were computed with solve_ivp on the same equations).
 """
 
 from __future__ import annotations
@@ -278,7 +278,7 @@ def test_hh_area_scaling() -> None:
 
 def test_hh_resting_potential() -> None:
     rest_mV = cell_rest_mV({"model": "hh"})
-    # REALTIME-NOTES.md (solve_ivp on HH 1952): rest −65.00 mV; within 0.1 mV
+    # DEVELOPERS.md, Figures (solve_ivp on HH 1952): rest −65.00 mV; within 0.1 mV
     assert rest_mV == pytest.approx(-65.0, abs=0.1)
     # solve_ivp from a perturbed start (−62 mV) settles at the same rest
     t_ms = np.array([0.0, 300.0])
@@ -311,7 +311,7 @@ def test_hh_repetitive_firing_matches_solve_ivp(hh_10uA) -> None:
     # against our solve_ivp run: the default 5 substeps at 20 kHz gave 0.003 Hz
     # when this was written; tolerance 0.05 Hz
     assert rate_hz == pytest.approx(rate_ref_hz, abs=0.05)
-    # REALTIME-NOTES.md (solve_ivp): 68.3 Hz, quoted to 0.1 Hz: tolerance 0.1 Hz
+    # DEVELOPERS.md, Figures (solve_ivp): 68.3 Hz, quoted to 0.1 Hz: tolerance 0.1 Hz
     assert rate_hz == pytest.approx(68.3, abs=0.1)
     # the first spike within 0.005 ms (0.0003 ms when this was written), and
     # the small rate error accumulates to under two samples over 68 spikes
@@ -320,7 +320,7 @@ def test_hh_repetitive_firing_matches_solve_ivp(hh_10uA) -> None:
     assert np.max(np.abs(spikes - spikes_ref)) < 2 * DT_MS
     # the first spike's peak, both sampled at the same 20 kHz times
     assert v.max() == pytest.approx(v_ref.max(), abs=0.02)
-    # REALTIME-NOTES.md: peak +40.3 mV; our 20 kHz samples may miss the true
+    # DEVELOPERS.md, Figures: peak +40.3 mV; our 20 kHz samples may miss the true
     # peak by a little, so tolerance 0.2 mV
     assert v.max() == pytest.approx(40.3, abs=0.2)
     # the trace itself, sample by sample, over the first two spikes (upstroke
@@ -330,7 +330,7 @@ def test_hh_repetitive_firing_matches_solve_ivp(hh_10uA) -> None:
 
 
 def test_hh_repetitive_firing_threshold() -> None:
-    # REALTIME-NOTES.md (solve_ivp): repetitive firing begins between 6.0 and
+    # DEVELOPERS.md, Figures (solve_ivp): repetitive firing begins between 6.0 and
     # 6.5 µA/cm².  Checked against our own solve_ivp run as well.
     n = 8000  # 400 ms
     t_ms = DT_MS * np.arange(n + 1)

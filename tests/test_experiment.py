@@ -167,7 +167,7 @@ def test_round_trip_keeps_infinity_and_lists() -> None:
 
 
 def test_missing_file_and_bad_toml() -> None:
-    with pytest.raises(ExperimentError, match="not found"):
+    with pytest.raises(ExperimentError, match="no such file"):
         load_experiment("/nonexistent/dir/experiment.toml")
     with pytest.raises(ExperimentError, match="not valid TOML"):
         load_experiment("[loop\nrate_hz = 1\n")

@@ -291,7 +291,7 @@ def test_zero_current_control(qtbot, tmp_path):
 
 def test_frozen_window_does_not_disturb_the_loop(qtbot, tmp_path):
     log = tmp_path / "rig.log"
-    # A 200 ms watchdog: longer than the VM's own scheduling stalls (REALTIME-NOTES: ms
+    # A 200 ms watchdog: longer than the VM's own scheduling stalls (DEVELOPERS.md, Figures: ms
     # outliers; this is not a timing test), far shorter than the frozen second, so a
     # loop that waited for the window would trip it.
     window = _window(qtbot, tmp_path, LEAK_EXPERIMENT, clock="wall", rig_log=log, watchdog_ms=200.0)

@@ -24,7 +24,7 @@ import clampcore
 from clampcore.cli import main
 from clampcore.engine import Engine, RunOptions
 from clampcore.journal import read_journal
-from clampcore.nwb import NwbError, convert_journal, read_nwb_summary, validate_nwb
+from clampcore.nwb import convert_journal, read_nwb_summary, validate_nwb
 from simulated_rig.groundtruth import NO_COMMAND, read_log
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -150,8 +150,9 @@ def test_one_copy_journal_removed_only_after_a_check(tmp_path, monkeypatch):
     engine = Engine(EXAMPLES / "imposed_lif.toml", "sim", RunOptions(rig_clock="lockstep"))
     engine.start(duration_s=0.05, out=tmp_path / "b.nwb")
     engine.wait(120)
-    with pytest.raises(NwbError, match="kept both"):
-        engine.finish()
+    result = engine.finish()  # no exception: the run's result says it (issue #11)
+    assert result.nwb_path is None and "kept both" in result.error
+    assert "clampcore recover" in result.error
     assert (tmp_path / "b.nwb").exists() and (tmp_path / "b.journal").is_dir()
 
 

@@ -618,7 +618,7 @@ def test_bad_options_give_a_clear_error(tmp_path: Path) -> None:
         )
 
     missing = run(str(tmp_path / "missing.toml"))
-    assert missing.returncode == 2 and "not found" in missing.stderr
+    assert missing.returncode == 2 and "no such file" in missing.stderr
     bad = tmp_path / "bad.toml"
     bad.write_text("[cell]\nleak_nS = -1\n")
     result = run(str(bad))

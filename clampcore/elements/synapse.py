@@ -20,14 +20,16 @@ facilitation), R_n = 1 + (R_{n-1}(1 - u_{n-1}) - 1) exp(-dt/tau_rec) (R_n = 1
 without depression); the event weight is w = g_max u_n R_n / U, so the first
 event from rest has peak g_max.
 
-Sources: ``poisson`` (at most one event a sample, probability
-1 - exp(-rate dt)), ``train`` (listed times, each counted at the sample nearest
+Sources: ``poisson`` (a Poisson-distributed count of events each sample, mean
+rate dt, so that the count over any time T has mean rate T and Fano factor 1 as a
+Poisson process has: Cox & Lewis 1966, The Statistical Analysis of Series of
+Events), ``train`` (listed times, each counted at the sample nearest
 to it), ``cell`` (the recorded cell's detected spikes, ``delay_ms`` later: the same
 sample by default) and a
 virtual neuron (its spike of the previous sample).
 
 Public names: ``COLUMNS``, the ``SRC_*`` and ``KIN_*`` codes, ``synapse_events``,
-``synapse_conductance``, ``mg_block``, ``dual_exp_peak_factor``.
+``synapse_conductance``, ``mg_block``, ``dual_exp_peak_factor``, ``poisson_count``.
 """
 
 from __future__ import annotations
@@ -39,7 +41,7 @@ import numpy as np
 from clampcore.elements.decay import decay_factor
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.jit import kernel
-from clampcore.rng import uniform
+from clampcore.rng import normal, uniform
 
 KIN_EXP, KIN_ALPHA, KIN_DUAL = 0, 1, 2
 KINETICS_CODES = {"exp": KIN_EXP, "alpha": KIN_ALPHA, "dual_exp": KIN_DUAL}
@@ -110,6 +112,34 @@ def dual_exp_peak_factor(tau_rise_ms: float, tau_decay_ms: float) -> float:
     return 1.0 / (math.exp(-t_peak / tau_decay_ms) - math.exp(-t_peak / tau_rise_ms))
 
 
+# Above this mean count per sample the search below would take many steps; the count is
+# then drawn from the normal approximation N(mean, mean), rounded (common practice for
+# Poisson means of several tens; far beyond the 0.1 per sample that the loader warns at).
+_POISSON_SEARCH_MAX_MEAN = 30.0
+
+
+@kernel
+def poisson_count(rng: np.ndarray, row: int, mean: float) -> int:
+    """A Poisson-distributed count with mean ``mean`` from one uniform deviate.
+
+    Inversion by sequential search (Devroye 1986, Non-Uniform Random Variate Generation,
+    section X.3.2): the smallest k with P(N <= k) >= u, P(N = k) = e^-m m^k / k!.
+    """
+    if mean <= 0.0:
+        return 0
+    if mean > _POISSON_SEARCH_MAX_MEAN:
+        return max(0, math.floor(mean + math.sqrt(mean) * normal(rng, row) + 0.5))
+    u = uniform(rng, row)
+    p = math.exp(-mean)
+    cdf = p
+    k = 0
+    while u > cdf and p > 0.0:  # p > 0: ends even when rounding keeps cdf just below u
+        k += 1
+        p *= mean / k
+        cdf += p
+    return k
+
+
 @kernel
 def synapse_events(
     p: np.ndarray,
@@ -128,7 +158,7 @@ def synapse_events(
     """
     source = int(p[P_SOURCE])
     if source == SRC_POISSON:
-        return 1 if uniform(rng, row) < -math.expm1(-p[P_RATE] * dt_ms * 1e-3) else 0
+        return poisson_count(rng, row, p[P_RATE] * dt_ms * 1e-3)
     if source == SRC_TRAIN:
         start = int(p[P_TRAIN_START])
         count = int(p[P_TRAIN_COUNT])
