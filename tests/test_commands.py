@@ -139,6 +139,7 @@ def test_run_on_the_simulated_rig_prints_status_and_writes_a_recording(
 ) -> None:
     out_path = tmp_path / "run.nwb"
     argv = ["run", str(experiment), "--port", "sim", "--duration", "0.3", "--out", str(out_path)]
+    argv.append("--keep-journal")  # recover is tried on it below
     assert main([*argv, "--rig-clock", "lockstep"]) == 0
     out = capsys.readouterr().out
     # The status line, then the end-of-run summary.
@@ -155,7 +156,8 @@ def test_run_on_the_simulated_rig_prints_status_and_writes_a_recording(
     assert rec["n_samples"] >= 0.3 * RATE_HZ
     t_ms = np.arange(rec["n_samples"]) * 1000.0 / RATE_HZ
     np.testing.assert_allclose(rec["v_mV"], v_rc_mV(t_ms), atol=0.03)
-    # The journal stays beside the recording; `recover` makes the same recording from it.
+    # With --keep-journal the journal stays beside the recording; `recover` makes the same
+    # recording from it.
     journal = out_path.with_suffix(".journal")
     recovered = tmp_path / "recovered.nwb"
     assert main(["recover", str(journal), "--out", str(recovered)]) == 0

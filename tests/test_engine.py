@@ -57,9 +57,12 @@ def test_a_live_change_reaches_the_cell_and_the_recording(tmp_path: Path) -> Non
     s = changes[0]["sample"] - rec["first_sample"]
     v, i = rec["columns"]["v_mV"], rec["columns"]["i_pA"]
     assert 1000 < s < v.size - 1000
-    # I = -g (V - E) with the old g before the logged sample and the new g from it on.
-    np.testing.assert_allclose(i[:s], -2.0 * (v[:s] + 40.0), rtol=1e-9, atol=1e-9)
-    np.testing.assert_allclose(i[s:], -6.0 * (v[s:] + 40.0), rtol=1e-9, atol=1e-9)
+    # I = -g (V - E) with the old g before the logged sample and the new g from it on; the
+    # recording holds the DAC count sent, within half a step of 400 pA/V over 16 bits and
+    # 20 V (PROTOCOL.md §6).
+    half_step = 400.0 * 20.0 / 65535 / 2 + 1e-9
+    np.testing.assert_allclose(i[:s], -2.0 * (v[:s] + 40.0), rtol=0, atol=half_step)
+    np.testing.assert_allclose(i[s:], -6.0 * (v[s:] + 40.0), rtol=0, atol=half_step)
     assert i[s] > 2.5 * i[s - 1] > 0  # and the current really changed there
     # The engine's copy of the experiment (what a save writes) has the new value.
     assert engine.experiment.element("extra_leak")["g_nS"] == 6.0
@@ -135,7 +138,7 @@ def test_recorder_counts_the_rows_the_ring_lapped(tmp_path: Path) -> None:
         write(25)
         recorder.drain()
         assert recorder.lost_rows == 12
-        recorder.stop()
+        recorder.stop(keep_journal=True)
         assert recorder.final_meta["lost_rows"] == 12
         counters = read_journal(tmp_path / "lapped.journal").columns["sample_counter"]
         np.testing.assert_array_equal(counters, np.arange(12, 25))
