@@ -88,7 +88,7 @@ def test_check_summarises_what_the_file_says(capsys) -> None:
     assert f"Loop {raw['loop']['rate_hz']:g} Hz" in first
     assert f"±{raw['loop']['max_current_pA']:g} pA" in first
     assert f"model cell: {raw['cell']['model']}" in first
-    listed = [line.split()[:2] for line in out.splitlines()[1:]]
+    listed = [line.split()[:2] for line in out.splitlines()[1:] if line.startswith("  ")]
     assert listed == [[el["kind"], el["name"]] for el in raw["element"]]
 
 
