@@ -42,6 +42,7 @@ from clampcore.experiment import (
     load_experiment,
     model_warnings,
 )
+from clampcore.links import LINKS
 from clampcore.realtime import LOOP_FIFO_PRIORITY
 
 # Accepted ranges of the command line's values (each says where it comes from).
@@ -161,6 +162,8 @@ def _simulate(args: argparse.Namespace) -> int:
     from clampcore.recorder import bytes_per_second
 
     exp = experiment_argument(args.experiment)
+    if args.mode:
+        exp.loop["mode"] = args.mode
     _print_warnings(exp)
     report = stability.from_args(args, exp)
     print("\n".join(report.lines()[1:]))
@@ -178,7 +181,7 @@ def _simulate(args: argparse.Namespace) -> int:
             f"--duration {args.duration:g}: the offline simulation would hold about "
             f"{needed / 1e9:.1f} GB in memory, {free / 1e9:.1f} GB are free; simulate less"
         )
-    rec = simulate(exp, args.duration, seed=args.seed)
+    rec = simulate(exp, args.duration, seed=args.seed, mode=args.mode)
     rec.extra["stability"] = report.as_meta()
     print(rec.summary_text())
     if out is not None:
@@ -198,10 +201,14 @@ def _run(args: argparse.Namespace) -> int:
     from clampcore.engine import Engine, RunOptions
 
     exp = experiment_argument(args.experiment)
+    if args.mode:
+        exp.loop["mode"] = args.mode  # for the stability guard; the engine gets it below
     _print_warnings(exp)
     report = stability.from_args(args, exp, args.port)
     print("\n".join(report.lines()[1:]))
     options = RunOptions(
+        mode=args.mode,
+        rig_link=args.link,
         seed=args.seed,
         watchdog_ms=args.watchdog_ms,
         spin_us=args.spin_us,
@@ -337,8 +344,18 @@ def run_with_status(
     else:
         print(f"ended: {result.exit_reason}")
     t = result.timing
+    if result.notice:
+        print(f"note: {result.notice}")
     if result.samples == 0:
         print("no samples were recorded; no recording written")
+    elif result.mode == "law":
+        s = result.summary
+        share = 1.0 - s.get("faults", 0) / max(1, result.samples)
+        print(
+            f"law mode: the board evaluated the law at its own V on {share:.2%} of samples; "
+            f"{s.get('faults', 0)} at 0 pA (no law young enough, or a fault), "
+            f"{s.get('late', 0)} flagged with late laws"
+        )
     elif t.get("latency_p50_samples") is not None and t.get("turnaround_p50_us") is not None:
         print(
             "timing: latency p50 {:.0f} / p99 {:.0f} samples; within 1/2/3 samples "
@@ -464,6 +481,7 @@ def _parser() -> argparse.ArgumentParser:
     p.add_argument("--out", help="write .nwb or .npz (other names get .npz added)")
     _add_seed(p)
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
+    _add_mode(p)
     stability.add_options(p)
     p.set_defaults(func=_simulate)
 
@@ -508,6 +526,13 @@ def _parser() -> argparse.ArgumentParser:
         help="warn once when the latency p99 of a status interval reaches this many samples "
         f"(default {WARN_LATENCY_SAMPLES}; 15 is the live histogram's last bin)",
     )
+    _add_mode(p)
+    p.add_argument(
+        "--link",
+        choices=[n for n, link in LINKS.items() if link.baud == 0 and n != "ideal"],
+        default=None,
+        help="for 'sim' on the wall clock: hold bytes as this link would (README: choosing a link)",
+    )
     p.add_argument("--rig-clock", choices=("wall", "lockstep"), default="wall", help="for 'sim'")
     p.add_argument("--rig-log", help="for 'sim': the rig's ground-truth log")
     p.add_argument("--keep-journal", action="store_true", help=_KEEP_JOURNAL_HELP)
@@ -547,6 +572,16 @@ def _parser() -> argparse.ArgumentParser:
             continue
         mod.add_parser(sub, name)
     return parser
+
+
+def _add_mode(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--mode",
+        choices=("current", "law"),
+        default=None,
+        help="current: the host computes each current; law: the board evaluates the current "
+        "law at its own V (default: the experiment's [loop] mode; README: law mode)",
+    )
 
 
 # Commands that live in their own modules; each module has ``add_parser(sub, name)``.

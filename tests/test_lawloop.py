@@ -208,3 +208,16 @@ def test_live_changes_in_law_mode_reach_the_law_or_are_refused(tmp_path):
     first = int(np.flatnonzero(g == 12.0)[0])
     assert np.all(g[:first] == 5.0) and np.all(g[first:] == 12.0)
     assert counters[first] == change["sample"]
+
+
+def test_run_command_in_law_mode_says_so(tmp_path, capsys):
+    """`clampcore run --mode law` on the simulated rig: the end of the run says how much of
+    it the board evaluated the law itself; the recording passes pynwb's validator."""
+    from clampcore.cli import main
+
+    out = tmp_path / "cli.nwb"
+    argv = ["run", str(EXAMPLE), "--port", "sim", "--duration", "0.3", "--mode", "law"]
+    assert main([*argv, "--rig-clock", "lockstep", "--out", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "law mode: the board evaluated the law at its own V on 100.00% of samples" in text
+    assert validate_nwb(out) == []
