@@ -20,7 +20,7 @@ g > 0 is self-limiting: a passive cell (g_m, E_m) under it settles at
 guard, spike detection, one threshold_reset element, the law's lifetime, the block
 table) into the board's parameter arrays.
 
-Public names: ``LAW_MODE``, ``CURRENT_MODE``, ``law_scale``, ``law_to_counts``,
+Public names: ``LAW_MODE``, ``CURRENT_MODE``, ``law_scale``, ``law_to_counts``, ``make_law``,
 ``current_to_law``, ``board_arrays``, ``first_count_at_or_above``, ``block_table``.
 """
 
@@ -36,7 +36,14 @@ from clampcore.elements import synapse as _syn
 from clampcore.elements import threshold_reset as _tr
 from clampcore.jit import kernel
 from clampcore.program import Program
-from clampcore.step import LP_MG_MM
+from clampcore.step import (
+    LP_MG_MM,
+    LS_LAW_A_PA,
+    LS_LAW_AB_PA,
+    LS_LAW_G_NS,
+    LS_LAW_GB_NS,
+    element_conductances,
+)
 from firmware_protocol import boardlaw as bl
 
 LAW_MODE = "law"  # the board evaluates the law at its own V (protocol v2)
@@ -76,6 +83,33 @@ def law_to_counts(
     out[bl.LAW_BETA] = k * g_nS * mv1
     out[bl.LAW_ALPHA_B] = k * (ab_pA - gb_nS * mv0)
     out[bl.LAW_BETA_B] = k * gb_nS * mv1
+
+
+@kernel
+def make_law(
+    s: int,
+    scale: np.ndarray,
+    kind: np.ndarray,
+    params: np.ndarray,
+    state: np.ndarray,
+    rng: np.ndarray,
+    trains: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+    loop_p: np.ndarray,
+    loop_s: np.ndarray,
+    out: np.ndarray,
+) -> None:
+    """Advance every element to sample ``s`` and write that sample's law, in counts, to ``out``."""
+    element_conductances(s, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+    law_to_counts(
+        scale,
+        loop_s[LS_LAW_A_PA],
+        loop_s[LS_LAW_G_NS],
+        loop_s[LS_LAW_AB_PA],
+        loop_s[LS_LAW_GB_NS],
+        out,
+    )
 
 
 @kernel

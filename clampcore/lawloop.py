@@ -45,7 +45,7 @@ from clampcore.hostloop import (
     _apply_mail,
 )
 from clampcore.jit import kernel
-from clampcore.law import law_to_counts
+from clampcore.law import make_law
 from clampcore.shared import (
     COL_COUNTER,
     COL_FLAGS,
@@ -78,12 +78,7 @@ from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
     FLAG_LIMITED,
-    LS_LAW_A_PA,
-    LS_LAW_AB_PA,
-    LS_LAW_G_NS,
-    LS_LAW_GB_NS,
     cell_currents,
-    element_conductances,
     hist_record_cell_spike,
 )
 from clampcore.sysio import fd_read, fd_write, wait_readable
@@ -271,14 +266,8 @@ def top_up_laws(
     target = lw[LW_SEEN] + lw[LW_LEAD]
     for s in range(first, target + 1):
         _apply_mail(ctrl, mailbox, applied, params, loop_p, s)
-        element_conductances(s, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
-        law_to_counts(
-            scale,
-            loop_s[LS_LAW_A_PA],
-            loop_s[LS_LAW_G_NS],
-            loop_s[LS_LAW_AB_PA],
-            loop_s[LS_LAW_GB_NS],
-            laws[s & mask],
+        make_law(
+            s, scale, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s, laws[s & mask]
         )
         h = s & mask
         for r in range(n_el):

@@ -50,19 +50,14 @@ from clampcore.law import (
     board_arrays,
     current_to_law,
     law_scale,
-    law_to_counts,
+    make_law,
 )
 from clampcore.lawloop import board_reset_current
 from clampcore.links import LINKS, Link, schedule
 from clampcore.program import build_program
 from clampcore.step import (
     LS_CELL_SPIKED,
-    LS_LAW_A_PA,
-    LS_LAW_AB_PA,
-    LS_LAW_G_NS,
-    LS_LAW_GB_NS,
     cell_currents,
-    element_conductances,
     hist_record_cell_spike,
     step,
 )
@@ -135,14 +130,8 @@ def link_loop(
     delivered = 0  # current mode: next command to deliver
     if law_mode:
         for s in range(min(lead + 1, n)):  # sent before the start
-            element_conductances(s, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
-            law_to_counts(
-                scale,
-                loop_s[LS_LAW_A_PA],
-                loop_s[LS_LAW_G_NS],
-                loop_s[LS_LAW_AB_PA],
-                loop_s[LS_LAW_GB_NS],
-                laws[s],
+            make_law(
+                s, scale, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s, laws[s]
             )
             law_arrive_us[s] = 0.0
             _put_row(out_g, s, g_out)
@@ -189,17 +178,10 @@ def link_loop(
             seen = max(seen, newest)
             if law_mode:
                 for s in range(hi + 1, min(newest + lead, n - 1) + 1):
-                    element_conductances(
-                        s, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s
-                    )
-                    law_to_counts(
-                        scale,
-                        loop_s[LS_LAW_A_PA],
-                        loop_s[LS_LAW_G_NS],
-                        loop_s[LS_LAW_AB_PA],
-                        loop_s[LS_LAW_GB_NS],
-                        laws[s],
-                    )
+                    make_law(
+                        s, scale, kind, params, state, rng, trains, g_out, i_out, loop_p,
+                        loop_s, laws[s],
+                    )  # fmt: skip
                     law_arrive_us[s] = arrive_us[w]
                     _put_row(out_g, s, g_out)
                     _put_row(out_i_el, s, i_out)
