@@ -239,9 +239,10 @@ class BoardLink:
         the one the command in force answers (PROTOCOL.md §5.2), so repeating the last
         answered counter would be rejected. This reads the samples that arrived after
         ``last_counter`` (the newest the loop answered; -1 for none) and answers the newest
-        of them. Returns the counter answered, or None when no newer sample came within
-        ``timeout_s``: then no COMMAND could be applied and only STOP's fault value (0 pA)
-        brings the output to zero.
+        of them, then waits up to ``timeout_s`` for a sample that shows it in force. Returns
+        the counter answered, or None when no newer sample came within ``timeout_s``: then
+        no COMMAND could be applied and only STOP's fault value (0 pA) brings the output to
+        zero.
         """
         newest = None
         for _seq, msg in self._frames(time.monotonic() + timeout_s):
@@ -254,6 +255,12 @@ class BoardLink:
         if newest is None:
             return None
         self.command_now(seq, newest, dac_counts)
+        # Wait (as long again at most) for a sample taken with it in force, so that a STOP
+        # sent next cannot overtake it at the board.
+        with contextlib.suppress(BoardError):
+            for _seq, msg in self._frames(time.monotonic() + timeout_s):
+                if isinstance(msg, codec.Sample) and msg.cmd_seq == seq % 0x10000:
+                    break
         return newest
 
     def take_unread(self) -> bytes:

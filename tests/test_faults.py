@@ -312,6 +312,7 @@ def test_disk_fills_up_mid_run(capsys, tmp_path, kind, fill):
         engine = Engine(EXAMPLE, "sim", options)
         engine.start(duration_s=3.0, out=out)  # 3 s fit in 32 MB: the start-up check passes
         _wait_for_rows(engine, 2000)
+        flushed = read_journal(journal).n_samples  # on disk before the disk fills
         fill(engine, journal)
         assert engine.wait(60.0), "the run did not stop when the disk filled"
         status = engine.status()
@@ -335,7 +336,7 @@ def test_disk_fills_up_mid_run(capsys, tmp_path, kind, fill):
             code, text = _cli(capsys, "recover", journal, "--out", nwb, "--keep-journal")
             assert code == 0, text
         kept = _assert_no_sample_lost(nwb, journal)
-        assert kept >= 2000
+        assert kept >= flushed > 0  # every row the journal had written is recovered
 
 
 def _status_line(status: dict) -> str:
