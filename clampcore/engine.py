@@ -104,7 +104,8 @@ from firmware_protocol.lawmsg import rules_body, table_bodies
 _PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
 # Before stopping, wait this long for a sample newer than the last one answered, so that the
 # 0 pA command has a sample to answer: a running board sends one per period; the slack covers
-# a scheduling stall of the host (a few ms on these machines, REALTIME-NOTES).
+# a scheduling stall of the host (a few ms on these machines; DEVELOPERS.md, "Figures the
+# code relies on").
 _ZERO_WAIT_PERIODS = 3
 _ZERO_WAIT_SLACK_S = 0.05
 
