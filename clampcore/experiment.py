@@ -20,7 +20,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, KINDS, SECTION_FIELDS, check_value
+from clampcore.elements import KINDS, SPECS
+from clampcore.schema import COMMON_FIELDS, SECTION_FIELDS, check_value
 
 RESERVED_NAMES = ("cell", "poisson", "train")
 # ISO 8601 durations (P21D, P3M, P1Y2M, PT12H; a range's start "P21D/" as NWB allows).
@@ -173,19 +174,11 @@ def _validate(raw: dict[str, Any]) -> Experiment:
         elements.append(checked)
     neurons = {el["name"] for el in elements if el["kind"] == "neuron"}
     for index, el in enumerate(elements):
-        if el["kind"] != "synapse":
-            continue
-        if el["source"] not in ("poisson", "train", "cell") and el["source"] not in neurons:
-            raise ExperimentError(
-                _where(el, index),
-                "source",
-                el["source"],
-                "must be poisson, train, cell or the name of a neuron element",
-            )
-        if el["target"] != "cell" and el["target"] not in neurons:
-            raise ExperimentError(
-                _where(el, index), "target", el["target"], "must be cell or the name of a neuron"
-            )
+        check_refs = SPECS[el["kind"]].check_refs
+        problem = check_refs(el, neurons) if check_refs else None
+        if problem:
+            field_name, reason = problem
+            raise ExperimentError(_where(el, index), field_name, el[field_name], reason)
     return Experiment(
         loop=loop,
         cell=sections["cell"],
@@ -256,7 +249,8 @@ def validate_element(el: Any, index: int, dt_ms: float) -> dict[str, Any]:
         raise ExperimentError(where, "name", name, "every element needs a name (text)")
     if name in RESERVED_NAMES or "/" in name:
         raise ExperimentError(where, "name", name, "reserved or contains '/'")
-    fields = {f.name: f for f in (*COMMON_FIELDS, *ELEMENT_FIELDS[kind])}
+    spec = SPECS[kind]
+    fields = {f.name: f for f in (*COMMON_FIELDS, *spec.fields)}
     out: dict[str, Any] = {"kind": kind, "name": name}
     for key in el:
         if key not in fields and key not in ("kind", "name"):
@@ -269,47 +263,11 @@ def validate_element(el: Any, index: int, dt_ms: float) -> dict[str, Any]:
         if reason:
             raise ExperimentError(where, f.name, value, reason)
         out[f.name] = value
-    _cross_check(out, where, dt_ms)
+    problem = spec.check(out, dt_ms) if spec.check else None
+    if problem:
+        field_name, reason = problem
+        raise ExperimentError(where, field_name, out[field_name], reason)
     return out
-
-
-def _cross_check(el: dict[str, Any], where: str, dt_ms: float) -> None:
-    kind = el["kind"]
-    if kind in ("threshold_reset", "neuron") and el["refractory_ms"] < dt_ms * (1 - 1e-9):
-        raise ExperimentError(
-            where,
-            "refractory_ms",
-            el["refractory_ms"],
-            f"shorter than one sample ({dt_ms:g} ms at this rate)",
-        )
-    if kind == "threshold_reset" and not el["reset_mV"] < el["threshold_mV"]:
-        raise ExperimentError(where, "reset_mV", el["reset_mV"], "must be below threshold_mV")
-    if kind == "neuron":
-        if not el["reset_mV"] < el["threshold_mV"]:
-            raise ExperimentError(where, "reset_mV", el["reset_mV"], "must be below threshold_mV")
-        if el["model"] != "lif" and not el["v_peak_mV"] > el["threshold_mV"]:
-            raise ExperimentError(where, "v_peak_mV", el["v_peak_mV"], "must be above threshold_mV")
-    if (
-        kind == "synapse"
-        and el["kinetics"] == "dual_exp"
-        and not el["tau_rise_ms"] < el["tau_decay_ms"]
-    ):
-        raise ExperimentError(
-            where, "tau_rise_ms", el["tau_rise_ms"], "must be shorter than tau_decay_ms"
-        )
-    if kind == "synapse" and el["source"] == "train" and not el["times_ms"]:
-        raise ExperimentError(where, "times_ms", el["times_ms"], "a train source needs times")
-    if kind == "current" and el["waveform"] == "ramp" and math.isinf(el["duration_ms"]):
-        # Refused rather than warned: its slope is amplitude_pA / duration_ms, so with the
-        # default (infinite) duration it would hold offset_pA for the whole run, never ramping.
-        raise ExperimentError(
-            where,
-            "duration_ms",
-            el["duration_ms"],
-            "a ramp needs a finite duration_ms (it rises by amplitude_pA over that time)",
-        )
-    if kind == "current" and el["waveform"] == "train" and el["pulse_ms"] > el["period_ms"]:
-        raise ExperimentError(where, "pulse_ms", el["pulse_ms"], "must not exceed period_ms")
 
 
 # Above this mean count per sample (rate x dt) a Poisson input is visibly shaped by the

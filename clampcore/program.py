@@ -10,16 +10,25 @@ Public names: ``Program``, ``build_program``, ``ParamSlot``, ``check_live_change
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from clampcore import elements as el_mod
 from clampcore import step as step_mod
 from clampcore.calibration import range_limit_problem
-from clampcore.elements import current, neuron, synapse
+from clampcore.elements import (
+    KIND_NEURON,
+    N_PARAMS,
+    N_STATE,
+    P_ENABLED,
+    P_TARGET,
+    SPECS,
+    TARGET_CELL,
+)
+from clampcore.elements.spec import RowContext
+from clampcore.elements.synapse import P_DELAY
+from clampcore.elements.synapse import delay_samples as delay_samples  # re-exported
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.rng import seed_state
 from clampcore.schema import SECTION_FIELDS, check_value
@@ -98,8 +107,8 @@ class Program:
         r = self.row(element)
         kind = self.kinds[r]
         if field == "enabled":
-            return ParamSlot("params", r, el_mod.P_ENABLED)
-        columns = el_mod.COLUMNS[kind]
+            return ParamSlot("params", r, P_ENABLED)
+        columns = SPECS[kind].live_columns
         if field not in columns:
             raise KeyError(f"{kind} '{element}': field {field!r} cannot change while running")
         return ParamSlot("params", r, columns[field])
@@ -110,14 +119,24 @@ class Program:
             return 1.0 if value else 0.0
         return float(value)
 
+    def spike_rows(self) -> np.ndarray:
+        """Rows of the virtual neurons (int64), whose spikes are recorded after the cell's."""
+        return np.flatnonzero(self.kind == KIND_NEURON).astype(np.int64)
+
     def spike_sources(self) -> list[str]:
         """Names with a spike record: the cell, then every virtual neuron."""
-        return ["cell", *[n for n, k in zip(self.names, self.kinds, strict=True) if k == "neuron"]]
+        return ["cell", *[self.names[r] for r in self.spike_rows()]]
 
-
-def delay_samples(delay_ms: float, dt_ms: float) -> int:
-    """A synaptic delay in whole samples (nearest; 1e-9 absorbs rounding of exact halves)."""
-    return math.floor(delay_ms / dt_ms + 0.5 + 1e-9)
+    def slot_names(self) -> dict[tuple[str, int, int], tuple[str, str]]:
+        """(array, row, col) of every live parameter (see ``ParamSlot``) -> (element, field)."""
+        out: dict[tuple[str, int, int], tuple[str, str]] = {}
+        for r, (name, kind) in enumerate(zip(self.names, self.kinds, strict=True)):
+            out[("params", r, P_ENABLED)] = (name, "enabled")
+            for field, col in SPECS[kind].live_columns.items():
+                out[("params", r, col)] = (name, field)
+        for field, col in LOOP_COLUMNS.items():
+            out[("loop", -1, col)] = ("loop", field)
+        return out
 
 
 def blocked_group_mg_mM(exp: Experiment) -> float:
@@ -152,60 +171,29 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
     n = len(exp.elements)
     names = [e["name"] for e in exp.elements]
     kind = np.zeros(n, dtype=np.int64)
-    params = np.zeros((n, el_mod.N_PARAMS))
-    state = np.zeros((n, el_mod.N_STATE))
+    params = np.zeros((n, N_PARAMS))
+    state = np.zeros((n, N_STATE))
     rng = np.zeros(n, dtype=np.uint64)
-    trains: list[float] = []
-    dt_ms = exp.dt_ms
+    ctx = RowContext(names=names, trains=[], dt_ms=exp.dt_ms)
     for r, e in enumerate(exp.elements):
-        k = e["kind"]
-        kind[r] = el_mod.KIND_CODES[k]
-        p = params[r]
-        p[el_mod.P_ENABLED] = 1.0 if e["enabled"] else 0.0
-        p[el_mod.P_TARGET] = el_mod.TARGET_CELL
-        for fname, col in el_mod.COLUMNS[k].items():
-            p[col] = float(e[fname])
+        spec = SPECS[e["kind"]]
+        kind[r] = spec.code
+        params[r, P_ENABLED] = 1.0 if e["enabled"] else 0.0
+        params[r, P_TARGET] = TARGET_CELL
         if "seed" in e:
             # Each element gets its own stream: the run's seed, the element's seed and its row.
             rng[r] = seed_state(int(e["seed"]) + (int(seed) << 20), stream=r)
-        if k == "synapse":
-            p[synapse.P_KINETICS] = synapse.KINETICS_CODES[e["kinetics"]]
-            if e["target"] != "cell":
-                p[el_mod.P_TARGET] = names.index(e["target"])
-            src = e["source"]
-            if src == "poisson":
-                p[synapse.P_SOURCE] = synapse.SRC_POISSON
-            elif src == "train":
-                p[synapse.P_SOURCE] = synapse.SRC_TRAIN
-                p[synapse.P_TRAIN_START] = len(trains)
-                p[synapse.P_TRAIN_COUNT] = len(e["times_ms"])
-                trains.extend(e["times_ms"])
-            elif src == "cell":
-                p[synapse.P_SOURCE] = synapse.SRC_CELL
-                p[synapse.P_DELAY] = delay_samples(e["delay_ms"], dt_ms)
-            else:
-                p[synapse.P_SOURCE] = synapse.SRC_NEURON
-                p[synapse.P_SOURCE_ROW] = names.index(src)
-            state[r, synapse.S_LAST_MS] = -math.inf
-            state[r, synapse.S_U] = e["u_se"]
-            state[r, synapse.S_R] = 1.0
-        elif k == "noise":
-            state[r, 0] = e["g_mean_nS"]  # the OU process starts at its mean
-        elif k == "neuron":
-            p[neuron.P_MODEL] = neuron.MODEL_CODES[e["model"]]
-            state[r, neuron.S_V] = e["rest_mV"]
-            state[r, neuron.S_LAST_SPIKE] = -math.inf
-        elif k == "current":
-            p[current.P_WAVEFORM] = current.WAVEFORM_CODES[e["waveform"]]
+        spec.fill_row(params[r], state[r], e, ctx)
     loop = exp.loop
     loop_p = np.zeros(step_mod.N_LOOP_PARAMS)
-    loop_p[step_mod.LP_DT_MS] = dt_ms
+    loop_p[step_mod.LP_DT_MS] = exp.dt_ms
     loop_p[step_mod.LP_MAX_CURRENT_PA] = loop["max_current_pA"]
     loop_p[step_mod.LP_SPIKE_THRESHOLD_MV] = loop["spike_threshold_mV"]
     loop_p[step_mod.LP_SPIKE_HYSTERESIS_MV] = loop["spike_hysteresis_mV"]
     loop_p[step_mod.LP_V_FAULT_MV] = loop["v_fault_mV"]
     loop_p[step_mod.LP_MG_MM] = blocked_group_mg_mM(exp)
-    longest = max((int(params[r, synapse.P_DELAY]) for r in range(n)), default=0)
+    synapses = [r for r, e in enumerate(exp.elements) if e["kind"] == "synapse"]
+    longest = max((int(params[r, P_DELAY]) for r in synapses), default=0)
     ring = 1 << (longest + 1).bit_length()  # a power of two above the longest delay
     loop_p[step_mod.LP_SPIKE_RING] = ring
     loop_s = np.zeros(step_mod.N_LOOP_STATE + ring)
@@ -216,7 +204,7 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
         params=params,
         state=state,
         rng=rng,
-        trains=np.asarray(trains, dtype=np.float64),
+        trains=np.asarray(ctx.trains, dtype=np.float64),
         g_out=np.zeros(n),
         i_out=np.zeros(n),
         loop_p=loop_p,

@@ -11,53 +11,101 @@ element passes ``offset_pA`` plus:
 - ``coloured``: Ornstein–Uhlenbeck, SD amplitude_pA, correlation time tau_ms
   (exact update, Gillespie 1996)
 
-Public names: ``COLUMNS``, ``WAVEFORM_CODES``, ``current_waveform``.
+Public names: ``SPEC``, ``WAVEFORM_CODES``, ``current_waveform``.
 """
 
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 
 from clampcore.elements.decay import decay_factor
 from clampcore.elements.noise import ou_exact_step
+from clampcore.elements.spec import ElementSpec, Problem
+from clampcore.fields import Field, only
 from clampcore.jit import kernel
 from clampcore.rng import normal_cached
 
-WF_STEP, WF_TRAIN, WF_RAMP, WF_SINE, WF_WHITE, WF_COLOURED = 0, 1, 2, 3, 4, 5
-WAVEFORM_CODES = {
-    "step": WF_STEP,
-    "train": WF_TRAIN,
-    "ramp": WF_RAMP,
-    "sine": WF_SINE,
-    "white": WF_WHITE,
-    "coloured": WF_COLOURED,
-}
+FIELDS = (
+    Field(
+        "waveform",
+        "step",
+        "choice",
+        live=False,
+        choices=("step", "train", "ramp", "sine", "white", "coloured"),
+    ),
+    Field("amplitude_pA", 0.0, doc="step/train/sine: amplitude; ramp: final value; noise: SD"),
+    Field("offset_pA", 0.0, doc="added while the waveform is on"),
+    Field("start_ms", 0.0, "nonnegative"),
+    Field("duration_ms", math.inf, "positive", allow_inf=True),
+    Field("period_ms", 100.0, "positive", doc="train", when=only("waveform", "train")),
+    Field("pulse_ms", 10.0, "positive", doc="train", when=only("waveform", "train")),
+    Field("frequency_hz", 10.0, "positive", doc="sine", when=only("waveform", "sine")),
+    Field(
+        "tau_ms",
+        5.0,
+        "positive",
+        doc="coloured noise correlation time",
+        when=only("waveform", "coloured"),
+    ),
+    Field("seed", 0, "int", live=False, when=only("waveform", "white", "coloured")),
+)
 
-P_WAVEFORM = 2
-P_AMPLITUDE = 3
-P_OFFSET = 4
-P_START = 5
-P_DURATION = 6
-P_PERIOD = 7
-P_PULSE = 8
-P_FREQUENCY = 9
-P_TAU = 10
-COLUMNS = {
-    "amplitude_pA": P_AMPLITUDE,
-    "offset_pA": P_OFFSET,
-    "start_ms": P_START,
-    "duration_ms": P_DURATION,
-    "period_ms": P_PERIOD,
-    "pulse_ms": P_PULSE,
-    "frequency_hz": P_FREQUENCY,
-    "tau_ms": P_TAU,
-}
 
-S_OU = 0  # coloured noise state, pA
-S_DECAY = 1  # cached decay (tau, factor): columns 1, 2
-S_SPARE = 3  # Box–Muller spare deviate and its flag: columns 3, 4
+def _check(el: dict[str, Any], dt_ms: float) -> Problem:
+    if el["waveform"] == "ramp" and math.isinf(el["duration_ms"]):
+        # Refused rather than warned: its slope is amplitude_pA / duration_ms, so with the
+        # default (infinite) duration it would hold offset_pA for the whole run, never ramping.
+        return (
+            "duration_ms",
+            "a ramp needs a finite duration_ms (it rises by amplitude_pA over that time)",
+        )
+    if el["waveform"] == "train" and el["pulse_ms"] > el["period_ms"]:
+        return "pulse_ms", "must not exceed period_ms"
+    return None
+
+
+SPEC = ElementSpec(
+    "current",
+    code=5,
+    fields=FIELDS,
+    params=(
+        "waveform",
+        "amplitude_pA",
+        "offset_pA",
+        "start_ms",
+        "duration_ms",
+        "period_ms",
+        "pulse_ms",
+        "frequency_hz",
+        "tau_ms",
+    ),
+    # ou_pA: coloured noise; decay_*: the cached decay (clampcore.elements.decay);
+    # spare*: the Box–Muller spare deviate and its flag (clampcore.rng.normal_cached).
+    state=("ou_pA", "decay_tau_ms", "decay_factor", "spare", "spare_ready"),
+    check=_check,
+    describe=lambda el: f" {el['waveform']}",
+)
+WAVEFORM_CODES = SPEC.codes("waveform")
+WF_STEP, WF_TRAIN, WF_RAMP, WF_SINE, WF_WHITE, WF_COLOURED = (
+    WAVEFORM_CODES[w] for w in ("step", "train", "ramp", "sine", "white", "coloured")
+)
+
+P_WAVEFORM = SPEC.param("waveform")
+P_AMPLITUDE = SPEC.param("amplitude_pA")
+P_OFFSET = SPEC.param("offset_pA")
+P_START = SPEC.param("start_ms")
+P_DURATION = SPEC.param("duration_ms")
+P_PERIOD = SPEC.param("period_ms")
+P_PULSE = SPEC.param("pulse_ms")
+P_FREQUENCY = SPEC.param("frequency_hz")
+P_TAU = SPEC.param("tau_ms")
+
+S_OU = SPEC.state_col("ou_pA")
+S_DECAY = SPEC.state_col("decay_tau_ms")
+S_SPARE = SPEC.state_col("spare")
 
 
 @kernel

@@ -1,18 +1,32 @@
 """``leak``: a fixed virtual conductance, I = -g (V - E).
 
 A negative ``g_nS`` cancels part of the cell's own leak (raises its input
-resistance). Public names: ``COLUMNS``, ``leak_current``.
+resistance). Public names: ``SPEC``, ``leak_current``.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from clampcore.elements.spec import ElementSpec
+from clampcore.fields import Field
 from clampcore.jit import kernel
 
-P_G = 2
-P_E = 3
-COLUMNS = {"g_nS": P_G, "e_mV": P_E}
+FIELDS = (
+    Field("g_nS", 0.0, "real", doc="may be negative to cancel part of the cell's own leak"),
+    Field("e_mV", -70.0, doc="reversal potential"),
+)
+
+SPEC = ElementSpec(
+    "leak",
+    code=0,
+    fields=FIELDS,
+    params=("g_nS", "e_mV"),
+    conductance=True,
+    feedback_nS=lambda el: (el["g_nS"], el["g_nS"]),
+)
+P_G = SPEC.param("g_nS")
+P_E = SPEC.param("e_mV")
 
 
 @kernel

@@ -18,57 +18,120 @@ the start of the sample) plus ``bias_pA``. Refractoriness: for
 N = round(refractory_ms / dt) samples from the spike's sample (the spike's own
 sample included) V stays at reset and no spike is possible; w keeps evolving.
 
-Public names: ``COLUMNS``, ``MODEL_CODES``, ``neuron_step``, ``S_V``,
+Public names: ``SPEC``, ``MODEL_CODES``, ``neuron_step``, ``S_V``,
 ``S_SPIKED``, ``S_ISYN``, ``S_COUNT``.
 """
 
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 
 from clampcore.elements.decay import decay_factor
+from clampcore.elements.spec import ElementSpec, Problem, RowContext, refractory_problem
+from clampcore.fields import Field, only
 from clampcore.jit import kernel
 
-MODEL_LIF, MODEL_EIF, MODEL_ADEX = 0, 1, 2
-MODEL_CODES = {"lif": MODEL_LIF, "eif": MODEL_EIF, "adex": MODEL_ADEX}
+FIELDS = (
+    Field("model", "lif", "choice", live=False, choices=("lif", "eif", "adex")),
+    # LIF defaults: C 200 pF, gL 10 nS (tau 20 ms), EL -70, threshold -50, reset -70,
+    # refractory 2 ms: a typical cortical cell (common practice).
+    Field("capacitance_pF", 200.0, "positive"),
+    Field("leak_nS", 10.0, "positive"),
+    Field("rest_mV", -70.0),
+    Field("threshold_mV", -50.0, doc="lif: spike threshold; eif/adex: V_T"),
+    Field("reset_mV", -70.0),
+    Field("refractory_ms", 2.0, "positive"),
+    # EIF/AdEx shape: delta_T 2 mV, a 4 nS, b 80.5 pA, tau_w 144 ms (Brette & Gerstner 2005).
+    Field("delta_t_mV", 2.0, "positive", when=only("model", "eif", "adex")),
+    Field(
+        "v_peak_mV",
+        0.0,
+        doc="eif/adex: a spike is cut here",
+        when=only("model", "eif", "adex"),
+    ),
+    Field("a_nS", 4.0, "real", when=only("model", "adex")),
+    Field("b_pA", 80.5, "real", when=only("model", "adex")),
+    Field("tau_w_ms", 144.0, "positive", when=only("model", "adex")),
+    Field("bias_pA", 0.0, doc="constant current into the virtual neuron"),
+)
 
-P_MODEL = 2
-P_C = 3
-P_GL = 4
-P_EL = 5
-P_VT = 6
-P_RESET = 7
-P_REFRACTORY = 8
-P_DELTA_T = 9
-P_V_PEAK = 10
-P_A = 11
-P_B = 12
-P_TAU_W = 13
-P_BIAS = 14
-COLUMNS = {
-    "capacitance_pF": P_C,
-    "leak_nS": P_GL,
-    "rest_mV": P_EL,
-    "threshold_mV": P_VT,
-    "reset_mV": P_RESET,
-    "refractory_ms": P_REFRACTORY,
-    "delta_t_mV": P_DELTA_T,
-    "v_peak_mV": P_V_PEAK,
-    "a_nS": P_A,
-    "b_pA": P_B,
-    "tau_w_ms": P_TAU_W,
-    "bias_pA": P_BIAS,
-}
 
-S_V = 0
-S_W = 1
-S_LAST_SPIKE = 2  # sample index of the last spike (-inf before the first)
-S_ISYN = 3  # synaptic current gathered during this sample, pA
-S_SPIKED = 4  # 1.0 when the neuron spiked at this sample
-S_COUNT = 5
-S_DECAY = 6  # cached LIF decay (tau, factor): columns 6, 7
+def _check(el: dict[str, Any], dt_ms: float) -> Problem:
+    problem = refractory_problem(el, dt_ms)
+    if problem is not None:
+        return problem
+    if not el["reset_mV"] < el["threshold_mV"]:
+        return "reset_mV", "must be below threshold_mV"
+    if el["model"] != "lif" and not el["v_peak_mV"] > el["threshold_mV"]:
+        return "v_peak_mV", "must be above threshold_mV"
+    return None
+
+
+def _init(p: np.ndarray, s: np.ndarray, el: dict[str, Any], ctx: RowContext) -> None:
+    s[S_V] = el["rest_mV"]
+    s[S_LAST_SPIKE] = -math.inf
+
+
+SPEC = ElementSpec(
+    "neuron",
+    code=4,
+    fields=FIELDS,
+    params=(
+        "model",
+        "capacitance_pF",
+        "leak_nS",
+        "rest_mV",
+        "threshold_mV",
+        "reset_mV",
+        "refractory_ms",
+        "delta_t_mV",
+        "v_peak_mV",
+        "a_nS",
+        "b_pA",
+        "tau_w_ms",
+        "bias_pA",
+    ),
+    state=(
+        "v_mV",
+        "w_pA",
+        "last_spike_sample",  # sample index of the last spike (-inf before the first)
+        "isyn_pA",  # synaptic current gathered during this sample
+        "spiked",  # 1.0 when the neuron spiked at this sample
+        "count",
+        "decay_tau_ms",  # cached LIF decay (tau, factor), clampcore.elements.decay
+        "decay_factor",
+    ),
+    init=_init,
+    check=_check,
+    describe=lambda el: f" {el['model']}",
+)
+MODEL_CODES = SPEC.codes("model")
+MODEL_LIF, MODEL_EIF, MODEL_ADEX = (MODEL_CODES[m] for m in ("lif", "eif", "adex"))
+
+P_MODEL = SPEC.param("model")
+P_C = SPEC.param("capacitance_pF")
+P_GL = SPEC.param("leak_nS")
+P_EL = SPEC.param("rest_mV")
+P_VT = SPEC.param("threshold_mV")
+P_RESET = SPEC.param("reset_mV")
+P_REFRACTORY = SPEC.param("refractory_ms")
+P_DELTA_T = SPEC.param("delta_t_mV")
+P_V_PEAK = SPEC.param("v_peak_mV")
+P_A = SPEC.param("a_nS")
+P_B = SPEC.param("b_pA")
+P_TAU_W = SPEC.param("tau_w_ms")
+P_BIAS = SPEC.param("bias_pA")
+
+S_V = SPEC.state_col("v_mV")
+S_W = SPEC.state_col("w_pA")
+S_LAST_SPIKE = SPEC.state_col("last_spike_sample")
+S_ISYN = SPEC.state_col("isyn_pA")
+S_SPIKED = SPEC.state_col("spiked")
+S_COUNT = SPEC.state_col("count")
+S_DECAY = SPEC.state_col("decay_tau_ms")
 
 
 @kernel

@@ -28,63 +28,187 @@ to it), ``cell`` (the recorded cell's detected spikes, ``delay_ms`` later: the s
 sample by default) and a
 virtual neuron (its spike of the previous sample).
 
-Public names: ``COLUMNS``, the ``SRC_*`` and ``KIN_*`` codes, ``synapse_events``,
+Public names: ``SPEC``, ``delay_samples``, the ``SRC_*`` and ``KIN_*`` codes, ``synapse_events``,
 ``synapse_conductance``, ``mg_block``, ``dual_exp_peak_factor``, ``poisson_count``.
 """
 
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 
 from clampcore.elements.decay import decay_factor
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.elements.spec import P_TARGET, ElementSpec, Problem, RowContext
+from clampcore.fields import Field, only
 from clampcore.jit import kernel
 from clampcore.rng import normal, uniform
 
-KIN_EXP, KIN_ALPHA, KIN_DUAL = 0, 1, 2
-KINETICS_CODES = {"exp": KIN_EXP, "alpha": KIN_ALPHA, "dual_exp": KIN_DUAL}
+FIELDS = (
+    Field("kinetics", "exp", "choice", live=False, choices=("exp", "alpha", "dual_exp")),
+    Field("g_max_nS", 1.0, "nonnegative", doc="peak conductance of one event"),
+    Field("e_mV", 0.0, doc="0 mV: glutamatergic; -70 to -80 mV: GABA-A (common practice)"),
+    Field(
+        "tau_decay_ms",
+        5.0,
+        "positive",
+        doc="exp and dual_exp kinetics",
+        when=only("kinetics", "exp", "dual_exp"),
+    ),
+    Field(
+        "tau_rise_ms",
+        0.5,
+        "positive",
+        doc="dual_exp kinetics",
+        when=only("kinetics", "dual_exp"),
+    ),
+    Field(
+        "tau_ms",
+        2.0,
+        "positive",
+        doc="alpha kinetics: time to peak",
+        when=only("kinetics", "alpha"),
+    ),
+    Field("mg_mM", 0.0, "nonnegative", doc="NMDA-type Mg2+ block (Jahr & Stevens 1990); 0 = none"),
+    Field("u_se", 0.5, "fraction", doc="Tsodyks-Markram release fraction"),
+    Field("tau_rec_ms", 0.0, "nonnegative", doc="depression recovery; 0 = no depression"),
+    Field("tau_facil_ms", 0.0, "nonnegative", doc="facilitation decay; 0 = no facilitation"),
+    Field("source", "poisson", "ref", live=False, doc="poisson | train | cell | <neuron name>"),
+    Field(
+        "delay_ms",
+        0.0,
+        "nonnegative",
+        live=False,
+        doc="cell source: synaptic delay, rounded to whole samples; 0 = the same sample "
+        "(current mode only: a board-evaluated law needs at least the look-ahead + 1 sample)",
+        when=only("source", "cell"),
+    ),
+    Field("rate_hz", 10.0, "positive", doc="poisson source", when=only("source", "poisson")),
+    Field("times_ms", [], "times", live=False, doc="train source", when=only("source", "train")),
+    Field("seed", 0, "int", live=False, when=only("source", "poisson")),
+    Field("target", "cell", "ref", live=False, doc="cell | <neuron name>"),
+)
+
 SRC_POISSON, SRC_TRAIN, SRC_CELL, SRC_NEURON = 0, 1, 2, 3
+_SOURCE_CODES = {"poisson": SRC_POISSON, "train": SRC_TRAIN, "cell": SRC_CELL}
 
-P_KINETICS = 2
-P_G_MAX = 3
-P_E = 4
-P_TAU_DECAY = 5
-P_TAU_RISE = 6
-P_TAU_ALPHA = 7
-P_MG = 8
-P_U = 9
-P_TAU_REC = 10
-P_TAU_FACIL = 11
-P_SOURCE = 12  # SRC_* code
-P_SOURCE_ROW = 13  # row of the presynaptic neuron element
-P_RATE = 14
-P_TRAIN_START = 15  # first index of this synapse's times in the program's trains array
-P_TRAIN_COUNT = 16
-P_DELAY = 17  # cell source: synaptic delay in whole samples (from delay_ms)
-COLUMNS = {
-    "g_max_nS": P_G_MAX,
-    "e_mV": P_E,
-    "tau_decay_ms": P_TAU_DECAY,
-    "tau_rise_ms": P_TAU_RISE,
-    "tau_ms": P_TAU_ALPHA,
-    "mg_mM": P_MG,
-    "u_se": P_U,
-    "tau_rec_ms": P_TAU_REC,
-    "tau_facil_ms": P_TAU_FACIL,
-    "rate_hz": P_RATE,
-}
 
-S_A = 0  # exp: g; alpha: g; dual_exp: decaying part
-S_B = 1  # alpha: x; dual_exp: rising part
-S_U = 2  # STP: u of the last event
-S_R = 3  # STP: R of the last event
-S_LAST_MS = 4  # time of the last event (-inf before the first)
-S_TRAIN_POS = 5  # next index into the train
-S_EVENTS = 6  # events counted
-S_DECAY_A = 7  # cached decay of the first kinetic variable (tau, factor): columns 7, 8
-S_DECAY_B = 9  # cached decay of the rising part (dual_exp): columns 9, 10
+def delay_samples(delay_ms: float, dt_ms: float) -> int:
+    """A synaptic delay in whole samples (nearest; 1e-9 absorbs rounding of exact halves)."""
+    return math.floor(delay_ms / dt_ms + 0.5 + 1e-9)
+
+
+def _check(el: dict[str, Any], dt_ms: float) -> Problem:
+    if el["kinetics"] == "dual_exp" and not el["tau_rise_ms"] < el["tau_decay_ms"]:
+        return "tau_rise_ms", "must be shorter than tau_decay_ms"
+    if el["source"] == "train" and not el["times_ms"]:
+        return "times_ms", "a train source needs times"
+    return None
+
+
+def _check_refs(el: dict[str, Any], neurons: set[str]) -> Problem:
+    if el["source"] not in _SOURCE_CODES and el["source"] not in neurons:
+        return "source", "must be poisson, train, cell or the name of a neuron element"
+    if el["target"] != "cell" and el["target"] not in neurons:
+        return "target", "must be cell or the name of a neuron"
+    return None
+
+
+def _init(p: np.ndarray, s: np.ndarray, el: dict[str, Any], ctx: RowContext) -> None:
+    if el["target"] != "cell":
+        p[P_TARGET] = ctx.names.index(el["target"])
+    src = el["source"]
+    p[P_SOURCE] = _SOURCE_CODES.get(src, SRC_NEURON)
+    if src == "train":
+        p[P_TRAIN_START] = len(ctx.trains)
+        p[P_TRAIN_COUNT] = len(el["times_ms"])
+        ctx.trains.extend(el["times_ms"])
+    elif src == "cell":
+        p[P_DELAY] = delay_samples(el["delay_ms"], ctx.dt_ms)
+    elif src != "poisson":
+        p[P_SOURCE_ROW] = ctx.names.index(src)
+    s[S_LAST_MS] = -math.inf
+    s[S_U] = el["u_se"]
+    s[S_R] = 1.0
+
+
+def _describe(el: dict[str, Any]) -> str:
+    return f" {el['kinetics']}, from {el['source']} onto {el['target']}"
+
+
+SPEC = ElementSpec(
+    "synapse",
+    code=2,
+    fields=FIELDS,
+    params=(
+        "kinetics",
+        "g_max_nS",
+        "e_mV",
+        "tau_decay_ms",
+        "tau_rise_ms",
+        "tau_ms",
+        "mg_mM",
+        "u_se",
+        "tau_rec_ms",
+        "tau_facil_ms",
+        "source_code",  # SRC_* code
+        "source_row",  # row of the presynaptic neuron element
+        "rate_hz",
+        "train_start",  # first index of this synapse's times in the program's trains array
+        "train_count",
+        "delay_samples",  # cell source: synaptic delay in whole samples (from delay_ms)
+    ),
+    state=(
+        "g_a_nS",  # exp: g; alpha: g; dual_exp: decaying part
+        "g_b",  # alpha: x; dual_exp: rising part
+        "u",  # STP: u of the last event
+        "r",  # STP: R of the last event
+        "last_event_ms",  # time of the last event (-inf before the first)
+        "train_pos",  # next index into the train
+        "events",  # events counted
+        "decay_a_tau_ms",  # cached decay of the first kinetic variable (tau, factor)
+        "decay_a_factor",
+        "decay_b_tau_ms",  # cached decay of the rising part (dual_exp)
+        "decay_b_factor",
+    ),
+    conductance=True,
+    init=_init,
+    check=_check,
+    check_refs=_check_refs,
+    describe=_describe,
+    feedback_nS=lambda el: (0.0, el["g_max_nS"]) if el["target"] == "cell" else None,
+)
+KINETICS_CODES = SPEC.codes("kinetics")
+KIN_EXP, KIN_ALPHA, KIN_DUAL = (KINETICS_CODES[k] for k in ("exp", "alpha", "dual_exp"))
+
+P_KINETICS = SPEC.param("kinetics")
+P_G_MAX = SPEC.param("g_max_nS")
+P_E = SPEC.param("e_mV")
+P_TAU_DECAY = SPEC.param("tau_decay_ms")
+P_TAU_RISE = SPEC.param("tau_rise_ms")
+P_TAU_ALPHA = SPEC.param("tau_ms")
+P_MG = SPEC.param("mg_mM")
+P_U = SPEC.param("u_se")
+P_TAU_REC = SPEC.param("tau_rec_ms")
+P_TAU_FACIL = SPEC.param("tau_facil_ms")
+P_SOURCE = SPEC.param("source_code")
+P_SOURCE_ROW = SPEC.param("source_row")
+P_RATE = SPEC.param("rate_hz")
+P_TRAIN_START = SPEC.param("train_start")
+P_TRAIN_COUNT = SPEC.param("train_count")
+P_DELAY = SPEC.param("delay_samples")
+
+S_A = SPEC.state_col("g_a_nS")
+S_B = SPEC.state_col("g_b")
+S_U = SPEC.state_col("u")
+S_R = SPEC.state_col("r")
+S_LAST_MS = SPEC.state_col("last_event_ms")
+S_TRAIN_POS = SPEC.state_col("train_pos")
+S_EVENTS = SPEC.state_col("events")
+S_DECAY_A = SPEC.state_col("decay_a_tau_ms")
+S_DECAY_B = SPEC.state_col("decay_b_tau_ms")
 
 # A decayed conductance below this is set to 0: left alone it would sink into subnormal
 # floats after ~700 time constants, whose arithmetic is ~100x slower on x86 (measured here:

@@ -8,31 +8,58 @@ level, not on an upward crossing): a membrane the clamp could not bring below
 threshold in time (a late command, a current limit) fires and is clamped again
 at the end of the refractory period instead of staying stranded above threshold.
 
-Public names: ``COLUMNS``, ``threshold_reset_step``, ``S_COUNT``, ``S_SPIKED``.
+Public names: ``SPEC``, ``threshold_reset_step``, ``S_COUNT``, ``S_SPIKED``.
 """
 
 from __future__ import annotations
 
 import math
+from typing import Any
 
 import numpy as np
 
+from clampcore.elements.spec import ElementSpec, Problem, refractory_problem
+from clampcore.fields import Field
 from clampcore.jit import kernel
 
-P_THRESHOLD = 2
-P_RESET = 3
-P_REFRACTORY = 4
-P_G = 5
-COLUMNS = {
-    "threshold_mV": P_THRESHOLD,
-    "reset_mV": P_RESET,
-    "refractory_ms": P_REFRACTORY,
-    "g_nS": P_G,
-}
+FIELDS = (
+    Field("threshold_mV", -50.0),
+    Field("reset_mV", -65.0),
+    # 1-2 ms: typical absolute refractory period of neurons (common practice).
+    Field("refractory_ms", 2.0, "positive"),
+    # Clamp conductance: large against a whole-cell leak of 2-20 nS (common practice), so
+    # V reaches reset within about C/g (2 ms for 100 pF and 50 nS).
+    Field("g_nS", 50.0, "positive"),
+)
 
-S_REMAIN = 0  # samples of clamp still to apply
-S_COUNT = 1  # spikes counted
-S_SPIKED = 2  # 1.0 when this sample fired
+
+def _check(el: dict[str, Any], dt_ms: float) -> Problem:
+    problem = refractory_problem(el, dt_ms)
+    if problem is None and not el["reset_mV"] < el["threshold_mV"]:
+        return "reset_mV", "must be below threshold_mV"
+    return problem
+
+
+SPEC = ElementSpec(
+    "threshold_reset",
+    code=1,
+    fields=FIELDS,
+    params=("threshold_mV", "reset_mV", "refractory_ms", "g_nS"),
+    # remain: samples of clamp still to apply; count: spikes counted; spiked: 1.0 when
+    # this sample fired.
+    state=("remain_samples", "count", "spiked"),
+    conductance=True,
+    check=_check,
+    feedback_nS=lambda el: (0.0, el["g_nS"]),
+)
+P_THRESHOLD = SPEC.param("threshold_mV")
+P_RESET = SPEC.param("reset_mV")
+P_REFRACTORY = SPEC.param("refractory_ms")
+P_G = SPEC.param("g_nS")
+
+S_REMAIN = SPEC.state_col("remain_samples")
+S_COUNT = SPEC.state_col("count")
+S_SPIKED = SPEC.state_col("spiked")
 
 
 @kernel
