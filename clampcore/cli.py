@@ -36,6 +36,7 @@ from typing import Any, NoReturn
 import numpy as np
 
 from clampcore import stability
+from clampcore.elements import SPECS
 from clampcore.experiment import (
     Experiment,
     ExperimentError,
@@ -142,11 +143,8 @@ def _check(args: argparse.Namespace) -> int:
     )
     for el in exp.elements:
         state = "" if el["enabled"] else " (disabled)"
-        extra = ""
-        if el["kind"] == "synapse":
-            extra = f" {el['kinetics']}, from {el['source']} onto {el['target']}"
-        elif el["kind"] in ("neuron", "current"):
-            extra = f" {el.get('model') or el.get('waveform')}"
+        describe = SPECS[el["kind"]].describe
+        extra = describe(el) if describe else ""
         print(f"  {el['kind']:<16} {el['name']}{extra}{state}")
     report = stability.from_args(args, exp, args.port)
     print("\n".join(report.lines()))

@@ -49,7 +49,6 @@ from clampcore.calibration import (
     current_range_pA,
     pA_to_counts,
 )
-from clampcore.elements import KIND_NEURON
 from clampcore.experiment import Experiment, ExperimentError, load_experiment
 from clampcore.health import loop_health
 from clampcore.hostloop import (
@@ -207,10 +206,6 @@ def _check_outputs(nwb_path: Path, journal_path: Path, force: bool) -> None:
         shutil.rmtree(journal_path)  # a finished run's journal; its NWB is replaced too
 
 
-def _neuron_rows(program: Program) -> np.ndarray:
-    return np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], dtype=np.int64)
-
-
 def _die_with_parent() -> None:
     """Linux: end this process if the one that started it dies (the board's watchdog then
     takes the output to 0 pA), so no loop is ever left running without its recorder."""
@@ -265,7 +260,7 @@ def _loop_process(
         )
         link.configure(rate, watchdog_us, zero)
         arrays = new_link(zero)
-        loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
+        loop_args = (conv, *program.arrays(), program.spike_rows(), shared.ctrl, shared.ring)
         loop_args += (shared.mailbox, shared.applied, shared.stats)
         law = None
         report["mode"] = CURRENT_MODE
@@ -358,7 +353,7 @@ def _law_setup(
     bf, bi, _bs, _law, table = board_arrays(program, conv, LAW_MODE, lifetime)
     if not link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else []):
         return None
-    neurons = _neuron_rows(program)
+    neurons = program.spike_rows()
     arrays = new_law_link(lead, table.size > 0, len(program.names), neurons.size)
     args = (conv, law_scale(conv), *loop_args[1:])
     a = arrays

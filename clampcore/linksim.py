@@ -40,7 +40,7 @@ from clampcore.calibration import (
     counts_to_pA,
     mV_to_counts,
 )
-from clampcore.elements import KIND_NEURON, KIND_SYNAPSE
+from clampcore.elements import KIND_SYNAPSE
 from clampcore.elements import synapse as _syn
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.jit import kernel
@@ -307,7 +307,7 @@ def run(
         "i_el": np.zeros((n, n_el)),
     }
     counters = np.zeros(2, np.int64)
-    neuron_rows = np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], np.int64)
+    neuron_rows = program.spike_rows()
     out["nspk"] = np.zeros((n, neuron_rows.size), dtype=np.bool_)
     link_loop(
         law_mode,

@@ -28,7 +28,7 @@ from clampcore.calibration import (
     mV_to_counts,
     pA_to_counts,
 )
-from clampcore.elements import KIND_NEURON
+from clampcore.elements import CONDUCTANCE_KINDS
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.experiment import Experiment
 from clampcore.jit import kernel
@@ -44,9 +44,6 @@ from clampcore.step import (
     step,
 )
 from simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
-
-# Elements whose conductance is recorded (a current waveform has none).
-_CONDUCTANCE_KINDS = ("leak", "threshold_reset", "synapse", "noise")
 
 
 @kernel
@@ -186,10 +183,6 @@ class Recording:
         return path if path.suffix == ".npz" else path.with_suffix(path.suffix + ".npz")
 
 
-def _spike_rows(program: Program) -> np.ndarray:
-    return np.array([r for r, k in enumerate(program.kind) if k == KIND_NEURON], dtype=np.int64)
-
-
 def simulate(
     experiment: Any,
     duration_s: float,
@@ -221,7 +214,7 @@ def simulate(
     if problem:  # the live engine's rule (clampcore.calibration)
         raise ValueError(f"refusing to simulate: {problem}")
     n_el = len(program.names)
-    rows = _spike_rows(program)
+    rows = program.spike_rows()
     delay = 1 + int(exp.loop["extra_delay_samples"])
     out_v = np.zeros(n_samples)
     out_i = np.zeros(n_samples)
@@ -281,7 +274,7 @@ def recording_from_arrays(
 ) -> Recording:
     """Name the columns of a run's arrays (shared by simulation and the serial loop)."""
     names, kinds = program.names, program.kinds
-    spike_names = ["cell", *[names[r] for r in _spike_rows(program)]]
+    spike_names = program.spike_sources()
     return Recording(
         rate_hz=float(program.experiment.loop["rate_hz"]),
         v_mV=v_mV,
@@ -289,7 +282,7 @@ def recording_from_arrays(
         g_nS={
             n: g[:, r]
             for r, (n, k) in enumerate(zip(names, kinds, strict=True))
-            if k in _CONDUCTANCE_KINDS
+            if k in CONDUCTANCE_KINDS
         },
         i_element_pA={
             n: i_el[:, r]

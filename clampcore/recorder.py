@@ -194,7 +194,7 @@ class Recorder:
         self._thread = threading.Thread(target=self._run, name="clampcore-recorder", daemon=True)
         self.lost_rows = 0
         self.final_meta: dict[str, Any] = {}
-        self._slot_names = _slot_names(program)
+        self._slot_names = program.slot_names()
         # Why the recording failed (None while it works): the loop was told 0 pA and stop.
         self.error: str | None = None
         self._bytes_per_s = bytes_per_second(program.experiment)
@@ -338,18 +338,3 @@ class Recorder:
                 "converts it (on a full disk, once there is room)"
             )
             return None
-
-
-def _slot_names(program: Program) -> dict[tuple[str, int, int], tuple[str, str]]:
-    """(array, row, col) -> (element, field) for every live parameter."""
-    from clampcore.elements import COLUMNS, P_ENABLED
-    from clampcore.program import LOOP_COLUMNS
-
-    out: dict[tuple[str, int, int], tuple[str, str]] = {}
-    for r, (name, kind) in enumerate(zip(program.names, program.kinds, strict=True)):
-        out[("params", r, P_ENABLED)] = (name, "enabled")
-        for field, col in COLUMNS[kind].items():
-            out[("params", r, col)] = (name, field)
-    for field, col in LOOP_COLUMNS.items():
-        out[("loop", -1, col)] = ("loop", field)
-    return out

@@ -73,6 +73,7 @@ from typing import Any
 
 import numpy as np
 
+from clampcore.elements import SPECS
 from clampcore.experiment import Experiment, load_experiment
 
 # On the simulated rig and offline the command computed from sample n is in force at
@@ -80,8 +81,6 @@ from clampcore.experiment import Experiment, load_experiment
 DEFAULT_DELAY_SAMPLES = 1
 # Warn above this share of the largest stable conductance (the issue asks for half).
 WARN_FRACTION = 0.5
-# Noise conductance counted as mean + 3 SD (Gaussian: exceeded 0.13% of the time).
-NOISE_SD_COUNTED = 3.0
 _BISECTION_STEPS = 80  # halves the interval (at most 2) to below 1e-23: past float precision
 
 
@@ -177,15 +176,10 @@ def virtual_conductances_nS(exp: Experiment) -> list[tuple[str, str, float, floa
     for el in exp.elements:
         if not el["enabled"]:
             continue
-        kind = el["kind"]
-        if kind == "leak":
-            out.append((el["name"], kind, el["g_nS"], el["g_nS"]))
-        elif kind == "threshold_reset":
-            out.append((el["name"], kind, 0.0, el["g_nS"]))
-        elif kind == "synapse" and el["target"] == "cell":
-            out.append((el["name"], kind, 0.0, el["g_max_nS"]))
-        elif kind == "noise":
-            out.append((el["name"], kind, 0.0, el["g_mean_nS"] + NOISE_SD_COUNTED * el["g_sd_nS"]))
+        feedback = SPECS[el["kind"]].feedback_nS
+        g_range = feedback(el) if feedback else None
+        if g_range is not None:
+            out.append((el["name"], el["kind"], *g_range))
     return out
 
 

@@ -31,13 +31,11 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from clampcore.elements import CONDUCTANCE_KINDS
 from clampcore.experiment import Experiment
 from gui import testpulse
 from gui.events import EVENT_COLOURS, EventScanner, TraceEvent
 from gui.testpulse import input_resistance_MOhm
-
-# Element kinds that have a conductance (a current waveform and a virtual neuron have none).
-CONDUCTANCE_KINDS = ("leak", "threshold_reset", "synapse", "noise")
 
 # Bins per envelope when the plot's width is not known yet: about the pixel width of a
 # plot on a 1920-pixel screen. Once shown, one bin per pixel column of the plot (between

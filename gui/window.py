@@ -118,19 +118,9 @@ def _copy_experiment(exp: Experiment) -> Experiment:
 def _slot_names(engine: Engine) -> dict[tuple[float, int, int], tuple[str, str]]:
     """(mailbox array, row, col) -> (element, field) for every live field of a run."""
     from clampcore.program import MAIL_TARGETS
-    from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, SECTION_FIELDS
 
-    program = engine.program
-    wanted = [("loop", f.name) for f in SECTION_FIELDS["loop"] if f.live]
-    for el in engine.experiment.elements:
-        fields = (*COMMON_FIELDS, *ELEMENT_FIELDS[el["kind"]])
-        wanted += [(el["name"], f.name) for f in fields if f.live]
-    out = {}
-    for element, field in wanted:
-        with contextlib.suppress(KeyError):
-            slot = program.param_slot(element, field)
-            out[(MAIL_TARGETS[slot.array], slot.row, slot.col)] = (element, field)
-    return out
+    slots = engine.program.slot_names()
+    return {(MAIL_TARGETS[array], row, col): name for (array, row, col), name in slots.items()}
 
 
 class TuningWindow(QtWidgets.QMainWindow):

@@ -439,9 +439,9 @@ MUTANTS: tuple[Mutant, ...] = (
     Mutant(
         "refractory-default",
         "default neuron refractory period 20 ms",
-        "clampcore/schema.py",
-        '        _f("refractory_ms", 2.0, "positive"),\n        # EIF/AdEx shape',
-        '        _f("refractory_ms", 20.0, "positive"),\n        # EIF/AdEx shape',
+        "clampcore/elements/neuron.py",
+        '    Field("refractory_ms", 2.0, "positive"),\n    # EIF/AdEx shape',
+        '    Field("refractory_ms", 20.0, "positive"),\n    # EIF/AdEx shape',
         ("tests/test_defaults.py",),
     ),
     Mutant(
