@@ -5,7 +5,9 @@ Every element is one row of a program's ``params`` and ``state`` arrays. Columns
 (``clampcore.elements.spec.ElementSpec``) names its own columns after them, and its
 module turns those names into the ``P_*``/``S_*`` constants its kernels use.
 
-``SPECS`` holds every registered kind by name, in the order the loader lists them;
+Every module of this package that defines a ``SPEC`` is registered when the package is
+imported, in the order of the kinds' codes. ``SPECS`` holds every registered kind by
+name, in the order the loader lists them;
 ``KINDS`` and ``CONDUCTANCE_KINDS`` are views of it, read each time they are used, so
 a kind registered later (``register``) appears everywhere at once.
 
@@ -16,6 +18,8 @@ Public names: ``SPECS``, ``register``, ``unregister``, ``KINDS``, ``CONDUCTANCE_
 
 from __future__ import annotations
 
+import importlib
+import pkgutil
 from collections.abc import Callable, Iterator, Sequence
 from typing import overload
 
@@ -93,14 +97,25 @@ class KindNames(Sequence[str]):
         return f"KindNames({self._names()!r})"
 
 
-for _module in (leak, threshold_reset, synapse, noise, neuron, current):
-    register(_module.SPEC)
+def _discover() -> list[ElementSpec]:
+    """The ``SPEC`` of every module of this package that has one, in the order of the codes."""
+    specs = []
+    for info in pkgutil.iter_modules(__path__):
+        spec = getattr(importlib.import_module(f"{__name__}.{info.name}"), "SPEC", None)
+        if isinstance(spec, ElementSpec):
+            specs.append(spec)
+    return sorted(specs, key=lambda spec: spec.code)
+
+
+for _spec in _discover():
+    register(_spec)
 
 KINDS = KindNames()
 # Kinds with a conductance (recorded as g_nS/<name>; a current waveform and a neuron have none).
 CONDUCTANCE_KINDS = KindNames(lambda spec: spec.conductance)
 
-# The codes step.py dispatches on (compile-time constants of its kernels).
+# The codes step.py dispatches on (compile-time constants of its kernels); a new kind's
+# module defines its own (``KIND_<KIND> = SPEC.code``) for step.py to import.
 KIND_LEAK = leak.SPEC.code
 KIND_THRESHOLD_RESET = threshold_reset.SPEC.code
 KIND_SYNAPSE = synapse.SPEC.code
