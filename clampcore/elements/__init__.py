@@ -7,9 +7,9 @@ module turns those names into the ``P_*``/``S_*`` constants its kernels use.
 
 Every module of this package that defines a ``SPEC`` is registered when the package is
 imported, in the order of the kinds' codes. ``SPECS`` holds every registered kind by
-name, in the order the loader lists them;
-``KINDS`` and ``CONDUCTANCE_KINDS`` are views of it, read each time they are used, so
-a kind registered later (``register``) appears everywhere at once.
+name, in the order the loader lists them; ``KINDS`` and ``CONDUCTANCE_KINDS`` are views
+of it, read each time they are used, so a kind registered later (``register``) appears
+everywhere at once.
 
 Public names: ``SPECS``, ``register``, ``unregister``, ``KINDS``, ``CONDUCTANCE_KINDS``,
 ``KindNames``, the ``KIND_*`` codes, ``P_ENABLED``, ``P_TARGET``, ``N_PARAMS``,
