@@ -97,18 +97,21 @@ def closed_loop(
         v_mV = cell_measure_mV(cell_kind, cell_p, cell_s, cell_rng, applied_pA)
         if quantise:
             v_mV = adc_round_trip_mV(conv, rt.coef, rt.adc_mV, v_mV)
-        i_pA = step(v_mV, n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+        # step writes every element's g and i of this sample straight into the recording.
+        i_pA = step(
+            v_mV, n, kind, params, state, rng, trains, out_g[n], out_i_el[n], loop_p, loop_s
+        )
         commands_pA[slot] = dac_round_trip_pA(conv, rt.coef, rt.dac_pA, i_pA) if quantise else i_pA
         slot = slot + 1 if slot + 1 < delay_samples else 0
         out_v[n] = v_mV
         out_i[n] = i_pA
-        for r in range(g_out.shape[0]):
-            out_g[n, r] = g_out[r]
-            out_i_el[n, r] = i_out[r]
         out_spikes[n, 0] = loop_s[LS_CELL_SPIKED] != 0.0
         for j in range(spike_rows.shape[0]):
             out_spikes[n, j + 1] = state[spike_rows[j], NEURON_S_SPIKED] != 0.0
         out_flags[n] = int(loop_s[LS_FLAGS])
+    for r in range(g_out.shape[0] if n_samples > 0 else 0):  # the last sample, as after a run
+        g_out[r] = out_g[n_samples - 1, r]
+        i_out[r] = out_i_el[n_samples - 1, r]
 
 
 @dataclass
@@ -225,13 +228,12 @@ def simulate(
     n_el = len(program.names)
     rows = _spike_rows(program)
     delay = 1 + int(exp.loop["extra_delay_samples"])
-    # Every float column in one block, column after column: one large allocation (which
-    # the system backs with few, large pages) and each recorded column contiguous.
-    block = np.empty((2 + 2 * n_el, n_samples))
-    out_v, out_i = block[0], block[1]
-    out_g = block[2 : 2 + n_el].T
-    out_i_el = block[2 + n_el :].T
-    out_spikes = np.empty((1 + rows.size, n_samples), dtype=np.bool_).T
+    # Every entry is written by the loop (out_g and out_i_el row by row by step itself).
+    out_v = np.empty(n_samples)
+    out_i = np.empty(n_samples)
+    out_g = np.empty((n_samples, n_el))
+    out_i_el = np.empty((n_samples, n_el))
+    out_spikes = np.empty((n_samples, 1 + rows.size), dtype=np.bool_)
     out_flags = np.empty(n_samples, dtype=np.int64)
     closed_loop(
         n_samples,
