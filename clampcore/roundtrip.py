@@ -10,8 +10,9 @@ results, cheaper:
   (PROTOCOL.md §6). Evaluated as one multiply-add, x differs from the exact path's x by a
   few rounding errors of the largest term involved; where ``x + 1/2`` lies farther than
   ``margin`` (64 of those rounding errors) from an integer, both paths take the same
-  floor, and closer than that (a fraction of about 1e-8 of all values, and every
-  non-finite one) the exact function decides.
+  floor, and closer than that (a fraction of about 1e-8 of all values) the exact
+  function decides, as it does for values whose count would not fit an integer, the
+  infinities and NaN.
 - value: each count's value is computed by the exact function the first time it is
   needed and kept in a table (at most 2^bits entries, NaN while not yet computed).
 
@@ -59,6 +60,7 @@ _EPS = 2.0**-52  # double precision's relative rounding bound (IEEE 754 binary64
 # off by at most half an _EPS of a term no larger than the bound below; 64 is ample.
 _ERRORS_ALLOWED = 64.0
 _NEVER = -1  # _clear_count's answer when the exact function must decide
+_FLOOR_FITS = 2.0**52  # |y| below this: floor(y) is exact and fits an int64
 
 
 class RoundTrip(NamedTuple):
@@ -112,9 +114,11 @@ def _clear_count(x: float, top: float, margin: float) -> int:
         if part > margin and part < 1.0 - margin:
             return int(whole)
         return _NEVER
-    if y < -margin:
+    # Clipped, as long as the exact path's floor fits its integer (beyond, that path has
+    # its own answer: infinities and NaN go there too).
+    if -_FLOOR_FITS < y < -margin:
         return 0
-    if y >= top + 1.0 + margin:
+    if top + 1.0 + margin <= y < _FLOOR_FITS:
         return int(top)
     return _NEVER
 
