@@ -14,7 +14,9 @@ results, cheaper:
   function decides, as it does for values whose count would not fit an integer, the
   infinities and NaN.
 - value: each count's value is computed by the exact function the first time it is
-  needed and kept in a table (at most 2^bits entries, NaN while not yet computed).
+  needed and kept in a table (2^bits entries). 0.0 marks "not yet computed", so the table
+  starts as untouched zeroed memory and costs only the pages a run reaches; a count
+  whose value is 0 (or NaN) is simply computed each time, with the same result.
 
 So ``adc_round_trip_mV`` returns exactly ``counts_to_mV(conv, mV_to_counts(conv, v))``
 and ``dac_round_trip_pA`` exactly ``counts_to_pA(conv, pA_to_counts(conv, i))``
@@ -67,7 +69,7 @@ class RoundTrip(NamedTuple):
     """What the round trips read: coefficients and the two tables of values per count."""
 
     coef: np.ndarray  # float64 (N_COEF,)
-    adc_mV: np.ndarray  # float64 (ADC top + 1,), NaN until that count was seen
+    adc_mV: np.ndarray  # float64 (ADC top + 1,), 0.0 until that count was seen
     dac_pA: np.ndarray  # float64 (DAC top + 1,)
 
 
@@ -99,8 +101,8 @@ def round_trip_arrays(conv: np.ndarray) -> RoundTrip:
     coef[Q_DAC_K1], coef[Q_DAC_K0], coef[Q_DAC_MARGIN] = dac
     return RoundTrip(
         coef,
-        np.full(int(conv[C_ADC_TOP]) + 1, np.nan),
-        np.full(int(conv[C_DAC_TOP]) + 1, np.nan),
+        np.zeros(int(conv[C_ADC_TOP]) + 1),
+        np.zeros(int(conv[C_DAC_TOP]) + 1),
     )
 
 
@@ -132,7 +134,7 @@ def adc_round_trip_mV(conv: np.ndarray, rt_coef: np.ndarray, table: np.ndarray, 
     if c == _NEVER:
         c = mV_to_counts(conv, v)
     value = table[c]
-    if value != value:  # not yet computed
+    if value == 0.0 or value != value:  # not yet computed
         value = counts_to_mV(conv, float(c))
         table[c] = value
     return value
@@ -147,7 +149,7 @@ def dac_round_trip_pA(conv: np.ndarray, rt_coef: np.ndarray, table: np.ndarray, 
     if c == _NEVER:
         c = pA_to_counts(conv, i)
     value = table[c]
-    if value != value:
+    if value == 0.0 or value != value:
         value = counts_to_pA(conv, float(c))
         table[c] = value
     return value

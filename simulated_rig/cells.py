@@ -261,16 +261,19 @@ def cell_advance(
     substeps = int(params[P_SUBSTEPS])
     if substeps < 1:
         substeps = 1
-    h_ms = dt_ms / substeps
     if kind == CELL_PASSIVE:
         v_inf_mV = params[P_E_LEAK_MV] + i_total_pA / params[P_G_LEAK_NS]
         # The factor make_cell computed for its interval (the same expression, once).
-        decay = params[P_DECAY] if dt_ms == params[P_DT_MS] else _passive_decay(params, h_ms)
+        if dt_ms == params[P_DT_MS]:
+            decay = params[P_DECAY]
+        else:
+            decay = _passive_decay(params, dt_ms / substeps)
         v = state[S_V_MV]
         for _ in range(substeps):
             v = v_inf_mV + (v - v_inf_mV) * decay
         state[S_V_MV] = v
     else:
+        h_ms = dt_ms / substeps
         _gates_step(state, 0.5 * h_ms)
         for k in range(substeps):
             _hh_voltage_step(params, state, i_total_pA, h_ms)
