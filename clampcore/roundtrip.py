@@ -126,30 +126,26 @@ def _clear_count(x: float, top: float, margin: float) -> int:
 
 
 @kernel
-def adc_round_trip_mV(conv: np.ndarray, rt_coef: np.ndarray, table: np.ndarray, v: float) -> float:
-    """``counts_to_mV(conv, mV_to_counts(conv, v))``, exactly."""
-    c = _clear_count(
-        v * rt_coef[Q_ADC_K1] + rt_coef[Q_ADC_K0], conv[C_ADC_TOP], rt_coef[Q_ADC_MARGIN]
-    )
-    if c == _NEVER:
-        c = mV_to_counts(conv, v)
+def _value(conv: np.ndarray, table: np.ndarray, c: int, adc: bool) -> float:
+    """Count ``c``'s value from the table, computed by the exact function the first time."""
     value = table[c]
-    if value == 0.0 or value != value:  # not yet computed
-        value = counts_to_mV(conv, float(c))
+    if value == 0.0 or value != value:  # not yet computed (or 0 or NaN: computed again)
+        value = counts_to_mV(conv, float(c)) if adc else counts_to_pA(conv, float(c))
         table[c] = value
     return value
 
 
 @kernel
+def adc_round_trip_mV(conv: np.ndarray, rt_coef: np.ndarray, table: np.ndarray, v: float) -> float:
+    """``counts_to_mV(conv, mV_to_counts(conv, v))``, exactly."""
+    x = v * rt_coef[Q_ADC_K1] + rt_coef[Q_ADC_K0]
+    c = _clear_count(x, conv[C_ADC_TOP], rt_coef[Q_ADC_MARGIN])
+    return _value(conv, table, mV_to_counts(conv, v) if c == _NEVER else c, True)
+
+
+@kernel
 def dac_round_trip_pA(conv: np.ndarray, rt_coef: np.ndarray, table: np.ndarray, i: float) -> float:
     """``counts_to_pA(conv, pA_to_counts(conv, i))``, exactly."""
-    c = _clear_count(
-        i * rt_coef[Q_DAC_K1] + rt_coef[Q_DAC_K0], conv[C_DAC_TOP], rt_coef[Q_DAC_MARGIN]
-    )
-    if c == _NEVER:
-        c = pA_to_counts(conv, i)
-    value = table[c]
-    if value == 0.0 or value != value:
-        value = counts_to_pA(conv, float(c))
-        table[c] = value
-    return value
+    x = i * rt_coef[Q_DAC_K1] + rt_coef[Q_DAC_K0]
+    c = _clear_count(x, conv[C_DAC_TOP], rt_coef[Q_DAC_MARGIN])
+    return _value(conv, table, pA_to_counts(conv, i) if c == _NEVER else c, False)

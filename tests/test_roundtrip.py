@@ -14,27 +14,8 @@ import math
 import numpy as np
 import pytest
 
-from clampcore.calibration import (
-    C_ADC_MAX,
-    C_ADC_MIN,
-    C_ADC_TOP,
-    C_CMD_OFFSET,
-    C_CMD_SCALE,
-    C_DAC_MAX,
-    C_DAC_MIN,
-    C_DAC_TOP,
-    C_LJP,
-    C_VM_OFFSET,
-    C_VM_SCALE,
-    DEFAULT_BOARD_ADC,
-    DEFAULT_BOARD_DAC,
-    Converter,
-    conversion_array,
-    counts_to_mV,
-    counts_to_pA,
-    mV_to_counts,
-    pA_to_counts,
-)
+from clampcore import calibration as cal
+from clampcore.calibration import Converter, conversion_array
 from clampcore.roundtrip import (
     Q_ADC_K0,
     Q_ADC_K1,
@@ -56,7 +37,7 @@ AMPLIFIERS = [
      "command_pA_per_V": 50.0, "command_offset_pA": -333.3},
 ]  # fmt: skip
 BOARDS = [
-    (DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC),
+    (cal.DEFAULT_BOARD_ADC, cal.DEFAULT_BOARD_DAC),
     (Converter(12, 0.0, 5.0), Converter(10, -2.5, 2.5)),  # a small microcontroller's
 ]
 
@@ -71,11 +52,11 @@ def _boundary_values(lo_V: float, hi_V: float, top: float, scale: float, offset:
 
 def _inputs(conv: np.ndarray, adc: bool) -> np.ndarray:
     if adc:
-        lo, hi, top = conv[C_ADC_MIN], conv[C_ADC_MAX], conv[C_ADC_TOP]
-        scale, offset = conv[C_VM_SCALE], conv[C_VM_OFFSET] - conv[C_LJP]
+        lo, hi, top = conv[cal.C_ADC_MIN], conv[cal.C_ADC_MAX], conv[cal.C_ADC_TOP]
+        scale, offset = conv[cal.C_VM_SCALE], conv[cal.C_VM_OFFSET] - conv[cal.C_LJP]
     else:
-        lo, hi, top = conv[C_DAC_MIN], conv[C_DAC_MAX], conv[C_DAC_TOP]
-        scale, offset = conv[C_CMD_SCALE], conv[C_CMD_OFFSET]
+        lo, hi, top = conv[cal.C_DAC_MIN], conv[cal.C_DAC_MAX], conv[cal.C_DAC_TOP]
+        scale, offset = conv[cal.C_CMD_SCALE], conv[cal.C_CMD_OFFSET]
     rng = np.random.default_rng(1)
     span = (hi - lo) * scale
     inside = rng.uniform(lo * scale + offset, hi * scale + offset, 20000)
@@ -109,25 +90,25 @@ def test_round_trips_equal_the_exact_conversions_bit_for_bit(amplifier, board) -
     for v in _inputs(conv, adc=True):
         _check(
             lambda x: adc_round_trip_mV(conv, rt.coef, rt.adc_mV, x),
-            lambda x: counts_to_mV(conv, mV_to_counts(conv, x)),
+            lambda x: cal.counts_to_mV(conv, cal.mV_to_counts(conv, x)),
             v,
         )
     for i in _inputs(conv, adc=False):
         _check(
             lambda x: dac_round_trip_pA(conv, rt.coef, rt.dac_pA, x),
-            lambda x: counts_to_pA(conv, pA_to_counts(conv, x)),
+            lambda x: cal.counts_to_pA(conv, cal.pA_to_counts(conv, x)),
             i,
         )
 
 
 def test_the_short_path_decides_away_from_boundaries_and_defers_at_them() -> None:
-    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, AMPLIFIERS[0])
+    conv = conversion_array(cal.DEFAULT_BOARD_ADC, cal.DEFAULT_BOARD_DAC, AMPLIFIERS[0])
     coef = round_trip_arrays(conv).coef
-    top, margin = conv[C_ADC_TOP], coef[Q_ADC_MARGIN]
+    top, margin = conv[cal.C_ADC_TOP], coef[Q_ADC_MARGIN]
     assert 0.0 < margin < 1e-6  # a few rounding errors of counts near 2**16, no more
     v = np.random.default_rng(2).uniform(-900.0, 900.0, 5000)  # inside the ±10 V range
     short = [_clear_count(x * coef[Q_ADC_K1] + coef[Q_ADC_K0], top, margin) for x in v]
-    assert all(c == mV_to_counts(conv, x) for c, x in zip(short, v, strict=True))
+    assert all(c == cal.mV_to_counts(conv, x) for c, x in zip(short, v, strict=True))
     assert _clear_count(1234.5, top, margin) == -1  # exactly on a boundary: the exact path
     assert _clear_count(1234.5 + 0.5 * margin, top, margin) == -1
     assert _clear_count(1234.5 + 2.0 * margin, top, margin) == 1235
