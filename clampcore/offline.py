@@ -25,7 +25,6 @@ from clampcore.calibration import (
     counts_to_mV,
     counts_to_pA,
     current_limit_problem,
-    mV_to_counts,
     pA_to_counts,
 )
 from clampcore.elements import CONDUCTANCE_KINDS
@@ -35,6 +34,7 @@ from clampcore.jit import kernel
 from clampcore.law import LAW_MODE
 from clampcore.lawloop import host_flags_of
 from clampcore.program import Program, build_program
+from clampcore.roundtrip import RoundTrip, adc_round_trip_mV, dac_round_trip_pA, round_trip_arrays
 from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
@@ -52,6 +52,7 @@ def closed_loop(
     delay_samples: int,
     quantise: bool,
     conv: np.ndarray,
+    rt: RoundTrip,
     cell_kind: int,
     cell_p: np.ndarray,
     cell_s: np.ndarray,
@@ -77,33 +78,37 @@ def closed_loop(
     """Run ``n_samples`` of the closed loop, writing every output array in place.
 
     ``commands_pA`` (length ``delay_samples``) holds the commands still on their
-    way to the cell; ``spike_rows`` lists the neuron/threshold rows whose spike
-    flag is recorded after the cell's (column 0 of ``out_spikes``).
+    way to the cell; ``rt`` makes the converter round trips of ``conv`` (exactly, in
+    fewer steps: ``clampcore.roundtrip``); ``spike_rows`` lists the neuron rows whose
+    spike flag is recorded after the cell's (column 0 of ``out_spikes``).
     """
     dt_ms = loop_p[0]
     zero_counts = pA_to_counts(conv, 0.0)
     applied_pA = counts_to_pA(conv, zero_counts) if quantise else 0.0
+    slot = 0  # commands_pA[slot]: the command sent delay_samples ago, replaced by this one
     for n in range(n_samples):
         if n >= delay_samples:
-            applied_pA = commands_pA[n % delay_samples]
+            applied_pA = commands_pA[slot]
         if n > 0:
             cell_advance(cell_kind, cell_p, cell_s, cell_rng, applied_pA, dt_ms)
         v_mV = cell_measure_mV(cell_kind, cell_p, cell_s, cell_rng, applied_pA)
         if quantise:
-            v_mV = counts_to_mV(conv, mV_to_counts(conv, v_mV))
-        i_pA = step(v_mV, n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
-        commands_pA[n % delay_samples] = (
-            counts_to_pA(conv, pA_to_counts(conv, i_pA)) if quantise else i_pA
+            v_mV = adc_round_trip_mV(conv, rt.coef, rt.adc_mV, v_mV)
+        # step writes every element's g and i of this sample straight into the recording.
+        i_pA = step(
+            v_mV, n, kind, params, state, rng, trains, out_g[n], out_i_el[n], loop_p, loop_s
         )
+        commands_pA[slot] = dac_round_trip_pA(conv, rt.coef, rt.dac_pA, i_pA) if quantise else i_pA
+        slot = slot + 1 if slot + 1 < delay_samples else 0
         out_v[n] = v_mV
         out_i[n] = i_pA
-        for r in range(g_out.shape[0]):
-            out_g[n, r] = g_out[r]
-            out_i_el[n, r] = i_out[r]
         out_spikes[n, 0] = loop_s[LS_CELL_SPIKED] != 0.0
         for j in range(spike_rows.shape[0]):
             out_spikes[n, j + 1] = state[spike_rows[j], NEURON_S_SPIKED] != 0.0
         out_flags[n] = int(loop_s[LS_FLAGS])
+    for r in range(g_out.shape[0] if n_samples > 0 else 0):  # the last sample, as after a run
+        g_out[r] = out_g[n_samples - 1, r]
+        i_out[r] = out_i_el[n_samples - 1, r]
 
 
 @dataclass
@@ -216,17 +221,19 @@ def simulate(
     n_el = len(program.names)
     rows = program.spike_rows()
     delay = 1 + int(exp.loop["extra_delay_samples"])
-    out_v = np.zeros(n_samples)
-    out_i = np.zeros(n_samples)
-    out_g = np.zeros((n_samples, n_el))
-    out_i_el = np.zeros((n_samples, n_el))
-    out_spikes = np.zeros((n_samples, 1 + rows.size), dtype=np.bool_)
-    out_flags = np.zeros(n_samples, dtype=np.int64)
+    # Every entry is written by the loop (out_g and out_i_el row by row by step itself).
+    out_v = np.empty(n_samples)
+    out_i = np.empty(n_samples)
+    out_g = np.empty((n_samples, n_el))
+    out_i_el = np.empty((n_samples, n_el))
+    out_spikes = np.empty((n_samples, 1 + rows.size), dtype=np.bool_)
+    out_flags = np.empty(n_samples, dtype=np.int64)
     closed_loop(
         n_samples,
         delay,
         quantise,
         conv,
+        round_trip_arrays(conv),
         cell.kind,
         cell.params,
         cell.state,

@@ -33,6 +33,9 @@ col   name                meaning
 9     g_k_nS              hh: gk × area (0 for passive)
 10    e_k_mV              hh: ek_mV
 11    area_cm2            hh: membrane area (0 for passive); for converting µA/cm²
+12    dt_ms               the sample interval ``make_cell`` was given
+13    decay               passive: exp(-h·g_L/C) for the substep h of ``dt_ms``, computed
+                          once (0 for hh); a call with another interval computes its own
 ====  ==================  ==========================================================
 
 ``state`` columns: 0 ``v_mV`` (true membrane potential), 1 ``m``, 2 ``h``,
@@ -70,7 +73,9 @@ P_E_NA_MV = 8
 P_G_K_NS = 9
 P_E_K_MV = 10
 P_AREA_CM2 = 11
-N_PARAMS = 12
+P_DT_MS = 12
+P_DECAY = 13
+N_PARAMS = 14
 
 # state columns
 S_V_MV = 0
@@ -216,6 +221,12 @@ def _hh_voltage_step(params: np.ndarray, state: np.ndarray, i_pA: float, h_ms: f
 
 
 @kernel
+def _passive_decay(params: np.ndarray, h_ms: float) -> float:
+    """The passive membrane's relaxation factor over ``h_ms``: exp(-h·g_L/C)."""
+    return math.exp(-h_ms * params[P_G_LEAK_NS] / params[P_CAPACITANCE_PF])
+
+
+@kernel
 def cell_advance(
     kind: int, params: np.ndarray, state: np.ndarray, rng: np.ndarray, i_pA: float, dt_ms: float
 ) -> None:
@@ -250,16 +261,19 @@ def cell_advance(
     substeps = int(params[P_SUBSTEPS])
     if substeps < 1:
         substeps = 1
-    h_ms = dt_ms / substeps
     if kind == CELL_PASSIVE:
-        g_l = params[P_G_LEAK_NS]
-        v_inf_mV = params[P_E_LEAK_MV] + i_total_pA / g_l
-        decay = math.exp(-h_ms * g_l / params[P_CAPACITANCE_PF])
+        v_inf_mV = params[P_E_LEAK_MV] + i_total_pA / params[P_G_LEAK_NS]
+        # The factor make_cell computed for its interval (the same expression, once).
+        if dt_ms == params[P_DT_MS]:
+            decay = params[P_DECAY]
+        else:
+            decay = _passive_decay(params, dt_ms / substeps)
         v = state[S_V_MV]
         for _ in range(substeps):
             v = v_inf_mV + (v - v_inf_mV) * decay
         state[S_V_MV] = v
     else:
+        h_ms = dt_ms / substeps
         _gates_step(state, 0.5 * h_ms)
         for k in range(substeps):
             _hh_voltage_step(params, state, i_total_pA, h_ms)
@@ -435,5 +449,8 @@ def make_cell(cell: dict, dt_ms: float) -> CellArrays:
             # 1e-9 guards against 0.05/0.01 = 5.000000000000001 giving 6
             substeps = max(1, math.ceil(dt_ms / _HH_MAX_SUBSTEP_MS - 1e-9))
     params[P_SUBSTEPS] = float(substeps)
+    params[P_DT_MS] = dt_ms
+    if kind == CELL_PASSIVE:
+        params[P_DECAY] = _passive_decay(params, dt_ms / substeps)
     rng = np.array([seed_state(seed, stream=_CELL_STREAM)], dtype=np.uint64)
     return CellArrays(kind=kind, params=params, state=state, rng=rng)

@@ -131,6 +131,19 @@ def test_passive_is_exact_when_the_sample_is_as_long_as_tau(dt_ms: float, subste
     np.testing.assert_allclose(v, _rc_step_mV(t_ms, i_pA), rtol=0, atol=1e-9)
 
 
+def test_passive_advanced_with_another_interval_than_it_was_made_for() -> None:
+    # make_cell keeps the decay of its own interval; a call with another interval (here
+    # 0.5 ms, 1 ms, then 0.05 ms again) must still follow the closed-form RC response.
+    c = make_cell(PASSIVE, DT_MS)
+    t_ms = 0.0
+    for dt_ms, n in ((0.5, 20), (1.0, 10), (DT_MS, 200)):
+        for _ in range(n):
+            cell_advance(c.kind, c.params, c.state, c.rng, 50.0, dt_ms)
+        t_ms += dt_ms * n
+        v = cell_v_true_mV(c.kind, c.params, c.state)
+        assert v == pytest.approx(_rc_step_mV(t_ms, 50.0), abs=1e-9)  # closed form
+
+
 def test_passive_current_held_over_a_sample_then_switched() -> None:
     # Superposition of two closed-form steps: +40 pA for 10 ms, then 0.
     c = make_cell(PASSIVE, DT_MS)
