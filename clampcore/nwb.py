@@ -130,22 +130,6 @@ def _timing_description(first_counter: int | None) -> str:
     return text_
 
 
-def _column_kind(name: str) -> tuple[str, str]:
-    """``(kind, element)`` of a journal column."""
-    if name == "v_mV":
-        return "v", ""
-    if name == "i_pA":
-        return "i", ""
-    for prefix, kind in (("g_nS/", "g"), ("i_pA/", "ie"), ("spike/", "spike")):
-        if name.startswith(prefix) and len(name) > len(prefix):
-            return kind, name[len(prefix) :]
-    return {
-        "sample_counter": ("counter", ""),
-        "latency_samples": ("latency", ""),
-        "turnaround_us": ("turn", ""),
-    }.get(name, ("other", ""))
-
-
 def _check_data(data: JournalData) -> tuple[float, int, int]:
     if not isinstance(data, JournalData):
         raise NwbError(f"write_nwb needs a JournalData, got {type(data).__name__}")
@@ -196,7 +180,9 @@ def _e_changes(data: JournalData, element: str, n_rows: int) -> list[tuple[int, 
 class _Writer:
     """Builds the NWB objects of one recording (``compact=False``: the float64 layout)."""
 
-    def __init__(self, data: JournalData, compact: bool, compression: Any) -> None:
+    def __init__(
+        self, data: JournalData, compact: bool, compression: Any, spooled: dict | None = None
+    ) -> None:
         from pynwb import TimeSeries
 
         self.TimeSeries = TimeSeries
@@ -219,6 +205,19 @@ class _Writer:
         self.taken: dict[str, set[str]] = {}
         self.first_counter: int | None = None
         self.calibration_used = False
+        # Columns the recorder already encoded and compressed (clampcore.nwb_spool).
+        self.spooled = spooled if compact and spooled else {}
+
+    def _spooled(self, name: str, encoding: str) -> dict | None:
+        spec = self.spooled.get(name)
+        return spec if spec is not None and spec["encoding"] == encoding else None
+
+    def _f32(self, name: str, values: np.ndarray) -> Any:
+        """A float32 column: the spooled dataset, else the journal's values as float32."""
+        spec = self._spooled(name, "float32")
+        if spec is not None:
+            return spec["dataset"]
+        return values.astype(np.float32 if self.compact else np.float64)
 
     def module(self, name: str, description: str) -> Any:
         if name not in self.modules:
@@ -234,8 +233,13 @@ class _Writer:
         mod.add(self.TimeSeries(name=name, data=ns.dataset(values, self.compression), **kw))
         return f"processing/{mod.name}/{name}"
 
-    def _small_ints(self, values: np.ndarray) -> tuple[np.ndarray, dict[str, Any], str]:
+    def _small_ints(self, name: str, values: np.ndarray) -> tuple[Any, dict[str, Any], str]:
         """``(data, encoding, description suffix)``: unsigned integers if they fit, else float64."""
+        spec = self._spooled(name, "uint")
+        if spec is not None:
+            unknown = spec["unknown"]
+            note = "" if unknown is None else f" {unknown} means unknown (NaN in the journal)."
+            return spec["dataset"], {"encoding": "uint", "unknown": unknown}, note
         if self.compact:
             packed = ns.smallest_uint(values)
             if packed is not None:
@@ -249,15 +253,18 @@ class _Writer:
         series on the electrode: converter counts when the calibration allows, else float64."""
         from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
 
-        if kind == "v":
+        v = kind == "v"
+        scale = ns.adc_nwb_scale if v else ns.dac_nwb_scale
+        cls = CurrentClampSeries if v else CurrentClampStimulusSeries
+        group, name = ("acquisition", _V_SERIES) if v else ("stimulus", _I_SERIES)
+        spooled = self._spooled(column, "adc_counts" if v else "dac_counts")
+        if spooled is not None:
+            counts = spooled["dataset"]
+        elif v:
             counts = ns.mV_to_adc_exact(values, self.cal) if self.cal else None
-            scale, cls, group = ns.adc_nwb_scale, CurrentClampSeries, "acquisition"
-            name = _V_SERIES
         else:
             known = self.cal is not None and self.cal.dac_known
             counts = ns.pA_to_dac(values, self.cal) if known else None
-            scale, cls, group = ns.dac_nwb_scale, CurrentClampStimulusSeries, "stimulus"
-            name = _I_SERIES
         what, unit, unit_in_si, counts_text = _CLAMP_TEXT[kind]
         if counts is not None:
             conversion, offset = scale(self.cal)
@@ -283,8 +290,8 @@ class _Writer:
         )
 
     def add_column(self, name: str, values: np.ndarray) -> None:
-        kind, element = _column_kind(name)
-        values = np.asarray(values, dtype=np.float64)
+        kind, element = ns.column_kind(name)
+        values = np.asarray(values, dtype=np.float64)  # the journal's columns: no copy
         comment = f"clampcore journal column '{name}'"
         f32 = "float32" if self.compact else "float64"
         if kind == "v":
@@ -304,7 +311,7 @@ class _Writer:
             path = self._series(
                 _VC_MODULE,
                 f"{stem}_{nwb_name(element)}",
-                values.astype(f32),
+                self._f32(name, values),
                 unit=unit,
                 conversion=unit_in_si,  # data in the journal's nS or pA
                 description=f"{stem.capitalize()} of virtual element '{element}' ({f32} {short}).",
@@ -312,7 +319,7 @@ class _Writer:
                 **self.common,
             )
             self.columns[name] = {"path": path, "encoding": f32}
-        elif kind == "counter" and self.compact and (gaps := ns.counter_gaps(values)):
+        elif kind == "counter" and self.compact and (gaps := self._counter_gaps(name, values)):
             first, rows, missing = gaps
             self.first_counter = first
             mod = self.module(_TIMING_MODULE, _timing_description(first))
@@ -323,7 +330,7 @@ class _Writer:
             path = self._series(
                 (_TIMING_MODULE, _timing_description(None)),
                 "host_turnaround",
-                values.astype(f32),
+                self._f32(name, values),
                 unit="seconds",
                 conversion=_US_IN_S,  # data in µs
                 description="Host turnaround from frame arrival to command written "
@@ -333,7 +340,7 @@ class _Writer:
             )
             self.columns[name] = {"path": path, "encoding": f32}
         elif kind in ("latency", "counter", "other"):
-            array, spec, note = self._small_ints(values)
+            array, spec, note = self._small_ints(name, values)
             if kind == "latency":
                 base, unit = "latency_samples", "samples"
                 what = (
@@ -353,10 +360,25 @@ class _Writer:
             )
             self.columns[name] = {"path": path, **spec}
 
+    def _counter_gaps(self, name: str, values: np.ndarray) -> tuple | None:
+        spec = self._spooled(name, "counter_gaps")
+        if spec is not None:
+            return spec["first"], spec["rows"], spec["missing"]
+        return ns.counter_gaps(values)
+
     def _derivable(self, element: str, values: np.ndarray) -> dict | None:
         """The derivation spec when ``-g (V - E)`` reproduces this current, else None."""
-        if not self.compact:
+        if not self.compact or self._spooled(f"i_pA/{element}", "float32") is not None:
             return None
+        spec = self._spooled(f"i_pA/{element}", "derived_current")
+        if spec is not None:
+            return {
+                "path": None,
+                "encoding": "derived_current",
+                "conductance": f"g_nS/{element}",
+                "e_mV": spec["e_mV"],
+                "e_changes": [],
+            }
         g = self.data.columns.get(f"g_nS/{element}")
         v = self.data.columns.get("v_mV")
         e0 = _elements(self.meta).get(element, {}).get("e_mV")
@@ -381,7 +403,7 @@ class _Writer:
         # The counter first: the timing module's description says how to rebuild it.
         order = sorted(self.data.columns.items(), key=lambda kv: kv[0] != "sample_counter")
         for name, values in order:
-            if _column_kind(name)[0] == "spike":
+            if ns.column_kind(name)[0] == "spike":
                 spikes[name] = values
             else:
                 self.add_column(name, values)
@@ -425,6 +447,7 @@ def write_nwb(
     overwrite: bool = False,
     compact: bool = True,
     compression: tuple[str, int | None] | None = ns.COMPRESSION,
+    spooled: dict[str, dict] | None = None,
 ) -> None:
     """Write ``data`` (from :func:`~clampcore.journal.read_journal`) as an NWB file at ``path``.
 
@@ -433,6 +456,7 @@ def write_nwb(
     ``overwrite``. ``compact=False`` writes the first layout (every series float64,
     uncompressed), kept for comparison (``bench/bench_recording.py``); ``compression``
     is ``(filter, level)`` for HDF5 (``("gzip", 1)``, ``("lzf", None)``) or None.
+    ``spooled`` are columns encoded while recording (``Spool.finish``), copied as stored.
     """
     from pynwb import NWBHDF5IO
 
@@ -441,7 +465,7 @@ def write_nwb(
         raise NwbError(f"{path} exists: choose another name or pass overwrite=True")
     if path.is_dir():
         raise NwbError(f"{path} is a directory")
-    nwbfile = _Writer(data, compact, compression).build()
+    nwbfile = _Writer(data, compact, compression, spooled).build()
     tmp = path.with_name(f"{path.stem}.partial{path.suffix or '.nwb'}")
     try:
         if tmp.exists():
@@ -466,16 +490,26 @@ def journal_to_nwb(journal: Path, out: Path, *, overwrite: bool = False) -> Path
     return Path(out)
 
 
-def convert_journal(journal: Path, out: Path, *, keep_journal: bool = False) -> tuple[Path, bool]:
+def convert_journal(
+    journal: Path, out: Path, *, keep_journal: bool = False, spool: Any = None
+) -> tuple[Path, bool]:
     """Journal -> NWB, read back and checked against the journal; then the journal is removed
     unless ``keep_journal``. Returns ``(out, journal_removed)``. A failed check raises
-    :class:`NwbError` and keeps both files."""
+    :class:`NwbError` and keeps both files. ``spool`` (a :class:`clampcore.nwb_spool.Spool`
+    fed while recording) gives the columns it encoded; the rest come from the journal."""
     journal, out = Path(journal), Path(out)
     try:
         data = read_journal(journal)
     except JournalError as exc:
+        if spool is not None:
+            spool.close()
         raise NwbError(f"cannot convert {journal}: {exc}") from exc
-    write_nwb(out, data, overwrite=True)
+    try:
+        spooled = spool.finish(data.meta, data.n_samples, data.events) if spool else None
+        write_nwb(out, data, overwrite=True, spooled=spooled)
+    finally:
+        if spool is not None:
+            spool.close()
     problems = check_against_journal(out, data)
     if problems:
         raise NwbError(
@@ -558,7 +592,7 @@ def compact_bytes_per_row(columns: list[str], adc_bits: int = 16, dac_bits: int 
     """
     total = 0
     for name in columns:
-        kind, _ = _column_kind(name)
+        kind, _ = ns.column_kind(name)
         if kind == "v":
             total += 2 if adc_bits <= 16 else 4
         elif kind == "i":
@@ -583,7 +617,7 @@ def _in_unit(series: Any, scale: float) -> np.ndarray:
 
 
 def _journal_scale(column: str) -> float:
-    kind, _ = _column_kind(column)
+    kind, _ = ns.column_kind(column)
     return {"v": _MV_IN_V, "i": _PA_IN_A, "g": _NS_IN_S, "ie": _PA_IN_A, "turn": _US_IN_S}.get(
         kind, 1.0
     )
@@ -608,7 +642,7 @@ def _storage(document: dict) -> dict[str, dict]:
         if isinstance(spec, dict):
             out[column] = spec
         else:
-            kind = "spikes" if _column_kind(column)[0] == "spike" else "float64"
+            kind = "spikes" if ns.column_kind(column)[0] == "spike" else "float64"
             out[column] = {"path": spec, "encoding": kind}
     return out
 
@@ -623,7 +657,7 @@ def _read_columns(
         encoding, where = spec["encoding"], spec.get("path")
         if encoding == "spikes":
             samples = read_spike_samples(nwbfile, where)
-            spike_times[_column_kind(column)[1]] = samples / rate_hz
+            spike_times[ns.column_kind(column)[1]] = samples / rate_hz
             flags = np.zeros(n, dtype=np.float64)
             flags[samples - first_sample] = 1.0
             columns[column] = flags
