@@ -207,16 +207,22 @@ class _Writer:
         self.calibration_used = False
         # Columns the recorder already encoded and compressed (clampcore.nwb_spool).
         self.spooled = spooled if compact and spooled else {}
+        self.fills: dict[str, Any] = {}  # column -> its spooled chunks, written after the file
 
     def _spooled(self, name: str, encoding: str) -> dict | None:
         spec = self.spooled.get(name)
         return spec if spec is not None and spec["encoding"] == encoding else None
 
+    def _placeholder(self, name: str, spec: dict) -> Any:
+        """The empty dataset a spooled column's chunks go into (:func:`write_nwb`)."""
+        self.fills[name] = spec["stored"]
+        return spec["stored"].placeholder()
+
     def _f32(self, name: str, values: np.ndarray) -> Any:
         """A float32 column: the spooled dataset, else the journal's values as float32."""
         spec = self._spooled(name, "float32")
         if spec is not None:
-            return spec["dataset"]
+            return self._placeholder(name, spec)
         return values.astype(np.float32 if self.compact else np.float64)
 
     def module(self, name: str, description: str) -> Any:
@@ -239,7 +245,7 @@ class _Writer:
         if spec is not None:
             unknown = spec["unknown"]
             note = "" if unknown is None else f" {unknown} means unknown (NaN in the journal)."
-            return spec["dataset"], {"encoding": "uint", "unknown": unknown}, note
+            return self._placeholder(name, spec), {"encoding": "uint", "unknown": unknown}, note
         if self.compact:
             packed = ns.smallest_uint(values)
             if packed is not None:
@@ -259,7 +265,7 @@ class _Writer:
         group, name = ("acquisition", _V_SERIES) if v else ("stimulus", _I_SERIES)
         spooled = self._spooled(column, "adc_counts" if v else "dac_counts")
         if spooled is not None:
-            counts = spooled["dataset"]
+            counts = self._placeholder(column, spooled)
         elif v:
             counts = ns.mV_to_adc_exact(values, self.cal) if self.cal else None
         else:
@@ -465,19 +471,34 @@ def write_nwb(
         raise NwbError(f"{path} exists: choose another name or pass overwrite=True")
     if path.is_dir():
         raise NwbError(f"{path} is a directory")
-    nwbfile = _Writer(data, compact, compression, spooled).build()
+    writer = _Writer(data, compact, compression, spooled)
+    nwbfile = writer.build()
     tmp = path.with_name(f"{path.stem}.partial{path.suffix or '.nwb'}")
     try:
         if tmp.exists():
             tmp.unlink()
         with NWBHDF5IO(str(tmp), mode="w") as io:
             io.write(nwbfile)
+        if writer.fills:
+            _fill_spooled(tmp, writer)
         os.replace(tmp, path)
     except OSError as exc:
         raise NwbError(f"cannot write {path}: {exc}") from exc
     finally:
         if tmp.exists():
             tmp.unlink()
+
+
+def _fill_spooled(path: Path, writer: _Writer) -> None:
+    """Write the spooled columns' compressed chunks into their empty datasets, as stored."""
+    import h5py
+
+    with h5py.File(path, "r+") as f:
+        for name, stored in writer.fills.items():
+            where = writer.columns[name]["path"]
+            if where.startswith("stimulus/"):  # NWB keeps stimuli in /stimulus/presentation
+                where = "stimulus/presentation/" + where.partition("/")[2]
+            stored.fill(f[f"{where}/data"])
 
 
 def journal_to_nwb(journal: Path, out: Path, *, overwrite: bool = False) -> Path:

@@ -331,13 +331,13 @@ def current_is_derivable(
 
 
 def dataset(array: np.ndarray, compression: tuple[str, int | None] | None = COMPRESSION) -> Any:
-    """``array`` chunked along time with shuffle + ``compression``; None: stored plain. An
-    open h5py dataset (a spooled column, :mod:`clampcore.nwb_spool`) is copied as it is
-    stored: its chunks, already compressed, are not compressed again."""
+    """``array`` chunked along time with shuffle + ``compression``; None: stored plain. A
+    dataset already described (a spooled column's placeholder, :mod:`clampcore.nwb_spool`)
+    is returned as it is."""
     from hdmf.backends.hdf5.h5_utils import H5DataIO
 
-    if hasattr(array, "id") and hasattr(array, "chunks"):  # an h5py.Dataset
-        return H5DataIO(data=array, link_data=False)
+    if isinstance(array, H5DataIO):
+        return array
     array = np.asarray(array)
     if compression is None or array.size == 0:
         return array

@@ -2,36 +2,39 @@
 
 Converting a whole journal at stop costs about 1.4 s of CPU per minute recorded
 (``bench/bench_recording.py``): encoding every column and compressing it. The recorder
-therefore feeds each block it journals to a ``Spool`` too, which encodes the block as
-:mod:`clampcore.nwb_series` would at stop and appends it to chunked, compressed HDF5
-datasets in ``compact.h5`` inside the journal directory. At stop
-:func:`clampcore.nwb.convert_journal` copies those datasets into the NWB file as they
-are (HDF5 copies the compressed chunks, nothing is compressed twice) and converts from
-the journal only the columns the spool could not keep.
+therefore feeds each block it journals to a ``Spool`` too, which encodes the rows as
+:mod:`clampcore.nwb_series` would at stop and compresses them into HDF5 chunks: whole
+chunks of ``nwb_series.CHUNK_ROWS`` rows, byte-shuffled and deflated exactly as HDF5's
+shuffle and gzip filters store them (HDF5 documentation, "Filters": shuffle, then
+deflate in the zlib format), appended with plain ``os.write`` to one file per column in
+``spool/`` inside the journal directory. At stop :func:`clampcore.nwb.write_nwb` gives
+those columns empty datasets of the same chunks and filters and writes the stored chunks
+into them as they are (``write_direct_chunk``): nothing is compressed twice. Only the
+columns the spool could not keep are converted from the journal. No HDF5 file is open
+while recording, so a full disk fails a plain write, never the HDF5 library's state.
 
-Rows are buffered until they fill whole HDF5 chunks (``nwb_series.CHUNK_ROWS``), and
-only whole chunks are written, without HDF5's chunk cache: each chunk is encoded and
-compressed exactly once, as it would be at stop, and the rest at :meth:`Spool.finish`.
-The journal stays the crash-safe copy: the spool is never flushed while recording
-(after a crash ``compact.h5`` is unreadable and ignored), ``recover`` never reads it, and the
-NWB file is still checked against the journal before the journal is removed. A column
-whose data stop fitting the encoding the spool chose from its first block (V off the
-ADC's grid, a current no longer ``-g (V - E)``, an integer above 254, a counter
-running backwards) is dropped from the spool and converted from the journal at stop;
-so is every column when the spool fails (a full disk), when its calibration is not
-the final one, or when its row count is not the journal's.
+The journal stays the crash-safe copy: ``recover`` never reads the spool, and the NWB
+file is still checked against the journal before the journal is removed. A column whose
+data stop fitting the encoding the spool chose from its first chunk (V off the ADC's
+grid, a current no longer ``-g (V - E)``, an integer above 254, a counter running
+backwards) is dropped from the spool and converted from the journal at stop; so is every
+column when the spool fails (a full disk), when its calibration is not the final one, or
+when its row count is not the journal's.
 
 Encodings (those of :mod:`clampcore.nwb_series`): ``adc_counts`` and ``dac_counts``,
 ``float32``, ``derived_current`` (nothing stored), ``uint`` (uint8 only, 255 for NaN),
 ``counter_gaps`` (kept in memory). Spike flags are not spooled: their tables are
 built from the journal at stop (one pass over one column).
 
-Public names: ``Spool``, ``SPOOL_FILE``.
+Public names: ``Spool``, ``SpooledChunks``, ``SPOOL_DIR``.
 """
 
 from __future__ import annotations
 
 import contextlib
+import os
+import shutil
+import zlib
 from pathlib import Path
 from typing import Any
 
@@ -40,17 +43,17 @@ import numpy as np
 from clampcore import nwb_series as ns
 from clampcore.nwb_metadata import SIMULATED_SOURCES, text
 
-SPOOL_FILE = "compact.h5"
+SPOOL_DIR = "spool"
 _UINT8_TOP = 255  # uint8's largest value: NaN ("unknown") in a spooled integer column
 
 
 class _Column:
-    """One column's state in the spool: its encoding, its dataset, what it has seen."""
+    """One column's state in the spool: its encoding, its chunks, what it has seen."""
 
     def __init__(self, name: str, kind: str, element: str) -> None:
         self.name, self.kind, self.element = name, kind, element
         self.encoding: str | None = None  # decided on the first block
-        self.dataset: Any = None
+        self.stored: SpooledChunks | None = None
         self.has_nan = False
         self.top = 0.0
         self.rows: list[np.ndarray] = []  # counter gaps: rows and missing counts
@@ -59,19 +62,88 @@ class _Column:
         self.last = 0.0
 
 
+class SpooledChunks:
+    """One column's compressed chunks in a plain file: ``sizes`` bytes each, in order."""
+
+    def __init__(self, path: Path, dtype: np.dtype) -> None:
+        self.path, self.dtype = path, np.dtype(dtype)
+        self.sizes: list[int] = []
+        self.rows = 0
+        self._fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o644)
+
+    def append(self, values: np.ndarray) -> None:
+        """Compress ``values`` (whole chunks; the last may be short: padded with zeros)."""
+        step = ns.CHUNK_ROWS
+        for start in range(0, values.shape[0], step):
+            part = values[start : start + step]
+            chunk = np.zeros(step, dtype=self.dtype)
+            chunk[: part.shape[0]] = part
+            level = ns.COMPRESSION[1]
+            # HDF5's shuffle filter: byte k of every element, for k = 0 .. itemsize - 1.
+            shuffled = chunk.view(np.uint8).reshape(step, self.dtype.itemsize).T.tobytes()
+            raw = zlib.compress(shuffled, level)  # HDF5's deflate filter: zlib format
+            done = 0
+            while done < len(raw):
+                done += os.write(self._fd, raw[done:])
+            self.sizes.append(len(raw))
+            self.rows += part.shape[0]
+
+    def close(self) -> None:
+        with contextlib.suppress(OSError):
+            os.close(self._fd)
+
+    def placeholder(self) -> Any:
+        """An empty dataset of the NWB file with these chunks' shape, type and filters."""
+        from hdmf.backends.hdf5.h5_utils import H5DataIO
+
+        name, level = ns.COMPRESSION
+        return H5DataIO(
+            data=None,
+            shape=(self.rows,),
+            dtype=self.dtype,
+            chunks=(ns.CHUNK_ROWS,),
+            shuffle=True,
+            compression=name,
+            compression_opts=level,
+        )
+
+    def chunks(self) -> Any:
+        """``(first row, compressed bytes)`` of every chunk, read back from the file."""
+        with open(self.path, "rb") as handle:
+            for k, size in enumerate(self.sizes):
+                yield k * ns.CHUNK_ROWS, handle.read(size)
+
+    def fill(self, dataset: Any) -> None:
+        """Write the chunks into ``dataset`` (made from :meth:`placeholder`) as stored."""
+        for first, raw in self.chunks():
+            dataset.id.write_direct_chunk((first,), raw)
+
+    def read(self) -> np.ndarray:
+        """The values back (decompressed, unshuffled)."""
+        item = self.dtype.itemsize
+        parts = [
+            np.frombuffer(zlib.decompress(raw), np.uint8)
+            .reshape(item, -1)
+            .T.copy()
+            .view(self.dtype)
+            for _, raw in self.chunks()
+        ]
+        values = np.concatenate(parts) if parts else np.zeros(0, self.dtype)
+        return values.reshape(-1)[: self.rows]
+
+
 class Spool:
     """Compact columns of one run, appended block by block (see the module docstring).
 
-    ``Spool(folder, columns, meta)`` creates ``folder/compact.h5``; ``append(block)``
-    takes the same ``(n, len(columns))`` rows as the journal; :meth:`finish` closes the
-    file and says what the NWB writer may copy. Any error disables the spool (``None``
-    from :meth:`finish`): it never stops a recording.
+    ``Spool(folder, columns, meta)`` creates ``folder/spool/``; ``append(block)``
+    takes the same ``(n, len(columns))`` rows as the journal; :meth:`finish` says what
+    the NWB writer may copy. Any error disables the spool (``None`` from
+    :meth:`finish`): it never stops a recording.
     """
 
     def __init__(self, folder: Path, columns: list[str], meta: dict[str, Any]) -> None:
-        import h5py
-
-        self.path = Path(folder) / SPOOL_FILE
+        self.path = Path(folder) / SPOOL_DIR
+        self.path.mkdir()
         self.names = list(columns)
         source = text(meta.get("source")) or ""
         self.cal = ns.calibration_from_meta(dict(meta), source in SIMULATED_SOURCES)
@@ -85,8 +157,6 @@ class Spool:
         self.failed: str | None = None
         self._pending: list[np.ndarray] = []  # rows waiting for a whole chunk
         self._pending_rows = 0
-        # No chunk cache: only whole chunks are written, each compressed once, at once.
-        self._file = h5py.File(self.path, "w", rdcc_nbytes=0)
 
     # ------------------------------------------------------------------ while recording
     def append(self, block: np.ndarray) -> None:
@@ -94,8 +164,12 @@ class Spool:
         error the spool is given up."""
         if self.failed is not None:
             return
-        self._pending.append(np.array(block, dtype=np.float64))  # a copy: the caller reuses it
-        self._pending_rows += self._pending[-1].shape[0]
+        block = np.array(block, dtype=np.float64)  # a copy: the caller reuses its array
+        if block.ndim != 2 or block.shape[1] != len(self.names):
+            self._give_up(f"a block of shape {block.shape} for {len(self.names)} columns")
+            return
+        self._pending.append(block)
+        self._pending_rows += block.shape[0]
         if self._pending_rows >= ns.CHUNK_ROWS:
             self._write(whole_chunks=True)
 
@@ -118,27 +192,14 @@ class Spool:
 
     def _give_up(self, why: str) -> None:
         self.failed = why
-        with contextlib.suppress(Exception):
-            self._file.close()
-        with contextlib.suppress(OSError):
-            self.path.unlink()
+        self._pending = []
+        self.close()
 
     def _store(self, column: _Column, values: np.ndarray) -> None:
-        if column.dataset is None:
-            name, level = ns.COMPRESSION
-            column.dataset = self._file.create_dataset(
-                column.name.replace("/", "|"),
-                shape=(0,),
-                maxshape=(None,),
-                dtype=values.dtype,
-                chunks=(ns.CHUNK_ROWS,),
-                shuffle=True,
-                compression=name,
-                compression_opts=level,
-            )
-        start = column.dataset.shape[0]
-        column.dataset.resize((start + values.shape[0],))
-        column.dataset[start:] = values
+        if column.stored is None:
+            index = self.names.index(column.name)
+            column.stored = SpooledChunks(self.path / f"{index}.chunks", values.dtype)
+        column.stored.append(values)
 
     def _append_column(self, column: _Column, block: np.ndarray, j: int) -> None:
         values = block[:, j]
@@ -148,7 +209,9 @@ class Spool:
         encoded = self._encode(column, values, block)
         if encoded is None:  # this block does not fit the column's encoding
             column.encoding = "journal"
-            column.dataset = None
+            if column.stored is not None:
+                column.stored.close()
+            column.stored = None
         elif encoded is not True:
             self._store(column, encoded)
 
@@ -219,31 +282,32 @@ class Spool:
         return np.where(nan, _UINT8_TOP, values).astype(np.uint8)
 
     # ------------------------------------------------------------------ at stop
-    def read(self, name: str) -> np.ndarray | None:
-        """A spooled column back in the journal's units (None: not spooled), e.g. for the
-        run's timing figures at stop without reading the journal; writes the pending rows."""
+    def complete(self) -> None:
+        """Encode and write the rows still waiting for a whole chunk (the run has ended)."""
         if self.failed is None and self._pending_rows:
             self._write(whole_chunks=False)
+
+    def read(self, name: str) -> np.ndarray | None:
+        """A spooled column back in the journal's units (None: not spooled), e.g. for the
+        run's timing figures at stop without reading the journal; completes the spool."""
+        self.complete()
         if self.failed is not None or name not in self.names:
             return None
         column = self.columns[self.names.index(name)]
-        if column.dataset is None or column.encoding not in ("float32", "uint"):
+        if column.stored is None or column.encoding not in ("float32", "uint"):
             return None
-        data = column.dataset[:]
+        data = column.stored.read()
         if column.encoding == "uint":
             return ns.from_uint(data, _UINT8_TOP if column.has_nan else None)
         return data.astype(np.float64)
 
     def finish(self, meta: dict[str, Any], n_rows: int, events: list[dict]) -> dict | None:
-        """Close the file; what the NWB writer may copy: ``{column: spec}``, each spec an
-        encoding as in the file's document plus ``dataset`` (an open h5py dataset, or None
-        when nothing is stored). None when the spool cannot be used: it failed, its
-        calibration is not that of the final ``meta``, or it has not the journal's
+        """What the NWB writer may copy: ``{column: spec}``, each spec an encoding as in the
+        file's document plus ``stored`` (a :class:`SpooledChunks`, or None when nothing is
+        stored). None when the spool cannot be used: it failed, its calibration is not that
+        of the final ``meta``, or it has not the journal's
         ``n_rows``. Call :meth:`close` once the NWB file is written."""
-        import h5py
-
-        if self.failed is None and self._pending_rows:
-            self._write(whole_chunks=False)
+        self.complete()
         if self.failed is not None:
             self.close()
             return None
@@ -255,8 +319,9 @@ class Spool:
         if not same_cal or n_rows != self.n_rows:
             self.close()
             return None
-        self._file.close()
-        self._file = h5py.File(self.path, "r")
+        for column in self.columns:
+            if column.stored is not None:
+                column.stored.close()
         e_changed = {
             e.get("element")
             for e in events
@@ -274,12 +339,12 @@ class Spool:
         return out
 
     def _spec(self, column: _Column) -> dict | None:
-        dataset = None
-        if column.encoding not in ("derived_current", "counter_gaps"):
-            dataset = self._file[column.name.replace("/", "|")]
-            if dataset.shape != (self.n_rows,):
-                return None
-        spec: dict[str, Any] = {"encoding": column.encoding, "dataset": dataset}
+        stored = column.stored
+        if column.encoding not in ("derived_current", "counter_gaps") and (
+            stored is None or stored.rows != self.n_rows
+        ):
+            return None
+        spec: dict[str, Any] = {"encoding": column.encoding, "stored": stored}
         if column.encoding == "uint":
             spec["unknown"] = _UINT8_TOP if column.has_nan else None
         elif column.encoding == "derived_current":
@@ -293,8 +358,8 @@ class Spool:
         return spec
 
     def close(self) -> None:
-        """Close and delete the spool file (its datasets are in the NWB file, or unused)."""
-        with contextlib.suppress(Exception):
-            self._file.close()
-        with contextlib.suppress(OSError):
-            self.path.unlink()
+        """Delete the spool (its chunks are in the NWB file, or unused)."""
+        for column in self.columns:
+            if column.stored is not None:
+                column.stored.close()
+        shutil.rmtree(self.path, ignore_errors=True)
