@@ -527,7 +527,13 @@ def convert_journal(
         raise NwbError(f"cannot convert {journal}: {exc}") from exc
     try:
         spooled = spool.finish(data.meta, data.n_samples, data.events) if spool else None
-        write_nwb(out, data, overwrite=True, spooled=spooled)
+        try:
+            write_nwb(out, data, overwrite=True, spooled=spooled)
+        except Exception:
+            if not spooled:
+                raise
+            # Whatever went wrong with the spooled chunks, the journal has every column.
+            write_nwb(out, data, overwrite=True)
     finally:
         if spool is not None:
             spool.close()

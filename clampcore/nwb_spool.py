@@ -100,6 +100,7 @@ class SpooledChunks:
         return H5DataIO(
             data=None,
             shape=(self.rows,),
+            maxshape=(None,),  # HDF5 allows a chunk longer than a short run only so
             dtype=self.dtype,
             chunks=(ns.CHUNK_ROWS,),
             shuffle=True,

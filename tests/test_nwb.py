@@ -594,3 +594,65 @@ def test_a_spool_that_failed_or_missed_rows_is_not_used(tmp_path, small_chunks):
     convert_journal(journal, tmp_path / "ref.nwb")
     for k in range(2):
         _same_recording(tmp_path / f"{k}.nwb", tmp_path / "ref.nwb")
+
+
+def test_recover_rebuilds_exact_counts_for_any_board(tmp_path):
+    """A crashed journal of a board with 12-bit +-5 V ADC and 14-bit +-2.5 V DAC, whose
+    HELLO the recorder stored in the journal's header: `recover` stores V and I as that
+    board's counts. References: the board's counts themselves (V made from them by the
+    board-side arithmetic, clampcore.calibration) and the NWB rule value = data x
+    conversion + offset read with h5py only. Without the description, V is kept as floats."""
+    from clampcore.calibration import Converter, counts_to_mV
+    from clampcore.nwb import convert_journal
+
+    hello = {  # PROTOCOL.md §4.1: ranges in µV
+        "identity": "bench board",
+        "adc_bits": 12,
+        "adc_min_uV": -5_000_000,
+        "adc_max_uV": 5_000_000,
+        "dac_bits": 14,
+        "dac_min_uV": -2_500_000,
+        "dac_max_uV": 2_500_000,
+    }
+    amplifier = dict(_AMPLIFIER, vm_offset_mV=1.5, liquid_junction_mV=7.0)
+    conv = conversion_array(Converter(12, -5.0, 5.0), Converter(14, -2.5, 2.5), amplifier)
+    rng = np.random.default_rng(8)
+    adc = rng.integers(1000, 3000, 4000)
+    v_mV = np.array([counts_to_mV(conv, float(c)) for c in adc])
+    dac = rng.integers(0, 2**14, 4000)
+    i_pA = np.array([counts_to_pA(conv, float(c)) for c in dac])
+    for described in (True, False):
+        meta = {
+            "rate_hz": 10000.0,
+            "session_start": START,
+            "source": "/dev/ttyACM0",
+            "experiment": {"amplifier": amplifier},
+        }
+        path = tmp_path / f"{described}.journal"
+        journal = Journal(path, ["v_mV", "i_pA"], meta)
+        if described:
+            journal.describe_board(hello)  # as the recorder does before the first rows
+        journal.append(np.column_stack([v_mV, i_pA]))
+        journal.flush()  # then the crash: no final.json
+        del journal
+        out = tmp_path / f"{described}.nwb"
+        convert_journal(path, out, keep_journal=True)
+        back = read_nwb_summary(out)
+        assert not back["complete"]
+        if not described:
+            assert back["storage"]["v_mV"]["encoding"] == "float64"
+            np.testing.assert_array_equal(back["v_mV"], v_mV)
+            continue
+        assert back["storage"]["v_mV"]["encoding"] == "adc_counts"
+        assert back["storage"]["i_pA"]["encoding"] == "dac_counts"
+        with h5py.File(out, "r") as f:  # reference: NWB's conversion/offset rule, h5py only
+            v = f["acquisition/membrane_potential/data"]
+            i = f["stimulus/presentation/command_current/data"]
+            np.testing.assert_array_equal(v[:], adc)
+            np.testing.assert_array_equal(i[:], dac)
+            volts = v[:] * v.attrs["conversion"] + v.attrs["offset"]
+            np.testing.assert_allclose(volts * 1e3, v_mV, rtol=0, atol=1e-9)
+            amperes = i[:] * i.attrs["conversion"] + i.attrs["offset"]
+            np.testing.assert_allclose(amperes * 1e12, i_pA, rtol=0, atol=1e-6)
+        np.testing.assert_array_equal(back["v_mV"], v_mV)  # bit for bit
+        assert validate_nwb(out) == []  # reference: pynwb's validator
