@@ -527,17 +527,13 @@ def convert_journal(
         raise NwbError(f"cannot convert {journal}: {exc}") from exc
     try:
         spooled = spool.finish(data.meta, data.n_samples, data.events) if spool else None
-        try:
-            write_nwb(out, data, overwrite=True, spooled=spooled)
-        except Exception:
-            if not spooled:
-                raise
+        problems = _write_and_check(out, data, spooled)
+        if problems and spooled:
             # Whatever went wrong with the spooled chunks, the journal has every column.
-            write_nwb(out, data, overwrite=True)
+            problems = _write_and_check(out, data, None)
     finally:
         if spool is not None:
             spool.close()
-    problems = check_against_journal(out, data)
     if problems:
         raise NwbError(
             f"{out} does not match its journal ({'; '.join(problems[:3])}): kept both {out} "
@@ -547,6 +543,18 @@ def convert_journal(
         return out, False
     shutil.rmtree(journal, ignore_errors=True)
     return out, not journal.exists()
+
+
+def _write_and_check(out: Path, data: JournalData, spooled: dict | None) -> list[str]:
+    """Write ``out`` and read it back; the problems found (with the spool's chunks, a failure
+    to write or read is one too, so that the caller can write again from the journal)."""
+    try:
+        write_nwb(out, data, overwrite=True, spooled=spooled)
+        return check_against_journal(out, data)
+    except Exception as exc:
+        if not spooled:
+            raise
+        return [f"the spooled columns failed: {type(exc).__name__}: {exc}"]
 
 
 def check_against_journal(path: Path, data: JournalData) -> list[str]:

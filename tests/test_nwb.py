@@ -575,14 +575,16 @@ def test_a_column_that_stops_fitting_comes_from_the_journal(tmp_path, small_chun
     assert storage["g_nS/extra_leak"]["encoding"] == "float32"
 
 
-def test_a_spool_that_failed_or_missed_rows_is_not_used(tmp_path, small_chunks):
-    """A spool that raised (here: a block of the wrong width) or holds fewer rows than the
-    journal is ignored: the file is the stop's conversion, nothing is lost."""
+def test_a_spool_that_failed_or_missed_rows_is_not_used(tmp_path, small_chunks, monkeypatch):
+    """A spool that raised (here: a block of the wrong width), holds fewer rows than the
+    journal or whose chunks were damaged is not used: the file is the stop's conversion."""
+    import clampcore.nwb as nwb
     from clampcore.nwb import convert_journal
     from clampcore.nwb_spool import Spool
 
     journal, names, rows = _spool_run(tmp_path, "a.journal")
-    for k, spoil in enumerate(("width", "rows")):
+    spoils = ("width", "rows", "corrupt")
+    for k, spoil in enumerate(spoils):
         target = tmp_path / f"{spoil}.journal"
         shutil.copytree(journal, target)
         spool = Spool(target, names, read_journal(target).meta)
@@ -590,9 +592,25 @@ def test_a_spool_that_failed_or_missed_rows_is_not_used(tmp_path, small_chunks):
         if spoil == "width":
             spool.append(np.zeros((small_chunks, 3)))
             assert spool.failed is not None
+        if spoil == "corrupt":  # a damaged chunk of V: zlib cannot inflate it
+            chunks = spool.path / f"{names.index('v_mV')}.chunks"
+            raw = bytearray(chunks.read_bytes())
+            raw[10:60] = bytes(50)
+            chunks.write_bytes(bytes(raw))
+        calls: list[bool] = []
+
+        def spy(*a: Any, calls: list[bool] = calls, real: Any = nwb._write_and_check) -> Any:
+            calls.append(a[2] is not None)  # with the spool's chunks or not
+            return real(*a)
+
+        monkeypatch.setattr(nwb, "_write_and_check", spy)
         convert_journal(target, tmp_path / f"{k}.nwb", spool=spool)
+        monkeypatch.undo()
+        monkeypatch.setattr(nwb.ns, "CHUNK_ROWS", small_chunks)
+        # The damaged chunks were written, failed the read-back, and the journal served.
+        assert calls == ([True, False] if spoil == "corrupt" else [False])
     convert_journal(journal, tmp_path / "ref.nwb")
-    for k in range(2):
+    for k in range(len(spoils)):
         _same_recording(tmp_path / f"{k}.nwb", tmp_path / "ref.nwb")
 
 
