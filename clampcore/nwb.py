@@ -54,7 +54,15 @@ import numpy as np
 
 from clampcore import nwb_series as ns
 from clampcore.journal import JournalData, JournalError, check_meta, read_journal
-from clampcore.nwb_metadata import SIMULATED_SOURCES, dumps, new_nwbfile, nwb_name, text, unique
+from clampcore.nwb_metadata import (
+    SIMULATED_SOURCES,
+    dumps,
+    new_nwbfile,
+    nwb_name,
+    read_metadata,
+    text,
+    unique,
+)
 from clampcore.nwb_metadata import version as _version
 from clampcore.nwb_tables import (
     add_counter_gaps,
@@ -296,35 +304,15 @@ class _Writer:
         )
 
     def add_column(self, name: str, values: np.ndarray) -> None:
+        """Store one journal column (spikes excepted) by its kind."""
         kind, element = ns.column_kind(name)
         values = np.asarray(values, dtype=np.float64)  # the journal's columns: no copy
-        comment = f"clampcore journal column '{name}'"
-        f32 = "float32" if self.compact else "float64"
         if kind == "v":
             self.response = self._clamp(kind, name, values)
         elif kind == "i":
             self.stimulus = self._clamp(kind, name, values)
         elif kind in ("g", "ie"):
-            derived = self._derivable(element, values) if kind == "ie" else None
-            if derived is not None:
-                self.columns[name] = derived
-                return
-            stem, unit, unit_in_si, short = (
-                ("conductance", "siemens", _NS_IN_S, "nS")
-                if kind == "g"
-                else ("current", "amperes", _PA_IN_A, "pA")
-            )
-            path = self._series(
-                _VC_MODULE,
-                f"{stem}_{nwb_name(element)}",
-                self._f32(name, values),
-                unit=unit,
-                conversion=unit_in_si,  # data in the journal's nS or pA
-                description=f"{stem.capitalize()} of virtual element '{element}' ({f32} {short}).",
-                comments=comment,
-                **self.common,
-            )
-            self.columns[name] = {"path": path, "encoding": f32}
+            self._add_element(name, kind, element, values)
         elif kind == "counter" and self.compact and (gaps := self._counter_gaps(name, values)):
             first, rows, missing = gaps
             self.first_counter = first
@@ -332,9 +320,41 @@ class _Writer:
             if rows.size:
                 add_counter_gaps(mod, first, rows, missing)
             self.columns[name] = {"path": None, "encoding": "counter_gaps", "first": first}
-        elif kind == "turn":
+        else:
+            self._add_timing(name, kind, values)
+
+    def _add_element(self, name: str, kind: str, element: str, values: np.ndarray) -> None:
+        """An element's conductance (``kind`` "g") or current ("ie", derived when it can be)."""
+        derived = self._derivable(element, values) if kind == "ie" else None
+        if derived is not None:
+            self.columns[name] = derived
+            return
+        f32 = "float32" if self.compact else "float64"
+        stem, unit, unit_in_si, short = (
+            ("conductance", "siemens", _NS_IN_S, "nS")
+            if kind == "g"
+            else ("current", "amperes", _PA_IN_A, "pA")
+        )
+        path = self._series(
+            _VC_MODULE,
+            f"{stem}_{nwb_name(element)}",
+            self._f32(name, values),
+            unit=unit,
+            conversion=unit_in_si,  # data in the journal's nS or pA
+            description=f"{stem.capitalize()} of virtual element '{element}' ({f32} {short}).",
+            comments=f"clampcore journal column '{name}'",
+            **self.common,
+        )
+        self.columns[name] = {"path": path, "encoding": f32}
+
+    def _add_timing(self, name: str, kind: str, values: np.ndarray) -> None:
+        """A loop-timing column: the turnaround in float32 µs, the rest as small integers."""
+        module = (_TIMING_MODULE, _timing_description(None))
+        comment = f"clampcore journal column '{name}'"
+        if kind == "turn":
+            f32 = "float32" if self.compact else "float64"
             path = self._series(
-                (_TIMING_MODULE, _timing_description(None)),
+                module,
                 "host_turnaround",
                 self._f32(name, values),
                 unit="seconds",
@@ -345,26 +365,21 @@ class _Writer:
                 **self.common,
             )
             self.columns[name] = {"path": path, "encoding": f32}
-        elif kind in ("latency", "counter", "other"):
-            array, spec, note = self._small_ints(name, values)
-            if kind == "latency":
-                base, unit = "latency_samples", "samples"
-                what = (
-                    "Loop latency: samples between a sample and the one from which its command "
-                    "was in force, as reported by the board."
-                )
-            else:
-                base, unit, what = nwb_name(name), "n/a", f"Per-sample loop value '{name}'."
-            path = self._series(
-                (_TIMING_MODULE, _timing_description(None)),
-                base,
-                array,
-                unit=unit,
-                description=what + note,
-                comments=comment,
-                **self.common,
+            return
+        array, spec, note = self._small_ints(name, values)
+        if kind == "latency":
+            base, unit = "latency_samples", "samples"
+            what = (
+                "Loop latency: samples between a sample and the one from which its command "
+                "was in force, as reported by the board."
             )
-            self.columns[name] = {"path": path, **spec}
+        else:
+            base, unit, what = nwb_name(name), "n/a", f"Per-sample loop value '{name}'."
+        path = self._series(
+            module, base, array, unit=unit, description=what + note, comments=comment,
+            **self.common,
+        )  # fmt: skip
+        self.columns[name] = {"path": path, **spec}
 
     def _counter_gaps(self, name: str, values: np.ndarray) -> tuple | None:
         spec = self._spooled(name, "counter_gaps")
@@ -571,7 +586,7 @@ def check_against_journal(path: Path, data: JournalData) -> list[str]:
     try:
         io = NWBHDF5IO(str(path), mode="r")
         nwbfile = io.read()
-        document = json.loads(nwbfile.data_collection or "")
+        document = _document(nwbfile, path)
     except Exception as exc:  # not readable as our NWB: that is the problem found
         return [f"cannot read {path} back: {type(exc).__name__}: {exc}"]
     problems: list[str] = []
@@ -721,6 +736,17 @@ def _read_columns(
     return columns, spike_times
 
 
+def _document(nwbfile: Any, path: Path) -> dict:
+    """The file's JSON document of the recording (``data_collection``), checked to be ours."""
+    try:
+        document = json.loads(nwbfile.data_collection or "")
+    except json.JSONDecodeError:
+        document = None
+    if not isinstance(document, dict) or document.get(_FORMAT_KEY) not in _READABLE_VERSIONS:
+        raise NwbError(f"{path} was not written by clampcore (no recording metadata)")
+    return document
+
+
 def read_nwb_summary(path: Path) -> dict:
     """Read a clampcore NWB file back with pynwb, in the journal's units.
 
@@ -745,12 +771,7 @@ def read_nwb_summary(path: Path) -> dict:
         raise NwbError(f"cannot read {path} as NWB: {exc}") from exc
     with io:
         nwbfile = io.read()
-        try:
-            document = json.loads(nwbfile.data_collection or "")
-        except json.JSONDecodeError:
-            document = None
-        if not isinstance(document, dict) or document.get(_FORMAT_KEY) not in _READABLE_VERSIONS:
-            raise NwbError(f"{path} was not written by clampcore (no recording metadata)")
+        document = _document(nwbfile, path)
         meta = document["meta"]
         rate_hz = float(meta["rate_hz"])
         first_sample = int(meta.get("first_sample", 0))
@@ -762,8 +783,6 @@ def read_nwb_summary(path: Path) -> dict:
             nwbfile, storage, cal, n_samples, first_sample, rate_hz
         )
         events = read_events(nwbfile, document["event_tables"], rate_hz)
-        subject = nwbfile.subject
-        electrode = next(iter(nwbfile.icephys_electrodes.values()), None)
         summary = {
             "format_version": document[_FORMAT_KEY],
             "rate_hz": rate_hz,
@@ -782,26 +801,10 @@ def read_nwb_summary(path: Path) -> dict:
             "summary": meta.get("summary", {}),
             "meta": meta,
             "source": meta.get("source"),
-            "experiment_text": nwbfile.stimulus_notes,
             "complete": bool(document["journal_complete"]),
             "problems": list(document["journal_problems"]),
             "placeholders": list(document["placeholders"]),
-            "subject": {
-                key: getattr(subject, key, None)
-                for key in ("subject_id", "species", "age", "sex", "description")
-            },
-            "session": {
-                "description": nwbfile.session_description,
-                "session_id": nwbfile.session_id,
-                "session_start": nwbfile.session_start_time.isoformat(),
-                "experimenter": list(nwbfile.experimenter or []),
-                "lab": nwbfile.lab,
-                "institution": nwbfile.institution,
-            },
-            "electrode": {
-                key: getattr(electrode, key, None)
-                for key in ("description", "location", "resistance", "cell_id")
-            },
+            **read_metadata(nwbfile),
         }
     return summary
 
