@@ -238,6 +238,7 @@ def _loop_process(
         link = BoardLink(port)
         hello = link.handshake()
         report["board"] = {k: getattr(hello, k) for k in hello.__dataclass_fields__}
+        shared.publish_board(report["board"])  # the journal's header: any board's counts
         if not exp.amplifier_given and not allow_default_calibration:
             raise EngineError(
                 "refusing to start: the experiment has no [amplifier] section, so ADC/DAC counts "

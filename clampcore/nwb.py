@@ -54,7 +54,15 @@ import numpy as np
 
 from clampcore import nwb_series as ns
 from clampcore.journal import JournalData, JournalError, check_meta, read_journal
-from clampcore.nwb_metadata import SIMULATED_SOURCES, dumps, new_nwbfile, nwb_name, text, unique
+from clampcore.nwb_metadata import (
+    SIMULATED_SOURCES,
+    dumps,
+    new_nwbfile,
+    nwb_name,
+    read_metadata,
+    text,
+    unique,
+)
 from clampcore.nwb_metadata import version as _version
 from clampcore.nwb_tables import (
     add_counter_gaps,
@@ -130,22 +138,6 @@ def _timing_description(first_counter: int | None) -> str:
     return text_
 
 
-def _column_kind(name: str) -> tuple[str, str]:
-    """``(kind, element)`` of a journal column."""
-    if name == "v_mV":
-        return "v", ""
-    if name == "i_pA":
-        return "i", ""
-    for prefix, kind in (("g_nS/", "g"), ("i_pA/", "ie"), ("spike/", "spike")):
-        if name.startswith(prefix) and len(name) > len(prefix):
-            return kind, name[len(prefix) :]
-    return {
-        "sample_counter": ("counter", ""),
-        "latency_samples": ("latency", ""),
-        "turnaround_us": ("turn", ""),
-    }.get(name, ("other", ""))
-
-
 def _check_data(data: JournalData) -> tuple[float, int, int]:
     if not isinstance(data, JournalData):
         raise NwbError(f"write_nwb needs a JournalData, got {type(data).__name__}")
@@ -196,7 +188,9 @@ def _e_changes(data: JournalData, element: str, n_rows: int) -> list[tuple[int, 
 class _Writer:
     """Builds the NWB objects of one recording (``compact=False``: the float64 layout)."""
 
-    def __init__(self, data: JournalData, compact: bool, compression: Any) -> None:
+    def __init__(
+        self, data: JournalData, compact: bool, compression: Any, spooled: dict | None = None
+    ) -> None:
         from pynwb import TimeSeries
 
         self.TimeSeries = TimeSeries
@@ -219,6 +213,25 @@ class _Writer:
         self.taken: dict[str, set[str]] = {}
         self.first_counter: int | None = None
         self.calibration_used = False
+        # Columns the recorder already encoded and compressed (clampcore.nwb_spool).
+        self.spooled = spooled if compact and spooled else {}
+        self.fills: dict[str, Any] = {}  # column -> its spooled chunks, written after the file
+
+    def _spooled(self, name: str, encoding: str) -> dict | None:
+        spec = self.spooled.get(name)
+        return spec if spec is not None and spec["encoding"] == encoding else None
+
+    def _placeholder(self, name: str, spec: dict) -> Any:
+        """The empty dataset a spooled column's chunks go into (:func:`write_nwb`)."""
+        self.fills[name] = spec["stored"]
+        return spec["stored"].placeholder()
+
+    def _f32(self, name: str, values: np.ndarray) -> Any:
+        """A float32 column: the spooled dataset, else the journal's values as float32."""
+        spec = self._spooled(name, "float32")
+        if spec is not None:
+            return self._placeholder(name, spec)
+        return values.astype(np.float32 if self.compact else np.float64)
 
     def module(self, name: str, description: str) -> Any:
         if name not in self.modules:
@@ -234,8 +247,13 @@ class _Writer:
         mod.add(self.TimeSeries(name=name, data=ns.dataset(values, self.compression), **kw))
         return f"processing/{mod.name}/{name}"
 
-    def _small_ints(self, values: np.ndarray) -> tuple[np.ndarray, dict[str, Any], str]:
+    def _small_ints(self, name: str, values: np.ndarray) -> tuple[Any, dict[str, Any], str]:
         """``(data, encoding, description suffix)``: unsigned integers if they fit, else float64."""
+        spec = self._spooled(name, "uint")
+        if spec is not None:
+            unknown = spec["unknown"]
+            note = "" if unknown is None else f" {unknown} means unknown (NaN in the journal)."
+            return self._placeholder(name, spec), {"encoding": "uint", "unknown": unknown}, note
         if self.compact:
             packed = ns.smallest_uint(values)
             if packed is not None:
@@ -249,15 +267,18 @@ class _Writer:
         series on the electrode: converter counts when the calibration allows, else float64."""
         from pynwb.icephys import CurrentClampSeries, CurrentClampStimulusSeries
 
-        if kind == "v":
+        v = kind == "v"
+        scale = ns.adc_nwb_scale if v else ns.dac_nwb_scale
+        cls = CurrentClampSeries if v else CurrentClampStimulusSeries
+        group, name = ("acquisition", _V_SERIES) if v else ("stimulus", _I_SERIES)
+        spooled = self._spooled(column, "adc_counts" if v else "dac_counts")
+        if spooled is not None:
+            counts = self._placeholder(column, spooled)
+        elif v:
             counts = ns.mV_to_adc_exact(values, self.cal) if self.cal else None
-            scale, cls, group = ns.adc_nwb_scale, CurrentClampSeries, "acquisition"
-            name = _V_SERIES
         else:
             known = self.cal is not None and self.cal.dac_known
             counts = ns.pA_to_dac(values, self.cal) if known else None
-            scale, cls, group = ns.dac_nwb_scale, CurrentClampStimulusSeries, "stimulus"
-            name = _I_SERIES
         what, unit, unit_in_si, counts_text = _CLAMP_TEXT[kind]
         if counts is not None:
             conversion, offset = scale(self.cal)
@@ -283,47 +304,59 @@ class _Writer:
         )
 
     def add_column(self, name: str, values: np.ndarray) -> None:
-        kind, element = _column_kind(name)
-        values = np.asarray(values, dtype=np.float64)
-        comment = f"clampcore journal column '{name}'"
-        f32 = "float32" if self.compact else "float64"
+        """Store one journal column (spikes excepted) by its kind."""
+        kind, element = ns.column_kind(name)
+        values = np.asarray(values, dtype=np.float64)  # the journal's columns: no copy
         if kind == "v":
             self.response = self._clamp(kind, name, values)
         elif kind == "i":
             self.stimulus = self._clamp(kind, name, values)
         elif kind in ("g", "ie"):
-            derived = self._derivable(element, values) if kind == "ie" else None
-            if derived is not None:
-                self.columns[name] = derived
-                return
-            stem, unit, unit_in_si, short = (
-                ("conductance", "siemens", _NS_IN_S, "nS")
-                if kind == "g"
-                else ("current", "amperes", _PA_IN_A, "pA")
-            )
-            path = self._series(
-                _VC_MODULE,
-                f"{stem}_{nwb_name(element)}",
-                values.astype(f32),
-                unit=unit,
-                conversion=unit_in_si,  # data in the journal's nS or pA
-                description=f"{stem.capitalize()} of virtual element '{element}' ({f32} {short}).",
-                comments=comment,
-                **self.common,
-            )
-            self.columns[name] = {"path": path, "encoding": f32}
-        elif kind == "counter" and self.compact and (gaps := ns.counter_gaps(values)):
+            self._add_element(name, kind, element, values)
+        elif kind == "counter" and self.compact and (gaps := self._counter_gaps(name, values)):
             first, rows, missing = gaps
             self.first_counter = first
             mod = self.module(_TIMING_MODULE, _timing_description(first))
             if rows.size:
                 add_counter_gaps(mod, first, rows, missing)
             self.columns[name] = {"path": None, "encoding": "counter_gaps", "first": first}
-        elif kind == "turn":
+        else:
+            self._add_timing(name, kind, values)
+
+    def _add_element(self, name: str, kind: str, element: str, values: np.ndarray) -> None:
+        """An element's conductance (``kind`` "g") or current ("ie", derived when it can be)."""
+        derived = self._derivable(element, values) if kind == "ie" else None
+        if derived is not None:
+            self.columns[name] = derived
+            return
+        f32 = "float32" if self.compact else "float64"
+        stem, unit, unit_in_si, short = (
+            ("conductance", "siemens", _NS_IN_S, "nS")
+            if kind == "g"
+            else ("current", "amperes", _PA_IN_A, "pA")
+        )
+        path = self._series(
+            _VC_MODULE,
+            f"{stem}_{nwb_name(element)}",
+            self._f32(name, values),
+            unit=unit,
+            conversion=unit_in_si,  # data in the journal's nS or pA
+            description=f"{stem.capitalize()} of virtual element '{element}' ({f32} {short}).",
+            comments=f"clampcore journal column '{name}'",
+            **self.common,
+        )
+        self.columns[name] = {"path": path, "encoding": f32}
+
+    def _add_timing(self, name: str, kind: str, values: np.ndarray) -> None:
+        """A loop-timing column: the turnaround in float32 µs, the rest as small integers."""
+        module = (_TIMING_MODULE, _timing_description(None))
+        comment = f"clampcore journal column '{name}'"
+        if kind == "turn":
+            f32 = "float32" if self.compact else "float64"
             path = self._series(
-                (_TIMING_MODULE, _timing_description(None)),
+                module,
                 "host_turnaround",
-                values.astype(f32),
+                self._f32(name, values),
                 unit="seconds",
                 conversion=_US_IN_S,  # data in µs
                 description="Host turnaround from frame arrival to command written "
@@ -332,31 +365,41 @@ class _Writer:
                 **self.common,
             )
             self.columns[name] = {"path": path, "encoding": f32}
-        elif kind in ("latency", "counter", "other"):
-            array, spec, note = self._small_ints(values)
-            if kind == "latency":
-                base, unit = "latency_samples", "samples"
-                what = (
-                    "Loop latency: samples between a sample and the one from which its command "
-                    "was in force, as reported by the board."
-                )
-            else:
-                base, unit, what = nwb_name(name), "n/a", f"Per-sample loop value '{name}'."
-            path = self._series(
-                (_TIMING_MODULE, _timing_description(None)),
-                base,
-                array,
-                unit=unit,
-                description=what + note,
-                comments=comment,
-                **self.common,
+            return
+        array, spec, note = self._small_ints(name, values)
+        if kind == "latency":
+            base, unit = "latency_samples", "samples"
+            what = (
+                "Loop latency: samples between a sample and the one from which its command "
+                "was in force, as reported by the board."
             )
-            self.columns[name] = {"path": path, **spec}
+        else:
+            base, unit, what = nwb_name(name), "n/a", f"Per-sample loop value '{name}'."
+        path = self._series(
+            module, base, array, unit=unit, description=what + note, comments=comment,
+            **self.common,
+        )  # fmt: skip
+        self.columns[name] = {"path": path, **spec}
+
+    def _counter_gaps(self, name: str, values: np.ndarray) -> tuple | None:
+        spec = self._spooled(name, "counter_gaps")
+        if spec is not None:
+            return spec["first"], spec["rows"], spec["missing"]
+        return ns.counter_gaps(values)
 
     def _derivable(self, element: str, values: np.ndarray) -> dict | None:
         """The derivation spec when ``-g (V - E)`` reproduces this current, else None."""
-        if not self.compact:
+        if not self.compact or self._spooled(f"i_pA/{element}", "float32") is not None:
             return None
+        spec = self._spooled(f"i_pA/{element}", "derived_current")
+        if spec is not None:
+            return {
+                "path": None,
+                "encoding": "derived_current",
+                "conductance": f"g_nS/{element}",
+                "e_mV": spec["e_mV"],
+                "e_changes": [],
+            }
         g = self.data.columns.get(f"g_nS/{element}")
         v = self.data.columns.get("v_mV")
         e0 = _elements(self.meta).get(element, {}).get("e_mV")
@@ -381,7 +424,7 @@ class _Writer:
         # The counter first: the timing module's description says how to rebuild it.
         order = sorted(self.data.columns.items(), key=lambda kv: kv[0] != "sample_counter")
         for name, values in order:
-            if _column_kind(name)[0] == "spike":
+            if ns.column_kind(name)[0] == "spike":
                 spikes[name] = values
             else:
                 self.add_column(name, values)
@@ -425,6 +468,7 @@ def write_nwb(
     overwrite: bool = False,
     compact: bool = True,
     compression: tuple[str, int | None] | None = ns.COMPRESSION,
+    spooled: dict[str, dict] | None = None,
 ) -> None:
     """Write ``data`` (from :func:`~clampcore.journal.read_journal`) as an NWB file at ``path``.
 
@@ -433,6 +477,7 @@ def write_nwb(
     ``overwrite``. ``compact=False`` writes the first layout (every series float64,
     uncompressed), kept for comparison (``bench/bench_recording.py``); ``compression``
     is ``(filter, level)`` for HDF5 (``("gzip", 1)``, ``("lzf", None)``) or None.
+    ``spooled`` are columns encoded while recording (``Spool.finish``), copied as stored.
     """
     from pynwb import NWBHDF5IO
 
@@ -441,19 +486,34 @@ def write_nwb(
         raise NwbError(f"{path} exists: choose another name or pass overwrite=True")
     if path.is_dir():
         raise NwbError(f"{path} is a directory")
-    nwbfile = _Writer(data, compact, compression).build()
+    writer = _Writer(data, compact, compression, spooled)
+    nwbfile = writer.build()
     tmp = path.with_name(f"{path.stem}.partial{path.suffix or '.nwb'}")
     try:
         if tmp.exists():
             tmp.unlink()
         with NWBHDF5IO(str(tmp), mode="w") as io:
             io.write(nwbfile)
+        if writer.fills:
+            _fill_spooled(tmp, writer)
         os.replace(tmp, path)
     except OSError as exc:
         raise NwbError(f"cannot write {path}: {exc}") from exc
     finally:
         if tmp.exists():
             tmp.unlink()
+
+
+def _fill_spooled(path: Path, writer: _Writer) -> None:
+    """Write the spooled columns' compressed chunks into their empty datasets, as stored."""
+    import h5py
+
+    with h5py.File(path, "r+") as f:
+        for name, stored in writer.fills.items():
+            where = writer.columns[name]["path"]
+            if where.startswith("stimulus/"):  # NWB keeps stimuli in /stimulus/presentation
+                where = "stimulus/presentation/" + where.partition("/")[2]
+            stored.fill(f[f"{where}/data"])
 
 
 def journal_to_nwb(journal: Path, out: Path, *, overwrite: bool = False) -> Path:
@@ -466,17 +526,29 @@ def journal_to_nwb(journal: Path, out: Path, *, overwrite: bool = False) -> Path
     return Path(out)
 
 
-def convert_journal(journal: Path, out: Path, *, keep_journal: bool = False) -> tuple[Path, bool]:
+def convert_journal(
+    journal: Path, out: Path, *, keep_journal: bool = False, spool: Any = None
+) -> tuple[Path, bool]:
     """Journal -> NWB, read back and checked against the journal; then the journal is removed
     unless ``keep_journal``. Returns ``(out, journal_removed)``. A failed check raises
-    :class:`NwbError` and keeps both files."""
+    :class:`NwbError` and keeps both files. ``spool`` (a :class:`clampcore.nwb_spool.Spool`
+    fed while recording) gives the columns it encoded; the rest come from the journal."""
     journal, out = Path(journal), Path(out)
     try:
         data = read_journal(journal)
     except JournalError as exc:
+        if spool is not None:
+            spool.close()
         raise NwbError(f"cannot convert {journal}: {exc}") from exc
-    write_nwb(out, data, overwrite=True)
-    problems = check_against_journal(out, data)
+    try:
+        spooled = spool.finish(data.meta, data.n_samples, data.events) if spool else None
+        problems = _write_and_check(out, data, spooled)
+        if problems and spooled:
+            # Whatever went wrong with the spooled chunks, the journal has every column.
+            problems = _write_and_check(out, data, None)
+    finally:
+        if spool is not None:
+            spool.close()
     if problems:
         raise NwbError(
             f"{out} does not match its journal ({'; '.join(problems[:3])}): kept both {out} "
@@ -486,6 +558,18 @@ def convert_journal(journal: Path, out: Path, *, keep_journal: bool = False) -> 
         return out, False
     shutil.rmtree(journal, ignore_errors=True)
     return out, not journal.exists()
+
+
+def _write_and_check(out: Path, data: JournalData, spooled: dict | None) -> list[str]:
+    """Write ``out`` and read it back; the problems found (with the spool's chunks, a failure
+    to write or read is one too, so that the caller can write again from the journal)."""
+    try:
+        write_nwb(out, data, overwrite=True, spooled=spooled)
+        return check_against_journal(out, data)
+    except Exception as exc:
+        if not spooled:
+            raise
+        return [f"the spooled columns failed: {type(exc).__name__}: {exc}"]
 
 
 def check_against_journal(path: Path, data: JournalData) -> list[str]:
@@ -502,7 +586,7 @@ def check_against_journal(path: Path, data: JournalData) -> list[str]:
     try:
         io = NWBHDF5IO(str(path), mode="r")
         nwbfile = io.read()
-        document = json.loads(nwbfile.data_collection or "")
+        document = _document(nwbfile, path)
     except Exception as exc:  # not readable as our NWB: that is the problem found
         return [f"cannot read {path} back: {type(exc).__name__}: {exc}"]
     problems: list[str] = []
@@ -558,7 +642,7 @@ def compact_bytes_per_row(columns: list[str], adc_bits: int = 16, dac_bits: int 
     """
     total = 0
     for name in columns:
-        kind, _ = _column_kind(name)
+        kind, _ = ns.column_kind(name)
         if kind == "v":
             total += 2 if adc_bits <= 16 else 4
         elif kind == "i":
@@ -583,7 +667,7 @@ def _in_unit(series: Any, scale: float) -> np.ndarray:
 
 
 def _journal_scale(column: str) -> float:
-    kind, _ = _column_kind(column)
+    kind, _ = ns.column_kind(column)
     return {"v": _MV_IN_V, "i": _PA_IN_A, "g": _NS_IN_S, "ie": _PA_IN_A, "turn": _US_IN_S}.get(
         kind, 1.0
     )
@@ -608,7 +692,7 @@ def _storage(document: dict) -> dict[str, dict]:
         if isinstance(spec, dict):
             out[column] = spec
         else:
-            kind = "spikes" if _column_kind(column)[0] == "spike" else "float64"
+            kind = "spikes" if ns.column_kind(column)[0] == "spike" else "float64"
             out[column] = {"path": spec, "encoding": kind}
     return out
 
@@ -623,7 +707,7 @@ def _read_columns(
         encoding, where = spec["encoding"], spec.get("path")
         if encoding == "spikes":
             samples = read_spike_samples(nwbfile, where)
-            spike_times[_column_kind(column)[1]] = samples / rate_hz
+            spike_times[ns.column_kind(column)[1]] = samples / rate_hz
             flags = np.zeros(n, dtype=np.float64)
             flags[samples - first_sample] = 1.0
             columns[column] = flags
@@ -652,6 +736,17 @@ def _read_columns(
     return columns, spike_times
 
 
+def _document(nwbfile: Any, path: Path) -> dict:
+    """The file's JSON document of the recording (``data_collection``), checked to be ours."""
+    try:
+        document = json.loads(nwbfile.data_collection or "")
+    except json.JSONDecodeError:
+        document = None
+    if not isinstance(document, dict) or document.get(_FORMAT_KEY) not in _READABLE_VERSIONS:
+        raise NwbError(f"{path} was not written by clampcore (no recording metadata)")
+    return document
+
+
 def read_nwb_summary(path: Path) -> dict:
     """Read a clampcore NWB file back with pynwb, in the journal's units.
 
@@ -676,12 +771,7 @@ def read_nwb_summary(path: Path) -> dict:
         raise NwbError(f"cannot read {path} as NWB: {exc}") from exc
     with io:
         nwbfile = io.read()
-        try:
-            document = json.loads(nwbfile.data_collection or "")
-        except json.JSONDecodeError:
-            document = None
-        if not isinstance(document, dict) or document.get(_FORMAT_KEY) not in _READABLE_VERSIONS:
-            raise NwbError(f"{path} was not written by clampcore (no recording metadata)")
+        document = _document(nwbfile, path)
         meta = document["meta"]
         rate_hz = float(meta["rate_hz"])
         first_sample = int(meta.get("first_sample", 0))
@@ -693,8 +783,6 @@ def read_nwb_summary(path: Path) -> dict:
             nwbfile, storage, cal, n_samples, first_sample, rate_hz
         )
         events = read_events(nwbfile, document["event_tables"], rate_hz)
-        subject = nwbfile.subject
-        electrode = next(iter(nwbfile.icephys_electrodes.values()), None)
         summary = {
             "format_version": document[_FORMAT_KEY],
             "rate_hz": rate_hz,
@@ -713,26 +801,10 @@ def read_nwb_summary(path: Path) -> dict:
             "summary": meta.get("summary", {}),
             "meta": meta,
             "source": meta.get("source"),
-            "experiment_text": nwbfile.stimulus_notes,
             "complete": bool(document["journal_complete"]),
             "problems": list(document["journal_problems"]),
             "placeholders": list(document["placeholders"]),
-            "subject": {
-                key: getattr(subject, key, None)
-                for key in ("subject_id", "species", "age", "sex", "description")
-            },
-            "session": {
-                "description": nwbfile.session_description,
-                "session_id": nwbfile.session_id,
-                "session_start": nwbfile.session_start_time.isoformat(),
-                "experimenter": list(nwbfile.experimenter or []),
-                "lab": nwbfile.lab,
-                "institution": nwbfile.institution,
-            },
-            "electrode": {
-                key: getattr(electrode, key, None)
-                for key in ("description", "location", "resistance", "cell_id")
-            },
+            **read_metadata(nwbfile),
         }
     return summary
 

@@ -13,9 +13,9 @@ taxonomy's node for things made rather than sampled from an organism), and the
 description says plainly that there is no animal; a species the experiment file
 gives in that form is kept, any other text moves into the description.
 
-Public names: ``new_nwbfile``, ``SIMULATED_SOURCES``, ``SYNTHETIC_SPECIES``, and the small
-text helpers the writer shares (``dumps``, ``nwb_name``, ``unique``, ``text``, ``table``,
-``flatten_numbers``, ``version``).
+Public names: ``new_nwbfile``, ``read_metadata``, ``SIMULATED_SOURCES``,
+``SYNTHETIC_SPECIES``, and the small text helpers the writer shares (``dumps``,
+``nwb_name``, ``unique``, ``text``, ``table``, ``flatten_numbers``, ``version``).
 """
 
 from __future__ import annotations
@@ -175,17 +175,21 @@ def new_nwbfile(meta: Mapping[str, Any], complete: bool, placeholders: list[str]
 
     Placeholders used are appended to ``placeholders``.
     """
-    from pynwb import NWBFile
-    from pynwb.device import Device
-    from pynwb.icephys import IntracellularElectrode
-
     source = text(meta.get("source")) or "unspecified source"
     simulated = source in SIMULATED_SOURCES
-    session = table(meta, "session")
-    electrode_meta = table(meta, "electrode")
-    amplifier = table(meta, "amplifier")
-    written_by = version()
+    nwbfile = _session(meta, source, complete, placeholders)
+    nwbfile.subject = _subject(meta, simulated, placeholders)
+    device = _devices(nwbfile, meta, source)
+    electrode = _electrode(nwbfile, meta, device, simulated, placeholders)
+    return nwbfile, electrode
 
+
+def _session(meta: Mapping[str, Any], source: str, complete: bool, placeholders: list[str]) -> Any:
+    """The NWBFile with the session's metadata (experiment file text in stimulus_notes)."""
+    from pynwb import NWBFile
+
+    session = table(meta, "session")
+    written_by = version()
     description = text(session.get("description"))
     if description is None:
         description = f"Dynamic-clamp recording made with clampcore ({source})."
@@ -193,8 +197,7 @@ def new_nwbfile(meta: Mapping[str, Any], complete: bool, placeholders: list[str]
     experiment_text = meta.get("experiment_text")
     if not isinstance(experiment_text, str) or not experiment_text.strip():
         experiment_text = None
-
-    nwbfile = NWBFile(
+    return NWBFile(
         session_description=description,
         identifier=str(uuid.uuid4()),
         session_start_time=_dt.datetime.fromisoformat(meta["session_start"]),
@@ -218,8 +221,13 @@ def new_nwbfile(meta: Mapping[str, Any], complete: bool, placeholders: list[str]
         ),
         was_generated_by=[["clampcore", written_by]],
     )
-    nwbfile.subject = _subject(meta, simulated, placeholders)
 
+
+def _devices(nwbfile: Any, meta: Mapping[str, Any], source: str) -> Any:
+    """The board (returned: the electrode's device) and, when calibrated, the amplifier."""
+    from pynwb.device import Device
+
+    amplifier = table(meta, "amplifier")
     board = meta.get("board")
     board_text = f" Board: {dumps(board)}." if board else ""
     device = nwbfile.create_device(
@@ -233,7 +241,16 @@ def new_nwbfile(meta: Mapping[str, Any], complete: bool, placeholders: list[str]
                 description=f"Patch-clamp amplifier; calibration used: {dumps(amplifier)}",
             )
         )
+    return device
 
+
+def _electrode(
+    nwbfile: Any, meta: Mapping[str, Any], device: Any, simulated: bool, placeholders: list[str]
+) -> Any:
+    """The intracellular electrode, with placeholders where the experiment file gave none."""
+    from pynwb.icephys import IntracellularElectrode
+
+    electrode_meta = table(meta, "electrode")
     electrode_description = text(electrode_meta.get("description"))
     if electrode_description is None:
         electrode_description = (
@@ -258,4 +275,30 @@ def new_nwbfile(meta: Mapping[str, Any], complete: bool, placeholders: list[str]
         cell_id=cell_id,
     )
     nwbfile.add_icephys_electrode(electrode)
-    return nwbfile, electrode
+    return electrode
+
+
+def read_metadata(nwbfile: Any) -> dict[str, Any]:
+    """What :func:`new_nwbfile` stored, read back: ``subject``, ``session``, ``electrode``
+    (dicts) and ``experiment_text``."""
+    subject = nwbfile.subject
+    electrode = next(iter(nwbfile.icephys_electrodes.values()), None)
+    return {
+        "experiment_text": nwbfile.stimulus_notes,
+        "subject": {
+            key: getattr(subject, key, None)
+            for key in ("subject_id", "species", "age", "sex", "description")
+        },
+        "session": {
+            "description": nwbfile.session_description,
+            "session_id": nwbfile.session_id,
+            "session_start": nwbfile.session_start_time.isoformat(),
+            "experimenter": list(nwbfile.experimenter or []),
+            "lab": nwbfile.lab,
+            "institution": nwbfile.institution,
+        },
+        "electrode": {
+            key: getattr(electrode, key, None)
+            for key in ("description", "location", "resistance", "cell_id")
+        },
+    }

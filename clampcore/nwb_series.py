@@ -27,10 +27,10 @@ Encodings (the name is stored in the file's metadata document, per column):
     The board's sample counter: ``first`` plus the row index, plus the gaps listed in
     ``processing/loop_timing/sample_counter_gaps`` (none: no table).
 
-Public names: ``Calibration``, ``calibration_from_meta``, ``adc_to_mV``, ``dac_to_pA``,
-``mV_to_adc_exact``, ``pA_to_dac``, ``adc_nwb_scale``, ``dac_nwb_scale``, ``smallest_uint``,
-``counter_gaps``, ``rebuild_counter``, ``derive_current``, ``dataset``, ``COMPRESSION``,
-``CHUNK_ROWS``.
+Public names: ``column_kind``, ``Calibration``, ``calibration_from_meta``, ``adc_to_mV``,
+``dac_to_pA``, ``mV_to_adc_exact``, ``pA_to_dac``, ``adc_nwb_scale``, ``dac_nwb_scale``,
+``smallest_uint``, ``counter_gaps``, ``rebuild_counter``, ``derive_current``, ``dataset``,
+``COMPRESSION``, ``CHUNK_ROWS``.
 """
 
 from __future__ import annotations
@@ -55,6 +55,22 @@ COMPRESSION: tuple[str, int | None] = ("gzip", 1)
 # "Chunking in HDF5"); a slice of a recording then decompresses only the chunks it needs.
 CHUNK_ROWS = 1 << 16
 _UV_PER_V = 1e6  # HELLO reports converter ranges in µV (PROTOCOL.md §4.1)
+
+
+def column_kind(name: str) -> tuple[str, str]:
+    """``(kind, element)`` of a journal column."""
+    if name == "v_mV":
+        return "v", ""
+    if name == "i_pA":
+        return "i", ""
+    for prefix, kind in (("g_nS/", "g"), ("i_pA/", "ie"), ("spike/", "spike")):
+        if name.startswith(prefix) and len(name) > len(prefix):
+            return kind, name[len(prefix) :]
+    return {
+        "sample_counter": ("counter", ""),
+        "latency_samples": ("latency", ""),
+        "turnaround_us": ("turn", ""),
+    }.get(name, ("other", ""))
 
 
 @dataclass(frozen=True)
@@ -315,11 +331,16 @@ def current_is_derivable(
 
 
 def dataset(array: np.ndarray, compression: tuple[str, int | None] | None = COMPRESSION) -> Any:
-    """``array`` chunked along time with shuffle + ``compression``; None: stored plain."""
+    """``array`` chunked along time with shuffle + ``compression``; None: stored plain. A
+    dataset already described (a spooled column's placeholder, :mod:`clampcore.nwb_spool`)
+    is returned as it is."""
+    from hdmf.backends.hdf5.h5_utils import H5DataIO
+
+    if isinstance(array, H5DataIO):
+        return array
     array = np.asarray(array)
     if compression is None or array.size == 0:
         return array
-    from hdmf.backends.hdf5.h5_utils import H5DataIO
 
     name, level = compression
     chunks = (min(CHUNK_ROWS, array.shape[0]), *array.shape[1:])

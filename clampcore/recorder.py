@@ -32,6 +32,7 @@ import numpy as np
 from clampcore.experiment import Experiment
 from clampcore.journal import Journal, JournalData, JournalError, read_journal
 from clampcore.nwb import NwbError, compact_bytes_per_row, convert_journal, write_nwb
+from clampcore.nwb_spool import Spool
 from clampcore.program import Program, build_program
 from clampcore.shared import CTRL_STOP, CTRL_ZERO, MAIL_TO_LOOP, RingLayout, SharedRun
 
@@ -56,14 +57,15 @@ def bytes_per_second(experiment: Experiment) -> float:
     """Disk bytes one second of a run of ``experiment`` needs, at most.
 
     The journal stores one float64 per ring column (``RingLayout``: the fixed columns, g
-    and i of every element, a spike flag per spike source) and sample; at stop the NWB
-    file is written beside it (``clampcore.nwb.compact_bytes_per_row``, an upper bound
-    before compression) and both exist on disk until the NWB file is checked. Events
+    and i of every element, a spike flag per spike source) and sample; the spool
+    (``clampcore.nwb_spool``) the compact columns while recording, and at stop the NWB
+    file copies them (each ``clampcore.nwb.compact_bytes_per_row``, an upper bound
+    before compression); all three exist on disk until the NWB file is checked. Events
     (parameter changes) are a few hundred bytes each and left out. Adjust here when the
     recording's layout changes.
     """
     names = RingLayout.for_program(build_program(experiment)).names
-    row_bytes = len(names) * _JOURNAL_ITEM_BYTES + compact_bytes_per_row(names)
+    row_bytes = len(names) * _JOURNAL_ITEM_BYTES + 2 * compact_bytes_per_row(names)
     return row_bytes * float(experiment.loop["rate_hz"])
 
 
@@ -126,9 +128,13 @@ def write_recording_nwb(recording: Any, path: Path, overwrite: bool = False) -> 
     return Path(path)
 
 
-def timing_summary(columns: dict[str, np.ndarray]) -> dict[str, float]:
-    """Loop-timing figures of a run from its per-sample columns."""
-    out: dict[str, float] = {"samples": float(len(columns.get("v_mV", [])))}
+def timing_summary(
+    columns: dict[str, np.ndarray], n_samples: int | None = None
+) -> dict[str, float]:
+    """Loop-timing figures of a run from its per-sample columns (``n_samples``: the run's
+    length when ``columns`` lacks ``v_mV``)."""
+    n = len(columns.get("v_mV", [])) if n_samples is None else n_samples
+    out: dict[str, float] = {"samples": float(n)}
     lat = columns.get("latency_samples")
     if lat is not None:
         lat = lat[np.isfinite(lat)]
@@ -142,8 +148,9 @@ def timing_summary(columns: dict[str, np.ndarray]) -> dict[str, float]:
     if turn is not None:
         turn = turn[np.isfinite(turn)]
         if turn.size:
-            for q in (50, 99, 99.9):
-                out[f"turnaround_p{q:g}_us"] = float(np.percentile(turn, q))
+            quantiles = (50, 99, 99.9)
+            for q, value in zip(quantiles, np.percentile(turn, quantiles), strict=True):
+                out[f"turnaround_p{q:g}_us"] = float(value)
             out["turnaround_max_us"] = float(turn.max())
     return out
 
@@ -187,6 +194,10 @@ class Recorder:
         self.program = program
         self.layout: RingLayout = shared.layout
         self.journal = Journal(Path(journal_path), self.layout.names, meta)
+        # The compact columns, encoded while recording (made with the first rows, once the
+        # board's description is in the journal); None: not yet, or given up.
+        self.spool: Spool | None = None
+        self._spool_tried = False
         self.path = Path(journal_path)
         self._rows_done = 0
         self._changes_done = 0
@@ -262,13 +273,42 @@ class Recorder:
         if written - start > self.layout.rows:  # the ring lapped the recorder
             self.lost_rows += written - self.layout.rows - start
             start = written - self.layout.rows
-        if written > start:
-            self.journal.append(self.shared.read_rows(start, written))
+        if self.journal.meta.get("board") is None and (board := self.shared.board()):
+            self.journal.describe_board(board)  # before the rows: they are its counts
+        rows = self.shared.read_rows(start, written) if written > start else None
+        if rows is not None:
+            self.journal.append(rows)
         self._rows_done = written
         for change in self.shared.applied_changes(self._changes_done):
             self.journal.event(self._describe(change))
             self._changes_done = change["number"] + 1
         self.journal.flush()
+        if rows is not None:
+            self._spool(rows)
+
+    def _spool(self, rows: np.ndarray) -> None:
+        """Encode and compress the rows for the NWB file now, not at stop (after the
+        journal has them: the journal is the crash-safe copy, the spool only saves time)."""
+        if not self._spool_tried:
+            self._spool_tried = True
+            try:
+                self.spool = Spool(self.path, self.layout.names, self.journal.meta)
+            except Exception:  # no spool: the stop converts from the journal
+                self.spool = None
+        if self.spool is not None:
+            self.spool.append(rows)
+
+    def _timing_columns(self) -> tuple[dict[str, np.ndarray], int]:
+        """The columns the run's timing figures and zero holds need, and the run's length:
+        from the spool (a few small columns) when it has every row, else from the journal."""
+        names = ("latency_samples", "turnaround_us", "flags")
+        spool = self.spool
+        if spool is not None and spool.failed is None and not self.error:
+            columns = {name: spool.read(name) for name in names if name in self.layout.names}
+            if all(values is not None for values in columns.values()):
+                return columns, spool.n_rows  # type: ignore[return-value]
+        columns = read_journal(self.path).columns
+        return columns, len(columns.get("v_mV", []))
 
     def note(self, kind: str, **fields: Any) -> None:
         """Log an event (fault, message) at the current sample."""
@@ -310,10 +350,10 @@ class Recorder:
         except (JournalError, OSError) as exc:
             self.fail(str(exc))
         final = dict(final_meta or {})
-        columns = read_journal(self.path).columns
+        columns, n_rows = self._timing_columns()
         for event in zero_hold_events(columns, float(self.program.experiment.loop["rate_hz"])):
             self.journal.event(event)  # NWB: events/zero_hold_events, one row per hold
-        final["timing"] = timing_summary(columns)
+        final["timing"] = timing_summary(columns, n_rows)
         final["lost_rows"] = self.lost_rows
         if self.error:
             final["recording_error"] = self.error
@@ -327,7 +367,7 @@ class Recorder:
             return None
         out = Path(nwb_path or self.path.with_suffix(".nwb"))
         try:
-            path, _ = convert_journal(self.path, out, keep_journal=keep_journal)
+            path, _ = convert_journal(self.path, out, keep_journal=keep_journal, spool=self.spool)
             return path
         except (NwbError, OSError, RuntimeError) as exc:  # h5py reports a full disk so
             kept = self.journal.rows_written

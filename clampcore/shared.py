@@ -13,6 +13,9 @@ One ``SharedRun`` is a set of named shared-memory blocks viewed as numpy arrays:
   and logs each one in ``applied`` with that sample's index. One writer at a
   time (the window, or the command line).
 - ``stats`` (float64): counters and histograms of the loop's timing (``ST_*``).
+- ``board`` (bytes): the board's description (its HELLO) as JSON, published once by
+  the loop process after the handshake and before the board starts, for the recorder
+  to store in the journal's header.
 
 The layout of the ring's columns is ``RingLayout``; it is rebuilt from the
 experiment in every process, so only the block names cross process borders.
@@ -24,6 +27,7 @@ Public names: ``SharedRun``, ``RingLayout``, the ``CTRL_*``, ``ST_*``,
 from __future__ import annotations
 
 import contextlib
+import json
 import secrets
 from dataclasses import dataclass
 from multiprocessing import shared_memory
@@ -76,6 +80,9 @@ MAILBOX_SLOTS = 1024
 MAIL_ARRAY, MAIL_ROW, MAIL_COL, MAIL_VALUE = 0, 1, 2, 3
 MAIL_TO_PARAMS, MAIL_TO_LOOP = 0.0, 1.0
 APPLIED_SAMPLE = 4  # column of ``applied``: sample index at which the change took effect
+
+BOARD_BYTES = 4096  # room for the board's description as JSON (a HELLO is ~300 bytes)
+_BOARD_LENGTH = 8  # the description's length (int64) precedes it, written last
 
 RING_SECONDS = 20.0  # ring length: long enough for a 10 s display window twice over
 
@@ -137,6 +144,7 @@ class SharedRun:
         self.mailbox = np.ndarray((MAILBOX_SLOTS, 4), np.float64, blocks["mailbox"].buf)
         self.applied = np.ndarray((MAILBOX_SLOTS, 5), np.float64, blocks["applied"].buf)
         self.stats = np.ndarray((N_STATS,), np.float64, blocks["stats"].buf)
+        self._board = np.ndarray((BOARD_BYTES,), np.uint8, blocks["board"].buf)
 
     @property
     def names(self) -> dict[str, str]:
@@ -152,6 +160,7 @@ class SharedRun:
             "mailbox": MAILBOX_SLOTS * 4 * 8,
             "applied": MAILBOX_SLOTS * 5 * 8,
             "stats": N_STATS * 8,
+            "board": BOARD_BYTES,
         }
         blocks = {
             k: shared_memory.SharedMemory(name=f"clampcore-{tag}-{k}", create=True, size=size)
@@ -161,6 +170,7 @@ class SharedRun:
         run.ctrl[:] = 0
         run.stats[:] = 0
         run.ring[:] = np.nan
+        run._board[:] = 0
         return run
 
     @classmethod
@@ -170,7 +180,7 @@ class SharedRun:
 
     def close(self) -> None:
         """Drop the views; the owner also unlinks the blocks."""
-        for attr in ("ctrl", "ring", "mailbox", "applied", "stats"):
+        for attr in ("ctrl", "ring", "mailbox", "applied", "stats", "_board"):
             setattr(self, attr, None)
         for block in self._blocks.values():
             block.close()
@@ -193,7 +203,24 @@ class SharedRun:
         lo, hi = self.ctrl[CTRL_RANGE_LO_PA : CTRL_RANGE_HI_PA + 1].view(np.float64)
         return (float(lo), float(hi)) if hi > lo else None
 
+    def board(self) -> dict[str, Any] | None:
+        """The board's description published by the loop process (None until then)."""
+        length = int(self._board[:_BOARD_LENGTH].view(np.int64)[0])
+        if length <= 0:
+            return None
+        text = bytes(self._board[_BOARD_LENGTH : _BOARD_LENGTH + length]).decode("utf-8")
+        return json.loads(text)
+
     # ------------------------------------------------------------------ writer
+    def publish_board(self, board: dict[str, Any]) -> None:
+        """Publish the board's description (the loop process, once, before the board starts):
+        the text first, then its length, which readers take as the sign it is complete."""
+        raw = json.dumps(board).encode("utf-8")
+        if len(raw) > BOARD_BYTES - _BOARD_LENGTH:
+            raise ValueError(f"the board's description takes {len(raw)} bytes, more than the room")
+        self._board[_BOARD_LENGTH : _BOARD_LENGTH + len(raw)] = np.frombuffer(raw, np.uint8)
+        self._board[:_BOARD_LENGTH].view(np.int64)[0] = len(raw)
+
     def publish_current_range(self, lo_pA: float, hi_pA: float) -> None:
         """Tell every reader what board and amplifier can command (the loop process)."""
         self.ctrl[CTRL_RANGE_LO_PA : CTRL_RANGE_HI_PA + 1].view(np.float64)[:] = (lo_pA, hi_pA)

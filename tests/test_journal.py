@@ -293,3 +293,24 @@ def test_reading_something_that_is_not_a_journal(tmp_path: Path) -> None:
     (tmp_path / "plain" / "meta.json").write_text("{not json")
     with pytest.raises(JournalError, match="cannot read"):
         read_journal(tmp_path / "plain")
+
+
+def test_the_boards_description_goes_into_the_header(tmp_path: Path) -> None:
+    """describe_board rewrites meta.json (read here with json alone) with the board's
+    description; a journal left without final.json still has it."""
+    path = tmp_path / "j"
+    journal = Journal(path, ["v_mV"], dict(META))
+    journal.describe_board({"adc_bits": 12, "adc_min_uV": -5_000_000})
+    journal.append(np.zeros((3, 1)))
+    journal.flush()
+    header = json.loads((path / "meta.json").read_text(encoding="utf-8"))
+    assert header["meta"]["board"] == {"adc_bits": 12, "adc_min_uV": -5_000_000}
+    assert header["columns"] == ["v_mV"]
+    assert not (path / "meta.json.tmp").exists()
+    data = read_journal(path)
+    assert not data.complete and data.meta["board"]["adc_bits"] == 12
+    with pytest.raises(JournalError, match="table"):
+        journal.describe_board(["not", "a", "table"])  # type: ignore[arg-type]
+    journal.close()
+    with pytest.raises(JournalError, match="closed"):
+        journal.describe_board({"adc_bits": 16})

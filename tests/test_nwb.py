@@ -10,8 +10,10 @@ that the validator's problems reach the caller.
 from __future__ import annotations
 
 import datetime as dt
+import shutil
 import time
 from pathlib import Path
+from typing import Any
 
 import h5py
 import numpy as np
@@ -36,6 +38,7 @@ from clampcore.nwb import (
 )
 from clampcore.nwb_metadata import SYNTHETIC_SPECIES
 
+EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 RATE_HZ = 20000.0
 START = "2026-03-02T09:30:00+01:00"
 COLUMNS = [
@@ -439,3 +442,235 @@ def test_sixty_seconds_at_20_kHz_four_columns(tmp_path: Path) -> None:
     np.testing.assert_array_equal(summary["v_mV"], data.columns["v_mV"])  # float64 (off-grid)
     np.testing.assert_array_equal(summary["columns"]["spike/cell"], data.columns["spike/cell"])
     assert check_against_journal(out, data) == []
+
+
+# --------------------------------------------------------------------------- the spool
+
+
+def _spool_run(
+    tmp_path: Path, name: str, n_s: float = 0.6, edit: Any = None
+) -> tuple[Path, list[str], np.ndarray]:
+    """A journal of an offline run of the slice example with the loop-timing columns a run on
+    a board has (a counter with a gap, flags, latency with unknowns, turnaround), for the
+    spool tests: ``(journal, columns, rows)``."""
+    import clampcore
+    from clampcore.recorder import recording_meta
+
+    rec = clampcore.simulate(EXAMPLES / "slice_background.toml", n_s, seed=1)
+    columns = rec.columns()
+    n = len(columns["v_mV"])
+    rng = np.random.default_rng(5)
+    counter = np.arange(n, dtype=np.float64) + 7.0
+    counter[n // 3 :] += 2.0  # two samples lost on the way
+    latency = rng.integers(1, 4, n).astype(np.float64)
+    latency[::97] = np.nan
+    columns = {
+        "sample_counter": counter,
+        **columns,
+        "flags": (rng.random(n) < 0.01) * 8.0,
+        "latency_samples": latency,
+        "turnaround_us": rng.gamma(4.0, 15.0, n),
+    }
+    names = list(columns)
+    rows = np.column_stack([columns[k] for k in names])
+    if edit is not None:
+        edit(names, rows)
+    meta = recording_meta(rec.experiment, rec.source, seed=1)
+    journal = Journal(tmp_path / name, names, meta)
+    journal.append(rows)
+    journal.close({"timing": {"samples": float(n)}})
+    return tmp_path / name, names, rows
+
+
+def _feed(spool: object, rows: np.ndarray, block: int = 777) -> None:
+    for start in range(0, rows.shape[0], block):  # the recorder's drains: blocks of any size
+        spool.append(rows[start : start + block])  # type: ignore[attr-defined]
+
+
+@pytest.fixture
+def small_chunks(monkeypatch: pytest.MonkeyPatch) -> int:
+    """Chunks of 2^12 rows, so that a short run has several whole chunks and a partial one."""
+    import clampcore.nwb_series as ns
+
+    monkeypatch.setattr(ns, "CHUNK_ROWS", 1 << 12)
+    return 1 << 12
+
+
+def _same_recording(a: Path, b: Path) -> None:
+    """Every column and storage choice of ``a`` equals ``b``'s (read back through pynwb)."""
+    ra, rb = read_nwb_summary(a), read_nwb_summary(b)
+    assert ra["storage"] == rb["storage"]
+    assert set(ra["columns"]) == set(rb["columns"])
+    for column, values in rb["columns"].items():
+        np.testing.assert_array_equal(ra["columns"][column], values, err_msg=column)
+
+
+def test_spooled_columns_are_the_stops_conversion(tmp_path, small_chunks, monkeypatch):
+    """Columns encoded while recording (nwb_spool) give the file the journal's conversion at
+    stop gives; V bit for bit the journal's. References: the journal itself, pynwb's
+    validator, and h5py's report of each dataset's filters."""
+    import clampcore.nwb_series as ns
+    from clampcore.nwb import convert_journal
+    from clampcore.nwb_spool import SPOOL_DIR, Spool
+
+    journal, names, rows = _spool_run(tmp_path, "a.journal")
+    copy = tmp_path / "b.journal"
+    shutil.copytree(journal, copy)
+    spool = Spool(journal, names, read_journal(journal).meta)
+    _feed(spool, rows)
+    assert spool.n_rows == rows.shape[0] - rows.shape[0] % small_chunks  # whole chunks only
+    spool.complete()  # the run ended: the last, partial chunk
+    assert spool.n_rows == rows.shape[0]
+    # The writer must take V, the small integers and the derived currents from the spool:
+    # computing them again from the journal would fail.
+    for name in ("mV_to_adc_exact", "smallest_uint", "current_is_derivable"):
+        monkeypatch.setattr(ns, name, lambda *a, **k: pytest.fail("recomputed at stop"))
+    convert_journal(journal, tmp_path / "a.nwb", spool=spool)
+    monkeypatch.undo()
+    monkeypatch.setattr(ns, "CHUNK_ROWS", small_chunks)
+    convert_journal(copy, tmp_path / "b.nwb")
+    assert not journal.exists() and not (journal / SPOOL_DIR).exists()
+    _same_recording(tmp_path / "a.nwb", tmp_path / "b.nwb")
+    back = read_nwb_summary(tmp_path / "a.nwb")
+    np.testing.assert_array_equal(back["v_mV"], rows[:, names.index("v_mV")])
+    assert back["storage"]["v_mV"]["encoding"] == "adc_counts"
+    assert back["storage"]["i_pA/ampa_inputs"]["encoding"] == "derived_current"
+    assert back["storage"]["latency_samples"] == {
+        "path": back["storage"]["latency_samples"]["path"],
+        "encoding": "uint",
+        "unknown": 255,
+    }
+    with h5py.File(tmp_path / "a.nwb", "r") as f:  # reference: h5py's dataset properties
+        v = f["acquisition/membrane_potential/data"]
+        assert v.dtype == np.uint16 and v.compression == "gzip" and v.shuffle
+        assert v.chunks == (small_chunks,)
+    assert validate_nwb(tmp_path / "a.nwb") == []  # reference: pynwb's validator
+
+
+def test_a_column_that_stops_fitting_comes_from_the_journal(tmp_path, small_chunks):
+    """V off the ADC grid, a latency above 254 and a current no longer -g (V - E), each in a
+    later chunk than the first: those columns are converted from the journal at stop, the
+    others still come from the spool; the file equals the stop's conversion."""
+    from clampcore.nwb import convert_journal
+    from clampcore.nwb_spool import Spool
+
+    late = 2 * small_chunks + 5  # in the third chunk
+
+    def spoil(names: list[str], rows: np.ndarray) -> None:
+        rows[late, names.index("v_mV")] += 1e-3  # not a count of any ADC step
+        rows[late, names.index("latency_samples")] = 300.0
+        rows[late, names.index("i_pA/extra_leak")] += 1.0
+
+    journal, names, rows = _spool_run(tmp_path, "a.journal", edit=spoil)
+    shutil.copytree(journal, tmp_path / "b.journal")
+    spool = Spool(journal, names, read_journal(journal).meta)
+    _feed(spool, rows)
+    convert_journal(journal, tmp_path / "a.nwb", spool=spool)
+    convert_journal(tmp_path / "b.journal", tmp_path / "b.nwb")
+    _same_recording(tmp_path / "a.nwb", tmp_path / "b.nwb")
+    storage = read_nwb_summary(tmp_path / "a.nwb")["storage"]
+    assert storage["v_mV"]["encoding"] == "float64"
+    assert storage["latency_samples"]["encoding"] == "uint"  # uint16 now, from the journal
+    assert storage["i_pA/extra_leak"]["encoding"] == "float32"
+    assert storage["g_nS/extra_leak"]["encoding"] == "float32"
+
+
+def test_a_spool_that_failed_or_missed_rows_is_not_used(tmp_path, small_chunks, monkeypatch):
+    """A spool that raised (here: a block of the wrong width), holds fewer rows than the
+    journal or whose chunks were damaged is not used: the file is the stop's conversion."""
+    import clampcore.nwb as nwb
+    from clampcore.nwb import convert_journal
+    from clampcore.nwb_spool import Spool
+
+    journal, names, rows = _spool_run(tmp_path, "a.journal")
+    spoils = ("width", "rows", "corrupt")
+    for k, spoil in enumerate(spoils):
+        target = tmp_path / f"{spoil}.journal"
+        shutil.copytree(journal, target)
+        spool = Spool(target, names, read_journal(target).meta)
+        _feed(spool, rows[: -small_chunks - 1] if spoil == "rows" else rows)
+        if spoil == "width":
+            spool.append(np.zeros((small_chunks, 3)))
+            assert spool.failed is not None
+        if spoil == "corrupt":  # a damaged chunk of V: zlib cannot inflate it
+            chunks = spool.path / f"{names.index('v_mV')}.chunks"
+            raw = bytearray(chunks.read_bytes())
+            raw[10:60] = bytes(50)
+            chunks.write_bytes(bytes(raw))
+        calls: list[bool] = []
+
+        def spy(*a: Any, calls: list[bool] = calls, real: Any = nwb._write_and_check) -> Any:
+            calls.append(a[2] is not None)  # with the spool's chunks or not
+            return real(*a)
+
+        monkeypatch.setattr(nwb, "_write_and_check", spy)
+        convert_journal(target, tmp_path / f"{k}.nwb", spool=spool)
+        monkeypatch.undo()
+        monkeypatch.setattr(nwb.ns, "CHUNK_ROWS", small_chunks)
+        # The damaged chunks were written, failed the read-back, and the journal served.
+        assert calls == ([True, False] if spoil == "corrupt" else [False])
+    convert_journal(journal, tmp_path / "ref.nwb")
+    for k in range(len(spoils)):
+        _same_recording(tmp_path / f"{k}.nwb", tmp_path / "ref.nwb")
+
+
+def test_recover_rebuilds_exact_counts_for_any_board(tmp_path):
+    """A crashed journal of a board with 12-bit +-5 V ADC and 14-bit +-2.5 V DAC, whose
+    HELLO the recorder stored in the journal's header: `recover` stores V and I as that
+    board's counts. References: the board's counts themselves (V made from them by the
+    board-side arithmetic, clampcore.calibration) and the NWB rule value = data x
+    conversion + offset read with h5py only. Without the description, V is kept as floats."""
+    from clampcore.calibration import Converter, counts_to_mV
+    from clampcore.nwb import convert_journal
+
+    hello = {  # PROTOCOL.md §4.1: ranges in µV
+        "identity": "bench board",
+        "adc_bits": 12,
+        "adc_min_uV": -5_000_000,
+        "adc_max_uV": 5_000_000,
+        "dac_bits": 14,
+        "dac_min_uV": -2_500_000,
+        "dac_max_uV": 2_500_000,
+    }
+    amplifier = dict(_AMPLIFIER, vm_offset_mV=1.5, liquid_junction_mV=7.0)
+    conv = conversion_array(Converter(12, -5.0, 5.0), Converter(14, -2.5, 2.5), amplifier)
+    rng = np.random.default_rng(8)
+    adc = rng.integers(1000, 3000, 4000)
+    v_mV = np.array([counts_to_mV(conv, float(c)) for c in adc])
+    dac = rng.integers(0, 2**14, 4000)
+    i_pA = np.array([counts_to_pA(conv, float(c)) for c in dac])
+    for described in (True, False):
+        meta = {
+            "rate_hz": 10000.0,
+            "session_start": START,
+            "source": "/dev/ttyACM0",
+            "experiment": {"amplifier": amplifier},
+        }
+        path = tmp_path / f"{described}.journal"
+        journal = Journal(path, ["v_mV", "i_pA"], meta)
+        if described:
+            journal.describe_board(hello)  # as the recorder does before the first rows
+        journal.append(np.column_stack([v_mV, i_pA]))
+        journal.flush()  # then the crash: no final.json
+        del journal
+        out = tmp_path / f"{described}.nwb"
+        convert_journal(path, out, keep_journal=True)
+        back = read_nwb_summary(out)
+        assert not back["complete"]
+        if not described:
+            assert back["storage"]["v_mV"]["encoding"] == "float64"
+            np.testing.assert_array_equal(back["v_mV"], v_mV)
+            continue
+        assert back["storage"]["v_mV"]["encoding"] == "adc_counts"
+        assert back["storage"]["i_pA"]["encoding"] == "dac_counts"
+        with h5py.File(out, "r") as f:  # reference: NWB's conversion/offset rule, h5py only
+            v = f["acquisition/membrane_potential/data"]
+            i = f["stimulus/presentation/command_current/data"]
+            np.testing.assert_array_equal(v[:], adc)
+            np.testing.assert_array_equal(i[:], dac)
+            volts = v[:] * v.attrs["conversion"] + v.attrs["offset"]
+            np.testing.assert_allclose(volts * 1e3, v_mV, rtol=0, atol=1e-9)
+            amperes = i[:] * i.attrs["conversion"] + i.attrs["offset"]
+            np.testing.assert_allclose(amperes * 1e12, i_pA, rtol=0, atol=1e-6)
+        np.testing.assert_array_equal(back["v_mV"], v_mV)  # bit for bit
+        assert validate_nwb(out) == []  # reference: pynwb's validator

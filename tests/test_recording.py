@@ -186,6 +186,10 @@ def test_recover_after_sigkill_is_compact_and_complete(tmp_path):
     np.testing.assert_array_equal(back["v_mV"], rows[:, names.index("v_mV")])
     assert back["storage"]["v_mV"]["encoding"] == "adc_counts"
     assert back["storage"]["i_pA"]["encoding"] == "dac_counts"
+    # The board's HELLO reached the journal's header before the first sample (the run was
+    # killed: final.json, which also has it, was never written).
+    assert not (journal / "final.json").exists()
+    assert back["calibration"].origin == "the board's HELLO message"
     assert validate_nwb(out) == []  # reference: pynwb's validator
     assert _inspector_problems(out) == []  # reference: nwbinspector
 
