@@ -94,26 +94,22 @@ def _leak_only(cell_model: str = "passive") -> dict:
 
 
 @njit(cache=True, nogil=True)
-def _step_loop(
-    v_trace, n0, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s, out
-) -> None:
+def _step_loop(v_trace, n0, pa, out) -> None:
     """Call ``step`` for ``out.size`` samples, V read from ``v_trace`` (cyclically)."""
     n_v = v_trace.size
     for k in range(out.size):
-        out[k] = step(
-            v_trace[k % n_v], n0 + k, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s
-        )
+        out[k] = step(v_trace[k % n_v], n0 + k, pa)
 
 
 def _median_step_ns(program: Program, v_trace: np.ndarray) -> float:
     out = np.empty(N_STEPS)
     arrays = program.arrays()
-    _step_loop(v_trace, 0, *arrays, out[:10])  # compile (or load from the cache)
+    _step_loop(v_trace, 0, arrays, out[:10])  # compile (or load from the cache)
     n0 = 10  # the sample index keeps counting, as in a run (neuron refractoriness uses it)
     times = []
     for _ in range(STEP_REPEATS):
         t0 = time.perf_counter_ns()
-        _step_loop(v_trace, n0, *arrays, out)
+        _step_loop(v_trace, n0, arrays, out)
         times.append(time.perf_counter_ns() - t0)
         n0 += N_STEPS
     return statistics.median(times) / N_STEPS

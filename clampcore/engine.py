@@ -62,12 +62,13 @@ from clampcore.hostloop import (
     LK_LAST_COUNTER,
     LK_NEXT_SEQ,
     LK_SAMPLES,
+    LinkArrays,
     fd_loop,
     new_link,
     process_rx,
     record_turnaround,
 )
-from clampcore.law import CURRENT_MODE, LAW_MODE, board_arrays, law_scale
+from clampcore.law import CURRENT_MODE, LAW_MODE, board_arrays
 from clampcore.lawloop import (
     LawLinkArrays,
     law_fd_loop,
@@ -78,6 +79,7 @@ from clampcore.lawloop import (
 from clampcore.program import (
     MAIL_TARGETS,
     Program,
+    ProgramArrays,
     build_program,
     check_live_change,
     delay_samples,
@@ -96,6 +98,7 @@ from clampcore.shared import (
     STATE_STARTING,
     STATE_STOPPED,
     STATE_STOPPING,
+    LoopShared,
     RingLayout,
     SharedRun,
 )
@@ -264,13 +267,12 @@ def _loop_process(
             np.clip(options.watchdog_ms * 1000, hello.watchdog_min_us, hello.watchdog_max_us)
         )
         link.configure(rate, watchdog_us, zero)
-        arrays = new_link(zero)
-        loop_args = (conv, *program.arrays(), _neuron_rows(program), shared.ctrl, shared.ring)
-        loop_args += (shared.mailbox, shared.applied, shared.stats)
+        arrays = new_link(conv)
+        pa, sh = program.arrays(), shared.loop(_neuron_rows(program))
         law = None
         report["mode"] = CURRENT_MODE
         if (options.mode or exp.loop["mode"]) == LAW_MODE:
-            law = _law_setup(link, program, conv, loop_args, options)
+            law = _law_setup(link, program, conv, sh, options)
             report["mode"] = LAW_MODE if law is not None else CURRENT_MODE
             if law is None:
                 report["notice"] = (
@@ -279,7 +281,7 @@ def _loop_process(
                     "link round trip old (PROTOCOL.md §10)"
                 )
         if law is None:
-            _compile_before_start(arrays, loop_args)
+            _compile_before_start(arrays, pa, sh)
         report["realtime"] = fifo_scheduling(options.realtime_priority)
         spin_us = min(options.spin_us, SPIN_SHARE * 1e6 / rate)
         with hold_cpu_dma_latency_zero(options.low_latency) as held:
@@ -294,13 +296,11 @@ def _loop_process(
                 code = _law_loop(link, fd, law, spin_us, options.silent_ms, max_samples)
             else:
                 # Samples that came with the replies must be answered before the loop waits.
-                _feed(link, link.take_unread(), arrays, loop_args, shared)
+                _feed(link, link.take_unread(), arrays, pa, sh)
                 if fd is not None:
-                    code = fd_loop(
-                        fd, spin_us, options.silent_ms, max_samples, *arrays.arrays(), *loop_args
-                    )
+                    code = fd_loop(fd, spin_us, options.silent_ms, max_samples, arrays, pa, sh)
                 else:
-                    code = _python_loop(link, arrays, loop_args, options, max_samples, shared)
+                    code = _python_loop(link, arrays, pa, sh, options, max_samples)
         report["exit_code"] = int(code)
         shared.ctrl[CTRL_STATE] = STATE_STOPPING
         if code in (EXIT_PORT_CLOSED, EXIT_PORT_ERROR, EXIT_BOARD_SILENT):
@@ -341,14 +341,15 @@ def _loop_process(
 
 @dataclass
 class _LawRun:
-    """Law mode's buffers and the compiled loop's arguments after the descriptor."""
+    """Law mode's buffers and the compiled loop's other arguments."""
 
     arrays: LawLinkArrays
-    args: tuple
+    pa: ProgramArrays
+    sh: LoopShared
 
 
 def _law_setup(
-    link: BoardLink, program: Program, conv: np.ndarray, loop_args: tuple, options: RunOptions
+    link: BoardLink, program: Program, conv: np.ndarray, sh: LoopShared, options: RunOptions
 ) -> _LawRun | None:
     """Give the board its rules and the first laws; None when it cannot evaluate laws."""
     exp = program.experiment
@@ -358,19 +359,14 @@ def _law_setup(
     bf, bi, _bs, _law, table = board_arrays(program, conv, LAW_MODE, lifetime)
     if not link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else []):
         return None
-    neurons = _neuron_rows(program)
-    arrays = new_law_link(lead, table.size > 0, len(program.names), neurons.size)
-    args = (conv, law_scale(conv), *loop_args[1:])
-    a = arrays
+    a = new_law_link(lead, table.size > 0, len(program.names), sh.neuron_rows.size, conv)
+    pa = program.arrays()
     # Compile (or load) before the board starts, then send the first laws (samples 0..lead-1).
-    # args: conv, scale, kind .. neuron_rows, ctrl, ring, mailbox, applied, stats
-    length = top_up_laws(a.lw, a.laws, a.lawbits, a.ghist, a.tx, 0, *args[1:13], *args[14:])
-    process_rx_law(0, *a.arrays()[:14], *args)
-    link.serial.write(a.tx[:length].tobytes())
-    stopped = args[12].copy()
-    stopped[CTRL_STOP] = 1
-    law_fd_loop(-1, 0.0, 0, 0, *a.arrays(), *args[:12], stopped, *args[13:])
-    return _LawRun(arrays, args)
+    length = top_up_laws(a, 0, pa, sh)
+    process_rx_law(0, a, pa, sh)
+    link.serial.write(a.io.tx[:length].tobytes())
+    law_fd_loop(-1, 0.0, 0, 0, a, pa, _stop_requested(sh))
+    return _LawRun(a, pa, sh)
 
 
 def _law_loop(
@@ -380,10 +376,10 @@ def _law_loop(
     a = law.arrays
     data = link.take_unread()
     if data:
-        a.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
-        length = process_rx_law(len(data), *a.arrays()[:14], *law.args)
-        link.serial.write(a.tx[:length].tobytes())
-    return law_fd_loop(fd, spin_us, silent_ms, max_samples, *a.arrays(), *law.args)
+        a.io.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
+        length = process_rx_law(len(data), a, law.pa, law.sh)
+        link.serial.write(a.io.tx[:length].tobytes())
+    return law_fd_loop(fd, spin_us, silent_ms, max_samples, a, law.pa, law.sh)
 
 
 # [loop] fields a law-evaluating board applies itself (clampcore.law.board_arrays).
@@ -420,55 +416,55 @@ def law_lead_samples(program: Program) -> int:
     return lead
 
 
-def _compile_before_start(arrays: Any, loop_args: tuple) -> None:
+def _stop_requested(sh: LoopShared) -> LoopShared:
+    """``sh`` with a copy of its control words that asks the loop to stop at once."""
+    ctrl = sh.ctrl.copy()
+    ctrl[CTRL_STOP] = 1
+    return sh._replace(ctrl=ctrl)
+
+
+def _compile_before_start(arrays: LinkArrays, pa: ProgramArrays, sh: LoopShared) -> None:
     """Load or compile the loop before the board starts sampling (compiling takes seconds).
 
     The loop is entered once with a stop request already set, so it returns at once.
     """
-    stopped = loop_args[-5].copy()  # ctrl
-    stopped[CTRL_STOP] = 1
-    args = (*loop_args[:-5], stopped, *loop_args[-4:])
-    fd_loop(-1, 0.0, 0, 0, *arrays.arrays(), *args)
-    a = arrays
-    process_rx(
-        0, a.lk, a.answered, a.dstate, a.dbuf, a.frame, a.adc, a.fields, a.dac, a.rx, a.tx,
-        *args,
-    )  # fmt: skip
+    stopped = _stop_requested(sh)
+    fd_loop(-1, 0.0, 0, 0, arrays, pa, stopped)
+    process_rx(0, arrays, pa, stopped)
 
 
-def _feed(link: BoardLink, data: bytes, arrays: Any, loop_args: tuple, shared: SharedRun) -> None:
+def _feed(
+    link: BoardLink, data: bytes, arrays: LinkArrays, pa: ProgramArrays, sh: LoopShared
+) -> None:
     """Run bytes already received through the per-sample path and send the answer."""
     if not data:
         return
     t_ready = time.monotonic()
-    a = arrays
-    a.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
-    length = process_rx(
-        len(data), a.lk, a.answered, a.dstate, a.dbuf, a.frame, a.adc, a.fields, a.dac,
-        a.rx, a.tx, *loop_args,
-    )  # fmt: skip
+    io = arrays.io
+    io.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
+    length = process_rx(len(data), arrays, pa, sh)
     if length > 0:
         try:
-            link.serial.write(a.tx[:length].tobytes())
+            link.serial.write(io.tx[:length].tobytes())
         except Exception as exc:
             raise BoardError(link.port, "sending a command", str(exc)) from exc
-        record_turnaround(a.lk, shared.ring, shared.stats, (time.monotonic() - t_ready) * 1e6)
+        record_turnaround(arrays.lk, sh.ring, sh.stats, (time.monotonic() - t_ready) * 1e6)
 
 
 def _python_loop(
     link: BoardLink,
-    arrays: Any,
-    loop_args: tuple,
+    arrays: LinkArrays,
+    pa: ProgramArrays,
+    sh: LoopShared,
     options: RunOptions,
     max_samples: int,
-    shared: SharedRun,
 ) -> int:
     """The same per-sample path with pyserial doing the I/O (URL ports without a descriptor)."""
     ser = link.serial
     idle_since = time.monotonic()
-    rx_size = arrays.rx.size
+    rx_size = arrays.io.rx.size
     while True:
-        if shared.ctrl[CTRL_STOP]:
+        if sh.ctrl[CTRL_STOP]:
             return EXIT_STOP_REQUEST
         if max_samples > 0 and arrays.lk[LK_SAMPLES] >= max_samples:
             return EXIT_DURATION
@@ -482,7 +478,7 @@ def _python_loop(
             continue
         idle_since = time.monotonic()
         try:
-            _feed(link, data, arrays, loop_args, shared)
+            _feed(link, data, arrays, pa, sh)
         except BoardError:
             return EXIT_PORT_ERROR
 

@@ -5,14 +5,15 @@ random-number streams, spike-train times, per-element outputs and the loop's
 own parameters and state. ``param_slot`` says which array cell a live change
 of ``element.field`` writes, so a running loop can apply it between samples.
 
-Public names: ``Program``, ``build_program``, ``ParamSlot``, ``check_live_change``.
+Public names: ``Program``, ``ProgramArrays``, ``build_program``, ``ParamSlot``,
+``check_live_change``.
 """
 
 from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -45,6 +46,21 @@ class ParamSlot:
     col: int
 
 
+class ProgramArrays(NamedTuple):
+    """A program's arrays as compiled code takes them (``step``, ``make_law``, the loops):
+    one argument that numba sees as the nine arrays, at no cost per call."""
+
+    kind: np.ndarray  # int64 (n,)
+    params: np.ndarray  # float64 (n, N_PARAMS)
+    state: np.ndarray  # float64 (n, N_STATE)
+    rng: np.ndarray  # uint64 (n,)
+    trains: np.ndarray  # float64, every train source's times (ms) one after another
+    g_out: np.ndarray  # float64 (n,)  conductance of each element at the last sample, nS
+    i_out: np.ndarray  # float64 (n,)  current of each element at the last sample, pA
+    loop_p: np.ndarray  # float64 (N_LOOP_PARAMS,): clampcore.step's LP_* columns
+    loop_s: np.ndarray  # float64 (N_LOOP_STATE + ring,): clampcore.step's LS_* columns
+
+
 @dataclass
 class Program:
     """All arrays of one run (see ``clampcore.step`` for the loop arrays)."""
@@ -66,9 +82,9 @@ class Program:
     def dt_ms(self) -> float:
         return float(self.loop_p[step_mod.LP_DT_MS])
 
-    def arrays(self) -> tuple[np.ndarray, ...]:
-        """The arguments of ``step`` after ``v_mV`` and ``n``, in order."""
-        return (
+    def arrays(self) -> ProgramArrays:
+        """The arrays of ``step`` (its argument after ``v_mV`` and ``n``)."""
+        return ProgramArrays(
             self.kind,
             self.params,
             self.state,

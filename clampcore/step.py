@@ -1,6 +1,6 @@
 """The per-sample step: every element of an experiment, at one sample.
 
-``step(v_mV, n, ...)`` takes the membrane potential measured at sample ``n``
+``step(v_mV, n, pa)`` takes the membrane potential measured at sample ``n``
 and returns the command current (pA) to inject from the next sample on. It is
 the one function that the offline simulation, the serial loop and the
 benchmarks all call.
@@ -36,6 +36,7 @@ Public names: ``step``, ``element_conductances``, ``cell_currents``,
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -56,6 +57,9 @@ from clampcore.elements import synapse as _syn
 from clampcore.elements import threshold_reset as _tr
 from clampcore.elements.current import current_waveform
 from clampcore.jit import kernel
+
+if TYPE_CHECKING:  # program.py builds on this module
+    from clampcore.program import ProgramArrays
 
 # Loop parameters (float64 array ``loop_p``).
 LP_DT_MS = 0
@@ -108,18 +112,7 @@ def hist_record_cell_spike(n: int, spiked: bool, loop_p: np.ndarray, loop_s: np.
 
 
 @kernel
-def element_conductances(
-    n: int,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-) -> None:
+def element_conductances(n: int, pa: ProgramArrays) -> None:
     """Advance every element but threshold_reset to sample ``n``; sum the cell's law.
 
     Writes each element's conductance to ``g_out`` (nS), the current of elements
@@ -128,6 +121,7 @@ def element_conductances(
     A cell-driven synapse hears the cell's spike of sample n - delay from the
     history ring (``hist_record_cell_spike`` must have run for that sample).
     """
+    kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s = pa
     dt_ms = loop_p[LP_DT_MS]
     t_ms = n * dt_ms
     ring = int(loop_p[LP_SPIKE_RING])
@@ -224,20 +218,13 @@ def cell_currents(
 
 
 @kernel
-def step(
-    v_mV: float,
-    n: int,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-) -> float:
-    """Command current (pA) for sample ``n`` at measured ``v_mV``; see the module doc."""
+def step(v_mV: float, n: int, pa: ProgramArrays) -> float:
+    """Command current (pA) for sample ``n`` at measured ``v_mV``; see the module doc.
+
+    ``pa``: the program's arrays (``clampcore.program.Program.arrays``).
+    """
+    kind, params, state, g_out, i_out = pa.kind, pa.params, pa.state, pa.g_out, pa.i_out
+    loop_p, loop_s = pa.loop_p, pa.loop_s
     dt_ms = loop_p[LP_DT_MS]
     loop_s[LS_CELL_SPIKED] = 0.0
     if not math.isfinite(v_mV) or abs(v_mV) > loop_p[LP_V_FAULT_MV]:
@@ -277,7 +264,7 @@ def step(
 
     # 3-4. Conductances (and the cell's current law), then the currents at this V.
     hist_record_cell_spike(n, cell_spiked, loop_p, loop_s)
-    element_conductances(n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+    element_conductances(n, pa)
     total += cell_currents(v_mV, kind, params, g_out, i_out)
 
     # 5. Output guard.
