@@ -153,6 +153,9 @@ class RunOptions:
     rig_link: str | None = None  # for port "sim": a link model (clampcore.links), wall clock only
     # "current" or "law" (PROTOCOL.md §10) instead of the experiment's [loop] mode; None: as set.
     mode: str | None = None
+    # Law mode: this look-ahead in samples instead of law_lead_samples' (None). One longer
+    # than a cell-driven synapse's delay allows makes its spikes late (delivered late, counted).
+    lead_samples: int | None = None
     # Extra fields for the recording's metadata (e.g. the stability guard's "stability").
     extra_meta: dict[str, Any] = field(default_factory=dict)
 
@@ -354,7 +357,7 @@ def _law_setup(
     """Give the board its rules and the first laws; None when it cannot evaluate laws."""
     exp = program.experiment
     rate = float(exp.loop["rate_hz"])
-    lead = law_lead_samples(program)
+    lead = options.lead_samples or law_lead_samples(program)
     lifetime = max(1, round(exp.loop["lifetime_ms"] * rate / 1000.0))
     bf, bi, _bs, _law, table = board_arrays(program, conv, LAW_MODE, lifetime)
     if not link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else []):

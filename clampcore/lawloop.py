@@ -65,6 +65,7 @@ from clampcore.shared import (
     ST_FAULTS,
     ST_LAT_HIST,
     ST_LATE,
+    ST_LATE_SPIKES,
     ST_LIMITED,
     ST_MISSING,
     ST_OTHER_FRAMES,
@@ -80,6 +81,7 @@ from clampcore.step import (
     FLAG_LIMITED,
     cell_currents,
     hist_record_cell_spike,
+    queue_late_cell_spike,
 )
 from firmware_protocol import boardlaw as bl
 from firmware_protocol import lawmsg
@@ -301,6 +303,8 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
             bflags = s_flags[i]
             spiked = (bflags & bl.BF_FLAG_SPIKE) != 0
             hist_record_cell_spike(n, spiked, loop_p, loop_s)
+            if spiked:  # a synapse that hears it too late gets it at the next law made
+                stats[ST_LATE_SPIKES] += queue_late_cell_spike(n, lw[LW_HI], pa)
             v_mV = counts_to_mV(conv, float(s_adc[i]))
             h = n & mask
             for r in range(n_el):

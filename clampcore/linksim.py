@@ -10,7 +10,8 @@ its DAC holds, reads V_k through its ADC, and writes its DAC:
   arrived by t_k, the board puts it in force; it evaluates the law in force at its
   fresh ADC count (``firmware_protocol.boardlaw.board_eval``: threshold-and-reset,
   spike detection, limit, lifetime) and the DAC holds the result over (t_k, t_{k+1}].
-  A cell-driven synapse hears the board's spike flag of sample s - delay.
+  A cell-driven synapse hears the board's spike flag of sample s - delay; a spike
+  heard after that law was made is delivered with the next law made, and counted.
 - **current mode** (protocol v1's split, kept for comparison): the host runs
   ``clampcore.step.step`` (threshold_reset and detection included) on every sample
   it receives and sends the current for the newest; a command that arrives within
@@ -40,8 +41,7 @@ from clampcore.calibration import (
     counts_to_pA,
     mV_to_counts,
 )
-from clampcore.elements import KIND_NEURON, KIND_SYNAPSE
-from clampcore.elements import synapse as _syn
+from clampcore.elements import KIND_NEURON
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.jit import kernel
 from clampcore.law import (
@@ -60,6 +60,7 @@ from clampcore.step import (
     LS_CELL_SPIKED,
     cell_currents,
     hist_record_cell_spike,
+    queue_late_cell_spike,
     step,
 )
 from firmware_protocol.boardlaw import (
@@ -121,7 +122,8 @@ def link_loop(
     ``laws`` (n + lead + 1, 4) and ``law_arrive_us`` hold the laws the host computed
     and when each reaches the board; ``cmd_pA`` (one per wake-up) and ``new_law``
     (float32[4]) are scratch space. ``counters``: [0] late spikes (heard after the
-    law they should have changed was sent), [1] the newest sample laws exist for.
+    law they should have changed was made; delivered with the next law made,
+    ``clampcore.step.queue_late_cell_spike``), [1] the newest sample laws exist for.
     """
     wake_newest, wake_us, arrive_us = sched.wake_newest, sched.wake_us, sched.arrive_us
     cell_kind, cell_p, cell_s, cell_rng = cell
@@ -167,8 +169,8 @@ def link_loop(
                 spiked = law_mode and (out_flags[m] & BF_FLAG_SPIKE) != 0
                 if law_mode:
                     hist_record_cell_spike(m, spiked, loop_p, loop_s)
-                    if spiked and m + 1 <= hi:
-                        counters[0] += _late_listeners(kind, params, m, hi)
+                    if spiked:
+                        counters[0] += queue_late_cell_spike(m, hi, pa)
                 else:
                     v_host = counts_to_mV(conv, float(out_adc[m]))
                     cmd_pA[w] = step(v_host, m, pa)
@@ -224,20 +226,6 @@ def _neuron_spikes(state: np.ndarray, rows: np.ndarray, out: np.ndarray, s: int)
 def _put_row(dst: np.ndarray, row: int, src: np.ndarray) -> None:
     for j in range(src.shape[0]):
         dst[row, j] = src[j]
-
-
-@kernel
-def _late_listeners(kind: np.ndarray, params: np.ndarray, m: int, hi: int) -> int:
-    """Cell-driven synapses whose delivery sample m + delay already has its law."""
-    late = 0
-    for r in range(kind.shape[0]):
-        if (
-            kind[r] == KIND_SYNAPSE
-            and int(params[r, _syn.P_SOURCE]) == _syn.SRC_CELL
-            and m + int(params[r, _syn.P_DELAY]) <= hi
-        ):
-            late += 1
-    return late
 
 
 @dataclass

@@ -29,8 +29,8 @@ Order within a sample:
    max_current_pA -> clipped and ``FLAG_LIMITED``.
 
 Public names: ``step``, ``element_conductances``, ``cell_currents``,
-``hist_record_cell_spike``, the ``LP_*``/``LS_*`` loop-array columns, and the
-``FAULT_*``/``FLAG_*`` bits.
+``hist_record_cell_spike``, ``queue_late_cell_spike``, the ``LP_*``/``LS_*`` loop-array
+columns, and the ``FAULT_*``/``FLAG_*`` bits.
 """
 
 from __future__ import annotations
@@ -106,9 +106,39 @@ def _detect_cell_spike(v_mV: float, loop_p: np.ndarray, loop_s: np.ndarray) -> b
 
 @kernel
 def hist_record_cell_spike(n: int, spiked: bool, loop_p: np.ndarray, loop_s: np.ndarray) -> None:
-    """Remember whether the cell spiked at sample ``n`` (read back by delayed synapses)."""
+    """Remember whether the cell spiked at sample ``n`` (read back by delayed synapses).
+
+    A spike is stored as n + 1, so a sample not heard yet (law mode, a slot still holding
+    an older sample) never reads as a spike (``_heard_cell_spike``).
+    """
     ring = int(loop_p[LP_SPIKE_RING])
-    loop_s[LS_SPIKE_RING + (n & (ring - 1))] = 1.0 if spiked else 0.0
+    loop_s[LS_SPIKE_RING + (n & (ring - 1))] = n + 1.0 if spiked else 0.0
+
+
+@kernel
+def _heard_cell_spike(j: int, ring: int, loop_s: np.ndarray) -> bool:
+    """Whether the cell's spike of sample ``j`` is in the history ring."""
+    return j >= 0 and loop_s[LS_SPIKE_RING + (j & (ring - 1))] == j + 1.0
+
+
+@kernel
+def queue_late_cell_spike(m: int, hi: int, pa: ProgramArrays) -> int:
+    """The cell's spike of sample ``m``, heard when the conductances of samples up to ``hi``
+    are already made: every enabled cell-driven synapse whose delivery sample m + delay is
+    among them missed it, and hears it at the first sample still to be made (hi + 1, through
+    ``synapse.S_LATE``). Returns how many synapses heard it late."""
+    late = 0
+    for r in range(pa.kind.shape[0]):
+        p = pa.params[r]
+        if (
+            pa.kind[r] == KIND_SYNAPSE
+            and int(p[_syn.P_SOURCE]) == _syn.SRC_CELL
+            and p[P_ENABLED] != 0.0
+            and m + int(p[_syn.P_DELAY]) <= hi
+        ):
+            pa.state[r, _syn.S_LATE] += 1.0
+            late += 1
+    return late
 
 
 @kernel
@@ -145,7 +175,7 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
             g = p[_leak.P_G]
             e_mV = p[_leak.P_E]
         elif k == KIND_SYNAPSE:
-            heard = loop_s[LS_SPIKE_RING + ((n - int(p[_syn.P_DELAY])) & (ring - 1))] != 0.0
+            heard = _heard_cell_spike(n - int(p[_syn.P_DELAY]), ring, loop_s)
             events = _syn.synapse_events(p, state[r], rng, r, trains, t_ms, dt_ms, heard, state)
             g = _syn.synapse_conductance(p, state[r], events, t_ms, dt_ms)
             e_mV = p[_syn.P_E]

@@ -85,6 +85,9 @@ S_TRAIN_POS = 5  # next index into the train
 S_EVENTS = 6  # events counted
 S_DECAY_A = 7  # cached decay of the first kinetic variable (tau, factor): columns 7, 8
 S_DECAY_B = 9  # cached decay of the rising part (dual_exp): columns 9, 10
+# cell source, law mode: spikes heard after this synapse's law for them was made, to be
+# delivered at the next sample computed (clampcore.step.queue_late_cell_spike)
+S_LATE = 11
 
 # A decayed conductance below this is set to 0: left alone it would sink into subnormal
 # floats after ~700 time constants, whose arithmetic is ~100x slower on x86 (measured here:
@@ -170,7 +173,9 @@ def synapse_events(
         s[S_TRAIN_POS] = pos
         return events
     if source == SRC_CELL:
-        return 1 if cell_spiked else 0
+        late = int(s[S_LATE])
+        s[S_LATE] = 0.0
+        return late + (1 if cell_spiked else 0)
     return 1 if state[int(p[P_SOURCE_ROW]), NEURON_S_SPIKED] != 0.0 else 0
 
 
