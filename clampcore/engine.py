@@ -752,5 +752,7 @@ def status_line(s: dict[str, Any], rate_hz: float) -> str:
         f"| late {s['late']} missing {s['missing']} watchdog {s['watchdog']} "
         f"rejected {s.get('rx_errors', 0)} "
         f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "
-        f"({s['firing_rate_hz']:.1f} Hz)" + (" | ZERO CURRENT" if s["zero_held"] else "")
+        f"({s['firing_rate_hz']:.1f} Hz)"
+        + (f" late {s['late_spikes']}" if s.get("late_spikes") else "")
+        + (" | ZERO CURRENT" if s["zero_held"] else "")
     )

@@ -309,3 +309,4 @@ def test_lockstep_law_mode_delivers_late_spikes_at_the_next_law_and_counts_them(
     onsets = np.flatnonzero((g[1:] > 0) & (g[:-1] == 0)) + 1
     assert onsets[0] == spikes[0] + lead + 1
     assert result.summary["late_spikes"] == spikes.size
+    assert rec["summary"]["late_spikes"] == spikes.size  # kept in the recording
