@@ -63,6 +63,7 @@ from clampcore.hostloop import (
     LK_NEXT_SEQ,
     LK_SAMPLES,
     LinkArrays,
+    PortRun,
     fd_loop,
     new_link,
     process_rx,
@@ -301,7 +302,8 @@ def _loop_process(
                 # Samples that came with the replies must be answered before the loop waits.
                 _feed(link, link.take_unread(), arrays, pa, sh)
                 if fd is not None:
-                    code = fd_loop(fd, spin_us, options.silent_ms, max_samples, arrays, pa, sh)
+                    port = PortRun(fd, spin_us, options.silent_ms, max_samples)
+                    code = fd_loop(port, arrays, pa, sh)
                 else:
                     code = _python_loop(link, arrays, pa, sh, options, max_samples)
         report["exit_code"] = int(code)
@@ -368,7 +370,7 @@ def _law_setup(
     length = top_up_laws(a, 0, pa, sh)
     process_rx_law(0, a, pa, sh)
     link.serial.write(a.io.tx[:length].tobytes())
-    law_fd_loop(-1, 0.0, 0, 0, a, pa, _stop_requested(sh))
+    law_fd_loop(PortRun(-1, 0.0, 0, 0), a, pa, _stop_requested(sh))
     return _LawRun(a, pa, sh)
 
 
@@ -382,7 +384,7 @@ def _law_loop(
         a.io.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
         length = process_rx_law(len(data), a, law.pa, law.sh)
         link.serial.write(a.io.tx[:length].tobytes())
-    return law_fd_loop(fd, spin_us, silent_ms, max_samples, a, law.pa, law.sh)
+    return law_fd_loop(PortRun(fd, spin_us, silent_ms, max_samples), a, law.pa, law.sh)
 
 
 # [loop] fields a law-evaluating board applies itself (clampcore.law.board_arrays).
@@ -432,7 +434,7 @@ def _compile_before_start(arrays: LinkArrays, pa: ProgramArrays, sh: LoopShared)
     The loop is entered once with a stop request already set, so it returns at once.
     """
     stopped = _stop_requested(sh)
-    fd_loop(-1, 0.0, 0, 0, arrays, pa, stopped)
+    fd_loop(PortRun(-1, 0.0, 0, 0), arrays, pa, stopped)
     process_rx(0, arrays, pa, stopped)
 
 

@@ -19,9 +19,9 @@ Compiled functions take their arrays in bundles named after their owner: the lin
 (``LinkArrays``, with its ``PortIo``), the program's (``clampcore.program.ProgramArrays``)
 and the shared blocks' (``clampcore.shared.LoopShared``).
 
-Public names: ``LinkArrays``, ``PortIo``, ``new_link``, ``new_port_io``, ``process_rx``,
-``fd_loop``, ``next_input`` and ``write_all`` (the wait, read and write of both loops), the
-``EXIT_*`` codes and ``LK_*``/``W_*`` indices.
+Public names: ``LinkArrays``, ``PortIo``, ``PortRun``, ``new_link``, ``new_port_io``,
+``process_rx``, ``fd_loop``, ``next_input`` and ``write_all`` (the wait, read and write of
+both loops), the ``EXIT_*`` codes and ``LK_*``/``W_*`` indices.
 """
 
 from __future__ import annotations
@@ -158,6 +158,15 @@ def new_port_io(tx_bytes: int) -> PortIo:
         pollfd=np.zeros(2, dtype=np.int32),
         wait=np.zeros(2, dtype=np.int64),
     )
+
+
+class PortRun(NamedTuple):
+    """How a loop serves its descriptor (both loop modes)."""
+
+    fd: int  # the port's file descriptor (blocking)
+    spin_us: float  # spin this long for input before sleeping in poll()
+    silent_ms: int  # stop when the board sent nothing for this long (0: never)
+    max_samples: int  # stop after this many samples (0: never)
 
 
 class LinkArrays(NamedTuple):
@@ -335,18 +344,11 @@ def record_turnaround(
 
 
 @kernel
-def next_input(
-    fd: int,
-    spin_us: float,
-    silent_ms: int,
-    max_samples: int,
-    samples: int,
-    io: PortIo,
-    ctrl: np.ndarray,
-) -> int:
+def next_input(port: PortRun, samples: int, io: PortIo, ctrl: np.ndarray) -> int:
     """One wait for the board, shared by both loops: the bytes read into ``io.rx`` (> 0),
     0 when a wait slice passed without input, or ``-EXIT_*`` when the loop must stop
     (stop request, ``max_samples`` reached, port closed or failed, board silent)."""
+    fd, spin_us, silent_ms, max_samples = port
     ctrl[CTRL_HEARTBEAT] += 1
     if ctrl[CTRL_STOP] != 0:
         return -EXIT_STOP_REQUEST
@@ -386,25 +388,15 @@ def write_all(fd: int, io: PortIo, length: int) -> bool:
 
 
 @kernel
-def fd_loop(
-    fd: int,
-    spin_us: float,
-    silent_ms: int,
-    max_samples: int,
-    link: LinkArrays,
-    pa: ProgramArrays,
-    sh: LoopShared,
-) -> int:
-    """Serve the board on ``fd`` until a stop condition; returns an ``EXIT_*`` code."""
-    io = link.io
-    io.wait[W_IDLE_MS] = 0
+def fd_loop(port: PortRun, link: LinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
+    """Serve the board on ``port`` until a stop condition; returns an ``EXIT_*`` code."""
     while True:
-        got = next_input(fd, spin_us, silent_ms, max_samples, link.lk[LK_SAMPLES], io, sh.ctrl)
+        got = next_input(port, link.lk[LK_SAMPLES], link.io, sh.ctrl)
         if got < 0:
             return -got
         length = process_rx(got, link, pa, sh) if got > 0 else 0
         if length > 0:
-            if not write_all(fd, io, length):
+            if not write_all(port.fd, link.io, length):
                 return EXIT_PORT_ERROR
-            turnaround_us = monotonic_us(io.timespec) - io.wait[W_READY_US]
+            turnaround_us = monotonic_us(link.io.timespec) - link.io.wait[W_READY_US]
             record_turnaround(link.lk, sh.ring, sh.stats, turnaround_us)

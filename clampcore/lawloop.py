@@ -37,8 +37,8 @@ from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.hostloop import (
     EXIT_PORT_ERROR,
     FLAG_ZEROED,
-    W_IDLE_MS,
     PortIo,
+    PortRun,
     _apply_mail,
     new_port_io,
     next_input,
@@ -357,25 +357,15 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
 
 
 @kernel
-def law_fd_loop(
-    fd: int,
-    spin_us: float,
-    silent_ms: int,
-    max_samples: int,
-    ll: LawLinkArrays,
-    pa: ProgramArrays,
-    sh: LoopShared,
-) -> int:
-    """Serve a law-evaluating board on ``fd`` until a stop condition; an ``EXIT_*`` code."""
-    io = ll.io
-    io.wait[W_IDLE_MS] = 0
+def law_fd_loop(port: PortRun, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
+    """Serve a law-evaluating board on ``port`` until a stop condition; an ``EXIT_*`` code."""
     while True:
-        got = next_input(fd, spin_us, silent_ms, max_samples, ll.lw[LW_SAMPLES], io, sh.ctrl)
+        got = next_input(port, ll.lw[LW_SAMPLES], ll.io, sh.ctrl)
         if got < 0:
             return -got
         if got > 0:
             length = process_rx_law(got, ll, pa, sh)
-        else:
-            length = _zero_frame(ll.lw, sh.ctrl, ll.body, io.tx, 0)  # the zero request cannot wait
-        if not write_all(fd, io, length):
+        else:  # the zero request cannot wait for the board
+            length = _zero_frame(ll.lw, sh.ctrl, ll.body, ll.io.tx, 0)
+        if not write_all(port.fd, ll.io, length):
             return EXIT_PORT_ERROR

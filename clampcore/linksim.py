@@ -94,16 +94,9 @@ class LinkHost(NamedTuple):
     counters: np.ndarray  # int64[2]: [0] late spikes, [1] the newest sample laws exist for
 
 
-class LinkTrace(NamedTuple):
-    """What a link run records per sample (``LinkRun``'s arrays)."""
-
-    adc: np.ndarray
-    v_true_mV: np.ndarray
-    i_pA: np.ndarray
-    flags: np.ndarray
-    g_nS: np.ndarray
-    i_element_pA: np.ndarray
-    neuron_spikes: np.ndarray
+# What a link run records per sample: ``LinkRun``'s arrays (described there), in order.
+TRACE_FIELDS = ("adc", "v_true_mV", "i_pA", "flags", "g_nS", "i_element_pA", "neuron_spikes")
+LinkTrace = NamedTuple("LinkTrace", [(f, np.ndarray) for f in TRACE_FIELDS])  # type: ignore[misc]
 
 
 @kernel
@@ -314,14 +307,8 @@ def run(
         link=lk.name,
         rate_hz=rate,
         lead_samples=lead,
-        adc=trace.adc,
-        v_true_mV=trace.v_true_mV,
-        i_pA=trace.i_pA,
-        flags=trace.flags,
-        g_nS=trace.g_nS,
-        i_element_pA=trace.i_element_pA,
         up_bytes=sched.up_bytes,
         down_bytes=sched.down_bytes,
         late_spikes=int(counters[0]),
-        neuron_spikes=trace.neuron_spikes,
+        **trace._asdict(),
     )

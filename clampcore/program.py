@@ -46,19 +46,12 @@ class ParamSlot:
     col: int
 
 
-class ProgramArrays(NamedTuple):
-    """A program's arrays as compiled code takes them (``step``, ``make_law``, the loops):
-    one argument that numba sees as the nine arrays, at no cost per call."""
+# ``Program``'s array fields, in the order compiled code takes them (``ProgramArrays``).
+ARRAY_FIELDS = ("kind", "params", "state", "rng", "trains", "g_out", "i_out", "loop_p", "loop_s")
 
-    kind: np.ndarray  # int64 (n,)
-    params: np.ndarray  # float64 (n, N_PARAMS)
-    state: np.ndarray  # float64 (n, N_STATE)
-    rng: np.ndarray  # uint64 (n,)
-    trains: np.ndarray  # float64, every train source's times (ms) one after another
-    g_out: np.ndarray  # float64 (n,)  conductance of each element at the last sample, nS
-    i_out: np.ndarray  # float64 (n,)  current of each element at the last sample, pA
-    loop_p: np.ndarray  # float64 (N_LOOP_PARAMS,): clampcore.step's LP_* columns
-    loop_s: np.ndarray  # float64 (N_LOOP_STATE + ring,): clampcore.step's LS_* columns
+# A program's arrays as compiled code takes them (``step``, ``make_law``, the loops): one
+# argument that numba passes as the nine arrays, at no cost per call. Fields: as ``Program``.
+ProgramArrays = NamedTuple("ProgramArrays", [(f, np.ndarray) for f in ARRAY_FIELDS])  # type: ignore[misc]
 
 
 @dataclass
@@ -74,8 +67,8 @@ class Program:
     trains: np.ndarray  # float64, every train source's times (ms) one after another
     g_out: np.ndarray  # float64 (n,)  conductance of each element at the last sample, nS
     i_out: np.ndarray  # float64 (n,)  current of each element at the last sample, pA
-    loop_p: np.ndarray
-    loop_s: np.ndarray
+    loop_p: np.ndarray  # float64 (N_LOOP_PARAMS,): clampcore.step's LP_* columns
+    loop_s: np.ndarray  # float64 (N_LOOP_STATE + ring,): clampcore.step's LS_* columns
     experiment: Experiment
 
     @property
@@ -84,17 +77,7 @@ class Program:
 
     def arrays(self) -> ProgramArrays:
         """The arrays of ``step`` (its argument after ``v_mV`` and ``n``)."""
-        return ProgramArrays(
-            self.kind,
-            self.params,
-            self.state,
-            self.rng,
-            self.trains,
-            self.g_out,
-            self.i_out,
-            self.loop_p,
-            self.loop_s,
-        )
+        return ProgramArrays(*(getattr(self, f) for f in ARRAY_FIELDS))
 
     def row(self, name: str) -> int:
         try:

@@ -50,11 +50,11 @@ try:
     pa = program.arrays()
     link = hostloop.new_link(conv)
     hostloop.process_rx(0, link, pa, sh)
-    hostloop.fd_loop(-1, 0.0, 0, 0, link, pa, sh)
+    hostloop.fd_loop(hostloop.PortRun(-1, 0.0, 0, 0), link, pa, sh)
     law = lawloop.new_law_link(5, False, len(program.names), 0, conv)
     lawloop.top_up_laws(law, 0, pa, sh)
     lawloop.process_rx_law(0, law, pa, sh)
-    lawloop.law_fd_loop(-1, 0.0, 0, 0, law, pa, sh)
+    lawloop.law_fd_loop(hostloop.PortRun(-1, 0.0, 0, 0), law, pa, sh)
 finally:
     shared.close()
 kernels = {
@@ -76,16 +76,9 @@ print(json.dumps({
 
 def _child_stats() -> dict[str, list[int]]:
     env = dict(os.environ, PYTHONPATH=str(ROOT))
-    out = subprocess.run(
-        [sys.executable, "-c", _CHILD],
-        cwd=ROOT,
-        env=env,
-        capture_output=True,
-        text=True,
-        timeout=900,
-        check=True,
-    )
-    return json.loads(out.stdout.strip().splitlines()[-1])
+    cmd = [sys.executable, "-c", _CHILD]
+    out = subprocess.check_output(cmd, cwd=ROOT, env=env, text=True, timeout=900)
+    return json.loads(out.strip().splitlines()[-1])
 
 
 @pytest.mark.skipif(
