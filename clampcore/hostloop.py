@@ -151,6 +151,7 @@ class PortIo(NamedTuple):
 
 
 def new_port_io(tx_bytes: int) -> PortIo:
+    """Read and write buffers of a loop that writes at most ``tx_bytes`` a pass."""
     return PortIo(
         rx=np.zeros(4096, dtype=np.uint8),  # a few dozen frames: more than one pass ever gets
         tx=np.zeros(tx_bytes, dtype=np.uint8),
