@@ -151,7 +151,8 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
     A cell-driven synapse hears the cell's spike of sample n - delay from the
     history ring (``hist_record_cell_spike`` must have run for that sample).
     """
-    kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s = pa
+    kind, params, state, rng = pa.kind, pa.params, pa.state, pa.rng
+    g_out, i_out, loop_p, loop_s = pa.g_out, pa.i_out, pa.loop_p, pa.loop_s
     dt_ms = loop_p[LP_DT_MS]
     t_ms = n * dt_ms
     ring = int(loop_p[LP_SPIKE_RING])
@@ -176,7 +177,7 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
             e_mV = p[_leak.P_E]
         elif k == KIND_SYNAPSE:
             heard = _heard_cell_spike(n - int(p[_syn.P_DELAY]), ring, loop_s)
-            events = _syn.synapse_events(p, state[r], rng, r, trains, t_ms, dt_ms, heard, state)
+            events = _syn.synapse_events(pa, r, t_ms, dt_ms, heard)
             g = _syn.synapse_conductance(p, state[r], events, t_ms, dt_ms)
             e_mV = p[_syn.P_E]
             blocked = p[_syn.P_MG] > 0.0

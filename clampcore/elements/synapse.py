@@ -35,6 +35,7 @@ Public names: ``COLUMNS``, the ``SRC_*`` and ``KIN_*`` codes, ``synapse_events``
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -42,6 +43,9 @@ from clampcore.elements.decay import decay_factor
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.jit import kernel
 from clampcore.rng import normal, uniform
+
+if TYPE_CHECKING:  # clampcore.program builds on the element modules
+    from clampcore.program import ProgramArrays
 
 KIN_EXP, KIN_ALPHA, KIN_DUAL = 0, 1, 2
 KINETICS_CODES = {"exp": KIN_EXP, "alpha": KIN_ALPHA, "dual_exp": KIN_DUAL}
@@ -145,20 +149,12 @@ def poisson_count(rng: np.ndarray, row: int, mean: float) -> int:
 
 @kernel
 def synapse_events(
-    p: np.ndarray,
-    s: np.ndarray,
-    rng: np.ndarray,
-    row: int,
-    trains: np.ndarray,
-    t_ms: float,
-    dt_ms: float,
-    cell_spiked: bool,
-    state: np.ndarray,
+    pa: ProgramArrays, row: int, t_ms: float, dt_ms: float, cell_spiked: bool
 ) -> int:
-    """Presynaptic events at this sample (0, 1, or more for a dense train).
-
-    ``state`` is the whole program state, read for a neuron source's spike flag.
+    """Presynaptic events at this sample for the synapse of ``row`` (0, 1, or more for a
+    dense train); ``pa``: the program's arrays (a neuron source's spike flag is in its state).
     """
+    p, s, rng, trains, state = pa.params[row], pa.state[row], pa.rng, pa.trains, pa.state
     source = int(p[P_SOURCE])
     if source == SRC_POISSON:
         return poisson_count(rng, row, p[P_RATE] * dt_ms * 1e-3)
