@@ -100,15 +100,11 @@ def typical_experiment(cell_model: str = "passive") -> dict:
 
 
 @njit(cache=True, nogil=True)
-def _step_loop(
-    v_trace, n0, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s, out
-) -> None:
+def _step_loop(v_trace, n0, pa, out) -> None:
     """Call ``step`` for ``out.size`` samples, V read from ``v_trace`` (cyclically)."""
     n_v = v_trace.size
     for k in range(out.size):
-        out[k] = step(
-            v_trace[k % n_v], n0 + k, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s
-        )
+        out[k] = step(v_trace[k % n_v], n0 + k, pa)
 
 
 class _StepRun:
@@ -118,12 +114,12 @@ class _StepRun:
         self.v_trace = v_trace
         self.arrays = build_program(typical_experiment()).arrays()
         self.out = np.empty(N_STEPS)
-        _step_loop(v_trace, 0, *self.arrays, self.out[:10])  # compile (or load from the cache)
+        _step_loop(v_trace, 0, self.arrays, self.out[:10])  # compile (or load from the cache)
         self.n0 = 10  # neuron refractoriness reads the sample index, as in a run
 
     def ns_per_sample(self) -> float:
         t0 = time.thread_time_ns()
-        _step_loop(self.v_trace, self.n0, *self.arrays, self.out)
+        _step_loop(self.v_trace, self.n0, self.arrays, self.out)
         elapsed = time.thread_time_ns() - t0
         self.n0 += N_STEPS
         return elapsed / N_STEPS
@@ -207,7 +203,7 @@ def _check_reference(v_trace: np.ndarray, tmpdir: str) -> float:
     c_run = _CRun(v_trace, tmpdir)
     program = build_program(typical_experiment())
     out = np.empty(N_STEPS)
-    _step_loop(v_trace, 0, *program.arrays(), out)
+    _step_loop(v_trace, 0, program.arrays(), out)
     return float(np.max(np.abs(c_run.run(N_STEPS) - out)))
 
 

@@ -352,7 +352,8 @@ def run_with_status(
         print(
             f"law mode: the board evaluated the law at its own V on {share:.2%} of samples; "
             f"{s.get('faults', 0)} at 0 pA (no law young enough, or a fault), "
-            f"{s.get('late', 0)} flagged with late laws"
+            f"{s.get('late', 0)} flagged with late laws; {s.get('late_spikes', 0)} cell spikes "
+            "heard too late by a cell-driven synapse (each delivered with the next law made)"
         )
     elif t.get("latency_p50_samples") is not None and t.get("turnaround_p50_us") is not None:
         print(

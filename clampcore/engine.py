@@ -61,12 +61,14 @@ from clampcore.hostloop import (
     LK_LAST_COUNTER,
     LK_NEXT_SEQ,
     LK_SAMPLES,
+    LinkArrays,
+    PortRun,
     fd_loop,
     new_link,
     process_rx,
     record_turnaround,
 )
-from clampcore.law import CURRENT_MODE, LAW_MODE, board_arrays, law_scale
+from clampcore.law import CURRENT_MODE, LAW_MODE, board_arrays
 from clampcore.lawloop import (
     LawLinkArrays,
     law_fd_loop,
@@ -77,6 +79,7 @@ from clampcore.lawloop import (
 from clampcore.program import (
     MAIL_TARGETS,
     Program,
+    ProgramArrays,
     build_program,
     check_live_change,
     delay_samples,
@@ -95,6 +98,7 @@ from clampcore.shared import (
     STATE_STARTING,
     STATE_STOPPED,
     STATE_STOPPING,
+    LoopShared,
     RingLayout,
     SharedRun,
 )
@@ -107,6 +111,10 @@ _PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
 # code relies on").
 _ZERO_WAIT_PERIODS = 3
 _ZERO_WAIT_SLACK_S = 0.05
+# Law mode: how long the teardown waits for a sample that shows the board's ZERO in force
+# before it sends STOP. Measured: with both cores of a test machine busy (load 9) the rig
+# was descheduled for more than 0.2 s, and STOP then arrived before the ZERO had acted.
+_ZERO_CONFIRM_S = 1.0
 
 
 class EngineError(RuntimeError):
@@ -149,6 +157,9 @@ class RunOptions:
     rig_link: str | None = None  # for port "sim": a link model (clampcore.links), wall clock only
     # "current" or "law" (PROTOCOL.md §10) instead of the experiment's [loop] mode; None: as set.
     mode: str | None = None
+    # Law mode: this look-ahead in samples instead of law_lead_samples' (None). One longer
+    # than a cell-driven synapse's delay allows makes its spikes late (delivered late, counted).
+    lead_samples: int | None = None
     # Extra fields for the recording's metadata (e.g. the stability guard's "stability").
     extra_meta: dict[str, Any] = field(default_factory=dict)
 
@@ -260,13 +271,12 @@ def _loop_process(
             np.clip(options.watchdog_ms * 1000, hello.watchdog_min_us, hello.watchdog_max_us)
         )
         link.configure(rate, watchdog_us, zero)
-        arrays = new_link(zero)
-        loop_args = (conv, *program.arrays(), program.spike_rows(), shared.ctrl, shared.ring)
-        loop_args += (shared.mailbox, shared.applied, shared.stats)
+        arrays = new_link(conv)
+        pa, sh = program.arrays(), shared.loop(program.spike_rows())
         law = None
         report["mode"] = CURRENT_MODE
         if (options.mode or exp.loop["mode"]) == LAW_MODE:
-            law = _law_setup(link, program, conv, loop_args, options)
+            law = _law_setup(link, program, conv, sh, options)
             report["mode"] = LAW_MODE if law is not None else CURRENT_MODE
             if law is None:
                 report["notice"] = (
@@ -275,7 +285,7 @@ def _loop_process(
                     "link round trip old (PROTOCOL.md §10)"
                 )
         if law is None:
-            _compile_before_start(arrays, loop_args)
+            _compile_before_start(arrays, pa, sh)
         report["realtime"] = fifo_scheduling(options.realtime_priority)
         spin_us = min(options.spin_us, SPIN_SHARE * 1e6 / rate)
         with hold_cpu_dma_latency_zero(options.low_latency) as held:
@@ -290,13 +300,12 @@ def _loop_process(
                 code = _law_loop(link, fd, law, spin_us, options.silent_ms, max_samples)
             else:
                 # Samples that came with the replies must be answered before the loop waits.
-                _feed(link, link.take_unread(), arrays, loop_args, shared)
+                _feed(link, link.take_unread(), arrays, pa, sh)
                 if fd is not None:
-                    code = fd_loop(
-                        fd, spin_us, options.silent_ms, max_samples, *arrays.arrays(), *loop_args
-                    )
+                    port = PortRun(fd, spin_us, options.silent_ms, max_samples)
+                    code = fd_loop(port, arrays, pa, sh)
                 else:
-                    code = _python_loop(link, arrays, loop_args, options, max_samples, shared)
+                    code = _python_loop(link, arrays, pa, sh, options, max_samples)
         report["exit_code"] = int(code)
         shared.ctrl[CTRL_STATE] = STATE_STOPPING
         if code in (EXIT_PORT_CLOSED, EXIT_PORT_ERROR, EXIT_BOARD_SILENT):
@@ -312,7 +321,7 @@ def _loop_process(
                 # applies it; PROTOCOL.md §5.2), then stop the board.
                 with contextlib.suppress(BoardError, OSError, NameError):
                     if law is not None:
-                        link.zero_now()
+                        link.zero_now(confirm_s=_ZERO_CONFIRM_S)
                     else:
                         link.command_after(
                             int(arrays.lk[LK_NEXT_SEQ]),
@@ -337,36 +346,32 @@ def _loop_process(
 
 @dataclass
 class _LawRun:
-    """Law mode's buffers and the compiled loop's arguments after the descriptor."""
+    """Law mode's buffers and the compiled loop's other arguments."""
 
     arrays: LawLinkArrays
-    args: tuple
+    pa: ProgramArrays
+    sh: LoopShared
 
 
 def _law_setup(
-    link: BoardLink, program: Program, conv: np.ndarray, loop_args: tuple, options: RunOptions
+    link: BoardLink, program: Program, conv: np.ndarray, sh: LoopShared, options: RunOptions
 ) -> _LawRun | None:
     """Give the board its rules and the first laws; None when it cannot evaluate laws."""
     exp = program.experiment
     rate = float(exp.loop["rate_hz"])
-    lead = law_lead_samples(program)
+    lead = options.lead_samples or law_lead_samples(program)
     lifetime = max(1, round(exp.loop["lifetime_ms"] * rate / 1000.0))
     bf, bi, _bs, _law, table = board_arrays(program, conv, LAW_MODE, lifetime)
     if not link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else []):
         return None
-    neurons = program.spike_rows()
-    arrays = new_law_link(lead, table.size > 0, len(program.names), neurons.size)
-    args = (conv, law_scale(conv), *loop_args[1:])
-    a = arrays
+    a = new_law_link(lead, table.size > 0, len(program.names), sh.neuron_rows.size, conv)
+    pa = program.arrays()
     # Compile (or load) before the board starts, then send the first laws (samples 0..lead-1).
-    # args: conv, scale, kind .. neuron_rows, ctrl, ring, mailbox, applied, stats
-    length = top_up_laws(a.lw, a.laws, a.lawbits, a.ghist, a.tx, 0, *args[1:13], *args[14:])
-    process_rx_law(0, *a.arrays()[:14], *args)
-    link.serial.write(a.tx[:length].tobytes())
-    stopped = args[12].copy()
-    stopped[CTRL_STOP] = 1
-    law_fd_loop(-1, 0.0, 0, 0, *a.arrays(), *args[:12], stopped, *args[13:])
-    return _LawRun(arrays, args)
+    length = top_up_laws(a, 0, pa, sh)
+    process_rx_law(0, a, pa, sh)
+    link.serial.write(a.io.tx[:length].tobytes())
+    law_fd_loop(PortRun(-1, 0.0, 0, 0), a, pa, _stop_requested(sh))
+    return _LawRun(a, pa, sh)
 
 
 def _law_loop(
@@ -376,10 +381,10 @@ def _law_loop(
     a = law.arrays
     data = link.take_unread()
     if data:
-        a.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
-        length = process_rx_law(len(data), *a.arrays()[:14], *law.args)
-        link.serial.write(a.tx[:length].tobytes())
-    return law_fd_loop(fd, spin_us, silent_ms, max_samples, *a.arrays(), *law.args)
+        a.io.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
+        length = process_rx_law(len(data), a, law.pa, law.sh)
+        link.serial.write(a.io.tx[:length].tobytes())
+    return law_fd_loop(PortRun(fd, spin_us, silent_ms, max_samples), a, law.pa, law.sh)
 
 
 # [loop] fields a law-evaluating board applies itself (clampcore.law.board_arrays).
@@ -416,55 +421,55 @@ def law_lead_samples(program: Program) -> int:
     return lead
 
 
-def _compile_before_start(arrays: Any, loop_args: tuple) -> None:
+def _stop_requested(sh: LoopShared) -> LoopShared:
+    """``sh`` with a copy of its control words that asks the loop to stop at once."""
+    ctrl = sh.ctrl.copy()
+    ctrl[CTRL_STOP] = 1
+    return sh._replace(ctrl=ctrl)
+
+
+def _compile_before_start(arrays: LinkArrays, pa: ProgramArrays, sh: LoopShared) -> None:
     """Load or compile the loop before the board starts sampling (compiling takes seconds).
 
     The loop is entered once with a stop request already set, so it returns at once.
     """
-    stopped = loop_args[-5].copy()  # ctrl
-    stopped[CTRL_STOP] = 1
-    args = (*loop_args[:-5], stopped, *loop_args[-4:])
-    fd_loop(-1, 0.0, 0, 0, *arrays.arrays(), *args)
-    a = arrays
-    process_rx(
-        0, a.lk, a.answered, a.dstate, a.dbuf, a.frame, a.adc, a.fields, a.dac, a.rx, a.tx,
-        *args,
-    )  # fmt: skip
+    stopped = _stop_requested(sh)
+    fd_loop(PortRun(-1, 0.0, 0, 0), arrays, pa, stopped)
+    process_rx(0, arrays, pa, stopped)
 
 
-def _feed(link: BoardLink, data: bytes, arrays: Any, loop_args: tuple, shared: SharedRun) -> None:
+def _feed(
+    link: BoardLink, data: bytes, arrays: LinkArrays, pa: ProgramArrays, sh: LoopShared
+) -> None:
     """Run bytes already received through the per-sample path and send the answer."""
     if not data:
         return
     t_ready = time.monotonic()
-    a = arrays
-    a.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
-    length = process_rx(
-        len(data), a.lk, a.answered, a.dstate, a.dbuf, a.frame, a.adc, a.fields, a.dac,
-        a.rx, a.tx, *loop_args,
-    )  # fmt: skip
+    io = arrays.io
+    io.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
+    length = process_rx(len(data), arrays, pa, sh)
     if length > 0:
         try:
-            link.serial.write(a.tx[:length].tobytes())
+            link.serial.write(io.tx[:length].tobytes())
         except Exception as exc:
             raise BoardError(link.port, "sending a command", str(exc)) from exc
-        record_turnaround(a.lk, shared.ring, shared.stats, (time.monotonic() - t_ready) * 1e6)
+        record_turnaround(arrays.lk, sh.ring, sh.stats, (time.monotonic() - t_ready) * 1e6)
 
 
 def _python_loop(
     link: BoardLink,
-    arrays: Any,
-    loop_args: tuple,
+    arrays: LinkArrays,
+    pa: ProgramArrays,
+    sh: LoopShared,
     options: RunOptions,
     max_samples: int,
-    shared: SharedRun,
 ) -> int:
     """The same per-sample path with pyserial doing the I/O (URL ports without a descriptor)."""
     ser = link.serial
     idle_since = time.monotonic()
-    rx_size = arrays.rx.size
+    rx_size = arrays.io.rx.size
     while True:
-        if shared.ctrl[CTRL_STOP]:
+        if sh.ctrl[CTRL_STOP]:
             return EXIT_STOP_REQUEST
         if max_samples > 0 and arrays.lk[LK_SAMPLES] >= max_samples:
             return EXIT_DURATION
@@ -478,7 +483,7 @@ def _python_loop(
             continue
         idle_since = time.monotonic()
         try:
-            _feed(link, data, arrays, loop_args, shared)
+            _feed(link, data, arrays, pa, sh)
         except BoardError:
             return EXIT_PORT_ERROR
 
@@ -749,5 +754,7 @@ def status_line(s: dict[str, Any], rate_hz: float) -> str:
         f"| late {s['late']} missing {s['missing']} watchdog {s['watchdog']} "
         f"rejected {s.get('rx_errors', 0)} "
         f"| faults {s['faults']} limit {s['limited']} | spikes {s['spikes']} "
-        f"({s['firing_rate_hz']:.1f} Hz)" + (" | ZERO CURRENT" if s["zero_held"] else "")
+        f"({s['firing_rate_hz']:.1f} Hz)"
+        + (f" late {s['late_spikes']}" if s.get("late_spikes") else "")
+        + (" | ZERO CURRENT" if s["zero_held"] else "")
     )

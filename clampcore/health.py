@@ -21,6 +21,7 @@ from clampcore.shared import (
     ST_FAULTS,
     ST_LAT_HIST,
     ST_LATE,
+    ST_LATE_SPIKES,
     ST_LIMITED,
     ST_MISSING,
     ST_RX_ERROR,
@@ -75,6 +76,8 @@ def loop_health(stats: np.ndarray, rate_hz: float) -> dict[str, Any]:
         "zeroed": int(st[ST_ZEROED]),
         "commands": int(st[ST_COMMANDS]),
         "spikes": int(st[ST_SPIKES]),
+        # Law mode: cell spikes a cell-driven synapse heard too late (delivered late).
+        "late_spikes": int(st[ST_LATE_SPIKES]),
         "elapsed_s": samples / rate_hz,
         "firing_rate_hz": st[ST_SPIKES] / (samples / rate_hz) if samples else 0.0,
     }

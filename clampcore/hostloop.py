@@ -15,20 +15,26 @@ preallocated arrays; no allocation, no Python objects, no locks, no I/O but the
 one read and one write per pass. Policy (what to do on a fault, when to record,
 how to show status) lives in ``clampcore.engine``.
 
-Public names: ``LinkArrays``, ``new_link``, ``process_rx``, ``fd_loop``, the
-``EXIT_*`` codes and ``LK_*`` indices.
+Compiled functions take their arrays in bundles named after their owner: the link's
+(``LinkArrays``, with its ``PortIo``), the program's (``clampcore.program.ProgramArrays``)
+and the shared blocks' (``clampcore.shared.LoopShared``).
+
+Public names: ``LinkArrays``, ``PortIo``, ``PortRun``, ``new_link``, ``new_port_io``,
+``process_rx``, ``fd_loop``, ``next_input`` and ``write_all`` (the wait, read and write of
+both loops), the ``EXIT_*`` codes and ``LK_*``/``W_*`` indices.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
 from clampcore.calibration import counts_to_mV, pA_to_counts
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.jit import kernel
+from clampcore.program import ProgramArrays
 from clampcore.shared import (
     APPLIED_SAMPLE,
     COL_COUNTER,
@@ -66,6 +72,7 @@ from clampcore.shared import (
     ST_ZEROED,
     TURN_BIN_US,
     TURN_BINS,
+    LoopShared,
 )
 from clampcore.step import (
     FAULT_BAD_V,
@@ -128,11 +135,45 @@ _POLL_SLICE_MS = 50  # a sleeping wait wakes this often to see a stop request
 _POLLHUP_POLLERR_POLLNVAL = 0x10 | 0x08 | 0x20  # <poll.h> on Linux
 
 
-@dataclass
-class LinkArrays:
-    """Every buffer the compiled link needs, allocated once per run."""
+# PortIo.wait columns
+W_IDLE_MS = 0  # time without input since the last bytes came, ms
+W_READY_US = 1  # monotonic time at which the last input was ready, µs
 
-    lk: np.ndarray
+
+class PortIo(NamedTuple):
+    """The buffers of one pass of read and write on a descriptor (both loop modes)."""
+
+    rx: np.ndarray  # uint8: the bytes of one read
+    tx: np.ndarray  # uint8: the bytes of one write
+    timespec: np.ndarray  # int64[2]: scratch of clock_gettime and nanosleep
+    pollfd: np.ndarray  # int32[2]: scratch of poll
+    wait: np.ndarray  # int64[2]: the W_* columns
+
+
+def new_port_io(tx_bytes: int) -> PortIo:
+    """Read and write buffers of a loop that writes at most ``tx_bytes`` a pass."""
+    return PortIo(
+        rx=np.zeros(4096, dtype=np.uint8),  # a few dozen frames: more than one pass ever gets
+        tx=np.zeros(tx_bytes, dtype=np.uint8),
+        timespec=np.zeros(2, dtype=np.int64),
+        pollfd=np.zeros(2, dtype=np.int32),
+        wait=np.zeros(2, dtype=np.int64),
+    )
+
+
+class PortRun(NamedTuple):
+    """How a loop serves its descriptor (both loop modes)."""
+
+    fd: int  # the port's file descriptor (blocking)
+    spin_us: float  # spin this long for input before sleeping in poll()
+    silent_ms: int  # stop when the board sent nothing for this long (0: never)
+    max_samples: int  # stop after this many samples (0: never)
+
+
+class LinkArrays(NamedTuple):
+    """Every buffer of the current-mode link, allocated once per run."""
+
+    lk: np.ndarray  # int64 (N_LK,): the LK_* columns
     answered: np.ndarray  # sample counter each command seq answered (-1: none)
     dstate: np.ndarray
     dbuf: np.ndarray
@@ -140,35 +181,18 @@ class LinkArrays:
     adc: np.ndarray
     fields: np.ndarray
     dac: np.ndarray
-    rx: np.ndarray
-    tx: np.ndarray
-    timespec: np.ndarray
-    pollfd: np.ndarray
-
-    def arrays(self) -> tuple[np.ndarray, ...]:
-        return (
-            self.lk,
-            self.answered,
-            self.dstate,
-            self.dbuf,
-            self.frame,
-            self.adc,
-            self.fields,
-            self.dac,
-            self.rx,
-            self.tx,
-            self.timespec,
-            self.pollfd,
-        )
+    conv: np.ndarray  # the board's converters and the amplifier (clampcore.calibration)
+    io: PortIo
 
 
-def new_link(zero_counts: int) -> LinkArrays:
+def new_link(conv: np.ndarray) -> LinkArrays:
+    """Buffers of a current-mode run on a board with converters ``conv``."""
     dstate, dbuf = new_deframer()
     lk = np.zeros(N_LK, dtype=np.int64)
     lk[LK_NEXT_SEQ] = 1
     lk[LK_LAST_COUNTER] = -1
     lk[LK_FIRST_COUNTER] = -1
-    lk[LK_ZERO_COUNTS] = zero_counts
+    lk[LK_ZERO_COUNTS] = pA_to_counts(conv, 0.0)
     return LinkArrays(
         lk=lk,
         answered=np.full(_SEQ_SPACE, -1, dtype=np.int64),
@@ -178,10 +202,8 @@ def new_link(zero_counts: int) -> LinkArrays:
         adc=np.zeros(MAX_CHANNELS, dtype=np.int64),
         fields=np.zeros(SAMPLE_NFIELDS, dtype=np.int64),
         dac=np.zeros(1, dtype=np.int64),
-        rx=np.zeros(4096, dtype=np.uint8),  # a few dozen frames: more than one pass ever gets
-        tx=np.zeros(MAX_WIRE, dtype=np.uint8),
-        timespec=np.zeros(2, dtype=np.int64),
-        pollfd=np.zeros(2, dtype=np.int32),
+        conv=conv,
+        io=new_port_io(MAX_WIRE),
     )
 
 
@@ -211,36 +233,13 @@ def _apply_mail(
 
 
 @kernel
-def process_rx(
-    nbytes: int,
-    lk: np.ndarray,
-    answered: np.ndarray,
-    dstate: np.ndarray,
-    dbuf: np.ndarray,
-    frame: np.ndarray,
-    adc: np.ndarray,
-    fields: np.ndarray,
-    dac: np.ndarray,
-    rx: np.ndarray,
-    tx: np.ndarray,
-    conv: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    neuron_rows: np.ndarray,
-    ctrl: np.ndarray,
-    ring: np.ndarray,
-    mailbox: np.ndarray,
-    applied: np.ndarray,
-    stats: np.ndarray,
-) -> int:
+def process_rx(nbytes: int, link: LinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
     """Handle ``rx[:nbytes]``; return the length of the COMMAND frame left in ``tx`` (or 0)."""
+    lk, answered, dstate, dbuf, frame, adc, fields, dac, conv, io = link
+    rx, tx = io.rx, io.tx
+    kind, params, state, g_out, i_out = pa.kind, pa.params, pa.state, pa.g_out, pa.i_out
+    loop_p, loop_s = pa.loop_p, pa.loop_s
+    ctrl, ring, mailbox, applied, stats, neuron_rows = sh
     n_el = kind.shape[0]
     rows = ring.shape[0]
     while True:
@@ -267,7 +266,7 @@ def process_rx(
         n = counter - lk[LK_FIRST_COUNTER]
         _apply_mail(ctrl, mailbox, applied, params, loop_p, n)
         v_mV = counts_to_mV(conv, adc[0])
-        i_pA = step(v_mV, n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+        i_pA = step(v_mV, n, pa)
         flags = int(loop_s[LS_FLAGS])
         if ctrl[CTRL_ZERO] != 0:
             i_pA = 0.0
@@ -346,100 +345,59 @@ def record_turnaround(
 
 
 @kernel
-def fd_loop(
-    fd: int,
-    spin_us: float,
-    silent_ms: int,
-    max_samples: int,
-    lk: np.ndarray,
-    answered: np.ndarray,
-    dstate: np.ndarray,
-    dbuf: np.ndarray,
-    frame: np.ndarray,
-    adc: np.ndarray,
-    fields: np.ndarray,
-    dac: np.ndarray,
-    rx: np.ndarray,
-    tx: np.ndarray,
-    timespec: np.ndarray,
-    pollfd: np.ndarray,
-    conv: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    neuron_rows: np.ndarray,
-    ctrl: np.ndarray,
-    ring: np.ndarray,
-    mailbox: np.ndarray,
-    applied: np.ndarray,
-    stats: np.ndarray,
-) -> int:
-    """Serve the board on ``fd`` until a stop condition; returns an ``EXIT_*`` code."""
-    idle_ms = 0
+def next_input(port: PortRun, samples: int, io: PortIo, ctrl: np.ndarray) -> int:
+    """One wait for the board, shared by both loops: the bytes read into ``io.rx`` (> 0),
+    0 when a wait slice passed without input, or ``-EXIT_*`` when the loop must stop
+    (stop request, ``max_samples`` reached, port closed or failed, board silent)."""
+    fd, spin_us, silent_ms, max_samples = port
+    ctrl[CTRL_HEARTBEAT] += 1
+    if ctrl[CTRL_STOP] != 0:
+        return -EXIT_STOP_REQUEST
+    if max_samples > 0 and samples >= max_samples:
+        return -EXIT_DURATION
+    ready = wait_readable(fd, spin_us, _POLL_SLICE_MS, io.timespec, io.pollfd)
+    if ready < 0:
+        return -EXIT_PORT_ERROR
+    if ready == 0:
+        io.wait[W_IDLE_MS] += _POLL_SLICE_MS
+        if silent_ms > 0 and io.wait[W_IDLE_MS] >= silent_ms:
+            return -EXIT_BOARD_SILENT
+        return 0
+    revents = io.pollfd[1] >> 16
+    if (revents & 0x01) == 0 and (revents & _POLLHUP_POLLERR_POLLNVAL) != 0:
+        return -EXIT_PORT_CLOSED
+    io.wait[W_IDLE_MS] = 0
+    io.wait[W_READY_US] = monotonic_us(io.timespec)
+    got = fd_read(fd, io.rx, 0, io.rx.shape[0])
+    if got == 0:
+        return -EXIT_PORT_CLOSED
+    if got < 0:
+        return -EXIT_PORT_ERROR
+    return got
+
+
+@kernel
+def write_all(fd: int, io: PortIo, length: int) -> bool:
+    """Write ``io.tx[:length]`` to ``fd``; False when a write failed."""
+    done = 0
+    while done < length:
+        w = fd_write(fd, io.tx, done, length - done)
+        if w <= 0:
+            return False
+        done += w
+    return True
+
+
+@kernel
+def fd_loop(port: PortRun, link: LinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
+    """Serve the board on ``port`` until a stop condition; returns an ``EXIT_*`` code."""
     while True:
-        ctrl[CTRL_HEARTBEAT] += 1
-        if ctrl[CTRL_STOP] != 0:
-            return EXIT_STOP_REQUEST
-        if max_samples > 0 and lk[LK_SAMPLES] >= max_samples:
-            return EXIT_DURATION
-        ready = wait_readable(fd, spin_us, _POLL_SLICE_MS, timespec, pollfd)
-        if ready < 0:
-            return EXIT_PORT_ERROR
-        if ready == 0:
-            idle_ms += _POLL_SLICE_MS
-            if silent_ms > 0 and idle_ms >= silent_ms:
-                return EXIT_BOARD_SILENT
-            continue
-        revents = pollfd[1] >> 16
-        if (revents & 0x01) == 0 and (revents & _POLLHUP_POLLERR_POLLNVAL) != 0:
-            return EXIT_PORT_CLOSED
-        idle_ms = 0
-        t_ready = monotonic_us(timespec)
-        got = fd_read(fd, rx, 0, rx.shape[0])
-        if got == 0:
-            return EXIT_PORT_CLOSED
+        got = next_input(port, link.lk[LK_SAMPLES], link.io, sh.ctrl)
         if got < 0:
-            return EXIT_PORT_ERROR
-        length = process_rx(
-            got,
-            lk,
-            answered,
-            dstate,
-            dbuf,
-            frame,
-            adc,
-            fields,
-            dac,
-            rx,
-            tx,
-            conv,
-            kind,
-            params,
-            state,
-            rng,
-            trains,
-            g_out,
-            i_out,
-            loop_p,
-            loop_s,
-            neuron_rows,
-            ctrl,
-            ring,
-            mailbox,
-            applied,
-            stats,
-        )
+            return -got
+        length = process_rx(got, link, pa, sh) if got > 0 else 0
         if length > 0:
-            done = 0
-            while done < length:
-                w = fd_write(fd, tx, done, length - done)
-                if w <= 0:
-                    return EXIT_PORT_ERROR
-                done += w
-            record_turnaround(lk, ring, stats, monotonic_us(timespec) - t_ready)
+            if not write_all(port.fd, link.io, length):
+                return EXIT_PORT_ERROR
+            turnaround_us = monotonic_us(link.io.timespec) - link.io.wait[W_READY_US]
+            record_turnaround(link.lk, sh.ring, sh.stats, turnaround_us)

@@ -21,12 +21,13 @@ guard, spike detection, one threshold_reset element, the law's lifetime, the blo
 table) into the board's parameter arrays.
 
 Public names: ``LAW_MODE``, ``CURRENT_MODE``, ``law_scale``, ``law_to_counts``, ``make_law``,
-``current_to_law``, ``board_arrays``, ``first_count_at_or_above``, ``block_table``.
+``current_to_law``, ``board_arrays``, ``BoardArrays``, ``first_count_at_or_above``, ``block_table``.
 """
 
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numpy as np
 
@@ -35,7 +36,7 @@ from clampcore.elements import KIND_THRESHOLD_RESET, P_ENABLED
 from clampcore.elements import synapse as _syn
 from clampcore.elements import threshold_reset as _tr
 from clampcore.jit import kernel
-from clampcore.program import Program
+from clampcore.program import Program, ProgramArrays
 from clampcore.step import (
     LP_MG_MM,
     LS_LAW_A_PA,
@@ -86,22 +87,10 @@ def law_to_counts(
 
 
 @kernel
-def make_law(
-    s: int,
-    scale: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    out: np.ndarray,
-) -> None:
+def make_law(s: int, scale: np.ndarray, pa: ProgramArrays, out: np.ndarray) -> None:
     """Advance every element to sample ``s`` and write that sample's law, in counts, to ``out``."""
-    element_conductances(s, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+    element_conductances(s, pa)
+    loop_s = pa.loop_s
     law_to_counts(
         scale,
         loop_s[LS_LAW_A_PA],
@@ -147,9 +136,19 @@ def block_table(conv: np.ndarray, mg_mM: float) -> tuple[np.ndarray, int]:
     return table, shift
 
 
+class BoardArrays(NamedTuple):
+    """A law-evaluating board's arrays (``firmware_protocol.boardlaw``): rules and state."""
+
+    bf: np.ndarray  # float32[N_BF]: BF_* rules in counts
+    bi: np.ndarray  # int64[N_BI]: BI_* rules
+    bs: np.ndarray  # int64[N_BS]: BS_* state
+    law: np.ndarray  # float32[4]: the law in force
+    table: np.ndarray  # float32: the Mg2+ block table (empty: no blocked group)
+
+
 def board_arrays(
     program: Program, conv: np.ndarray, mode: str, lifetime_samples: int
-) -> tuple[np.ndarray, ...]:
+) -> BoardArrays:
     """``(bf, bi, bs, law, table)`` for ``program`` on a board with converters ``conv``.
 
     In current mode the host runs threshold_reset itself, so the board's is off.
@@ -195,4 +194,4 @@ def board_arrays(
         g = p[_tr.P_G]
         bf[bl.BF_TR_ALPHA] = scale[SC_K] * g * (p[_tr.P_RESET] - scale[SC_MV0])
         bf[bl.BF_TR_BETA] = scale[SC_K] * g * scale[SC_MV1]
-    return bf, bi, bs, law, table
+    return BoardArrays(bf, bi, bs, law, table)

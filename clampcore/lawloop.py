@@ -12,7 +12,8 @@ changes applied at the sample they take effect), and encodes them as LAWS frames
 at least one per pass (a frame with no law still tells the board how far the host
 has got, which a lockstep rig waits for). A change of the zero-current control is
 sent as ZERO, which the board applies on arrival, ahead of any queued law.
-``law_fd_loop`` wraps it with read/write on a descriptor, like ``hostloop.fd_loop``.
+``law_fd_loop`` wraps it with read/write on a descriptor, with ``hostloop``'s
+``next_input`` and ``write_all`` as ``hostloop.fd_loop`` does.
 
 Real-time rules as in ``clampcore.hostloop``: compiled, preallocated, no I/O but one
 read and one write per pass.
@@ -25,7 +26,7 @@ indices, ``FLAG_STALE``.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
@@ -34,18 +35,18 @@ from clampcore.elements import KIND_THRESHOLD_RESET
 from clampcore.elements import threshold_reset as _tr
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.hostloop import (
-    _POLL_SLICE_MS,
-    _POLLHUP_POLLERR_POLLNVAL,
-    EXIT_BOARD_SILENT,
-    EXIT_DURATION,
-    EXIT_PORT_CLOSED,
     EXIT_PORT_ERROR,
-    EXIT_STOP_REQUEST,
     FLAG_ZEROED,
+    PortIo,
+    PortRun,
     _apply_mail,
+    new_port_io,
+    next_input,
+    write_all,
 )
 from clampcore.jit import kernel
-from clampcore.law import make_law
+from clampcore.law import law_scale, make_law
+from clampcore.program import ProgramArrays
 from clampcore.shared import (
     COL_COUNTER,
     COL_FLAGS,
@@ -55,8 +56,6 @@ from clampcore.shared import (
     COL_TURNAROUND,
     COL_V,
     CTRL_FIRST_COUNTER,
-    CTRL_HEARTBEAT,
-    CTRL_STOP,
     CTRL_WRITTEN,
     CTRL_ZERO,
     LAT_BINS,
@@ -66,6 +65,7 @@ from clampcore.shared import (
     ST_FAULTS,
     ST_LAT_HIST,
     ST_LATE,
+    ST_LATE_SPIKES,
     ST_LIMITED,
     ST_MISSING,
     ST_OTHER_FRAMES,
@@ -73,6 +73,7 @@ from clampcore.shared import (
     ST_SPIKES,
     ST_WATCHDOG,
     ST_ZEROED,
+    LoopShared,
 )
 from clampcore.step import (
     FAULT_BAD_V,
@@ -80,8 +81,8 @@ from clampcore.step import (
     FLAG_LIMITED,
     cell_currents,
     hist_record_cell_spike,
+    queue_late_cell_spike,
 )
-from clampcore.sysio import fd_read, fd_write, wait_readable
 from firmware_protocol import boardlaw as bl
 from firmware_protocol import lawmsg
 from firmware_protocol.codec import (
@@ -110,11 +111,10 @@ FLAG_STALE = 16  # ring flags bit: the board had no law young enough and output 
 _TX_BYTES = 8192  # LAWS frames of one pass: a 1 ms burst of samples at 50 kHz and more
 
 
-@dataclass
-class LawLinkArrays:
+class LawLinkArrays(NamedTuple):
     """Every buffer of the law-mode link, allocated once per run."""
 
-    lw: np.ndarray
+    lw: np.ndarray  # int64 (N_LW,): the LW_* columns
     dstate: np.ndarray
     dbuf: np.ndarray
     frame: np.ndarray
@@ -122,38 +122,19 @@ class LawLinkArrays:
     s_adc: np.ndarray
     s_dac: np.ndarray
     s_flags: np.ndarray
-    rx: np.ndarray
-    tx: np.ndarray
     laws: np.ndarray  # float32 (R, 4): law ring, row = sample & (R - 1)
     lawbits: np.ndarray  # uint32 view of laws
     ghist: np.ndarray  # float64 (R, 2 n_el + n_neurons): g, direct i, neuron spikes
     body: np.ndarray
-    timespec: np.ndarray
-    pollfd: np.ndarray
-
-    def arrays(self) -> tuple[np.ndarray, ...]:
-        return (
-            self.lw,
-            self.dstate,
-            self.dbuf,
-            self.frame,
-            self.fields,
-            self.s_adc,
-            self.s_dac,
-            self.s_flags,
-            self.rx,
-            self.tx,
-            self.laws,
-            self.lawbits,
-            self.ghist,
-            self.body,
-            self.timespec,
-            self.pollfd,
-        )
+    conv: np.ndarray  # the board's converters and the amplifier (clampcore.calibration)
+    scale: np.ndarray  # the law's units for conv (clampcore.law.law_scale)
+    io: PortIo
 
 
-def new_law_link(lead: int, blocked: bool, n_elements: int, n_neurons: int) -> LawLinkArrays:
-    """Buffers for a run with look-ahead ``lead`` samples."""
+def new_law_link(
+    lead: int, blocked: bool, n_elements: int, n_neurons: int, conv: np.ndarray
+) -> LawLinkArrays:
+    """Buffers for a run with look-ahead ``lead`` samples on a board with converters ``conv``."""
     dstate, dbuf = new_deframer()
     rows = 1 << (2 * lead + 64).bit_length()  # the laws in flight and the samples to come
     lw = np.zeros(N_LW, dtype=np.int64)
@@ -173,14 +154,13 @@ def new_law_link(lead: int, blocked: bool, n_elements: int, n_neurons: int) -> L
         s_adc=np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64),
         s_dac=np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64),
         s_flags=np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64),
-        rx=np.zeros(4096, dtype=np.uint8),
-        tx=np.zeros(_TX_BYTES, dtype=np.uint8),
         laws=laws,
         lawbits=laws.view(np.uint32),
         ghist=np.zeros((rows, 2 * n_elements + n_neurons)),
         body=np.zeros(MAX_PAYLOAD, dtype=np.uint8),
-        timespec=np.zeros(2, dtype=np.int64),
-        pollfd=np.zeros(2, dtype=np.int32),
+        conv=conv,
+        scale=law_scale(conv),
+        io=new_port_io(_TX_BYTES),
     )
 
 
@@ -234,30 +214,11 @@ def _next_seq(lw: np.ndarray) -> int:
 
 
 @kernel
-def top_up_laws(
-    lw: np.ndarray,
-    laws: np.ndarray,
-    lawbits: np.ndarray,
-    ghist: np.ndarray,
-    tx: np.ndarray,
-    at: int,
-    scale: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    neuron_rows: np.ndarray,
-    ctrl: np.ndarray,
-    mailbox: np.ndarray,
-    applied: np.ndarray,
-    stats: np.ndarray,
-) -> int:
+def top_up_laws(ll: LawLinkArrays, at: int, pa: ProgramArrays, sh: LoopShared) -> int:
     """Make the laws up to newest seen + lead and encode them at ``tx[at:]``; new end of tx."""
+    lw, laws, lawbits, ghist, tx = ll.lw, ll.laws, ll.lawbits, ll.ghist, ll.io.tx
+    kind, params, state, g_out, i_out = pa.kind, pa.params, pa.state, pa.g_out, pa.i_out
+    ctrl, stats, neuron_rows = sh.ctrl, sh.stats, sh.neuron_rows
     n_el = kind.shape[0]
     mask = laws.shape[0] - 1
     blocked = lw[LW_BLOCKED] != 0
@@ -265,10 +226,8 @@ def top_up_laws(
     first = lw[LW_HI] + 1
     target = lw[LW_SEEN] + lw[LW_LEAD]
     for s in range(first, target + 1):
-        _apply_mail(ctrl, mailbox, applied, params, loop_p, s)
-        make_law(
-            s, scale, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s, laws[s & mask]
-        )
+        _apply_mail(ctrl, sh.mailbox, sh.applied, params, pa.loop_p, s)
+        make_law(s, ll.scale, pa, laws[s & mask])
         h = s & mask
         for r in range(n_el):
             ghist[h, r] = g_out[r]
@@ -305,41 +264,14 @@ def _zero_frame(lw: np.ndarray, ctrl: np.ndarray, body: np.ndarray, tx: np.ndarr
 
 
 @kernel
-def process_rx_law(
-    nbytes: int,
-    lw: np.ndarray,
-    dstate: np.ndarray,
-    dbuf: np.ndarray,
-    frame: np.ndarray,
-    fields: np.ndarray,
-    s_adc: np.ndarray,
-    s_dac: np.ndarray,
-    s_flags: np.ndarray,
-    rx: np.ndarray,
-    tx: np.ndarray,
-    laws: np.ndarray,
-    lawbits: np.ndarray,
-    ghist: np.ndarray,
-    body: np.ndarray,
-    conv: np.ndarray,
-    scale: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    neuron_rows: np.ndarray,
-    ctrl: np.ndarray,
-    ring: np.ndarray,
-    mailbox: np.ndarray,
-    applied: np.ndarray,
-    stats: np.ndarray,
-) -> int:
+def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
     """Handle ``rx[:nbytes]``; return the length of the frames left in ``tx`` (or 0)."""
+    lw, dstate, dbuf, frame, fields = ll.lw, ll.dstate, ll.dbuf, ll.frame, ll.fields
+    s_adc, s_dac, s_flags, laws, ghist = ll.s_adc, ll.s_dac, ll.s_flags, ll.laws, ll.ghist
+    body, conv, rx, tx = ll.body, ll.conv, ll.io.rx, ll.io.tx
+    kind, params, g_out, i_out = pa.kind, pa.params, pa.g_out, pa.i_out
+    loop_p, loop_s = pa.loop_p, pa.loop_s
+    ctrl, ring, stats, neuron_rows = sh.ctrl, sh.ring, sh.stats, sh.neuron_rows
     n_el = kind.shape[0]
     rows = ring.shape[0]
     mask = laws.shape[0] - 1
@@ -365,16 +297,14 @@ def process_rx_law(
             stats[ST_MISSING] += n - lw[LW_SEEN] - 1
             if n > lw[LW_HI]:  # samples lost on the way: catch the model up to this one
                 lw[LW_SEEN] = n - lw[LW_LEAD]
-                top_up_laws(
-                    lw, laws, lawbits, ghist, tx, tx.shape[0], scale, kind, params, state,
-                    rng, trains, g_out, i_out, loop_p, loop_s, neuron_rows, ctrl, mailbox,
-                    applied, stats,
-                )  # fmt: skip
+                top_up_laws(ll, tx.shape[0], pa, sh)  # makes laws, encodes none
             lw[LW_SEEN] = n
             got_samples = True
             bflags = s_flags[i]
             spiked = (bflags & bl.BF_FLAG_SPIKE) != 0
             hist_record_cell_spike(n, spiked, loop_p, loop_s)
+            if spiked:  # a synapse that hears it too late gets it at the next law made
+                stats[ST_LATE_SPIKES] += queue_late_cell_spike(n, lw[LW_HI], pa)
             v_mV = counts_to_mV(conv, float(s_adc[i]))
             h = n & mask
             for r in range(n_el):
@@ -423,87 +353,19 @@ def process_rx_law(
     at = _zero_frame(lw, ctrl, body, tx, 0)
     if not got_samples:
         return at
-    return top_up_laws(
-        lw, laws, lawbits, ghist, tx, at, scale, kind, params, state, rng, trains, g_out,
-        i_out, loop_p, loop_s, neuron_rows, ctrl, mailbox, applied, stats,
-    )  # fmt: skip
+    return top_up_laws(ll, at, pa, sh)
 
 
 @kernel
-def law_fd_loop(
-    fd: int,
-    spin_us: float,
-    silent_ms: int,
-    max_samples: int,
-    lw: np.ndarray,
-    dstate: np.ndarray,
-    dbuf: np.ndarray,
-    frame: np.ndarray,
-    fields: np.ndarray,
-    s_adc: np.ndarray,
-    s_dac: np.ndarray,
-    s_flags: np.ndarray,
-    rx: np.ndarray,
-    tx: np.ndarray,
-    laws: np.ndarray,
-    lawbits: np.ndarray,
-    ghist: np.ndarray,
-    body: np.ndarray,
-    timespec: np.ndarray,
-    pollfd: np.ndarray,
-    conv: np.ndarray,
-    scale: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    neuron_rows: np.ndarray,
-    ctrl: np.ndarray,
-    ring: np.ndarray,
-    mailbox: np.ndarray,
-    applied: np.ndarray,
-    stats: np.ndarray,
-) -> int:
-    """Serve a law-evaluating board on ``fd`` until a stop condition; an ``EXIT_*`` code."""
-    idle_ms = 0
+def law_fd_loop(port: PortRun, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
+    """Serve a law-evaluating board on ``port`` until a stop condition; an ``EXIT_*`` code."""
     while True:
-        ctrl[CTRL_HEARTBEAT] += 1
-        if ctrl[CTRL_STOP] != 0:
-            return EXIT_STOP_REQUEST
-        if max_samples > 0 and lw[LW_SAMPLES] >= max_samples:
-            return EXIT_DURATION
-        ready = wait_readable(fd, spin_us, _POLL_SLICE_MS, timespec, pollfd)
-        if ready < 0:
+        got = next_input(port, ll.lw[LW_SAMPLES], ll.io, sh.ctrl)
+        if got < 0:
+            return -got
+        if got > 0:
+            length = process_rx_law(got, ll, pa, sh)
+        else:  # the zero request cannot wait for the board
+            length = _zero_frame(ll.lw, sh.ctrl, ll.body, ll.io.tx, 0)
+        if not write_all(port.fd, ll.io, length):
             return EXIT_PORT_ERROR
-        length = 0
-        if ready == 0:
-            idle_ms += _POLL_SLICE_MS
-            if silent_ms > 0 and idle_ms >= silent_ms:
-                return EXIT_BOARD_SILENT
-            length = _zero_frame(lw, ctrl, body, tx, 0)  # the zero request cannot wait
-        else:
-            revents = pollfd[1] >> 16
-            if (revents & 0x01) == 0 and (revents & _POLLHUP_POLLERR_POLLNVAL) != 0:
-                return EXIT_PORT_CLOSED
-            idle_ms = 0
-            got = fd_read(fd, rx, 0, rx.shape[0])
-            if got == 0:
-                return EXIT_PORT_CLOSED
-            if got < 0:
-                return EXIT_PORT_ERROR
-            length = process_rx_law(
-                got, lw, dstate, dbuf, frame, fields, s_adc, s_dac, s_flags, rx, tx, laws,
-                lawbits, ghist, body, conv, scale, kind, params, state, rng, trains, g_out,
-                i_out, loop_p, loop_s, neuron_rows, ctrl, ring, mailbox, applied, stats,
-            )  # fmt: skip
-        done = 0
-        while done < length:
-            w = fd_write(fd, tx, done, length - done)
-            if w <= 0:
-                return EXIT_PORT_ERROR
-            done += w

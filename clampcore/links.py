@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
@@ -92,8 +93,7 @@ def law_bytes(n_laws: int, blocked: bool) -> int:
     return messages * _LAW_FIXED_BYTES + per_law * n_laws
 
 
-@dataclass
-class Schedule:
+class Schedule(NamedTuple):
     """When the host handles which samples, and when what it sends arrives.
 
     ``wake_newest[w]``: newest sample the host has at its w-th wake-up;

@@ -10,7 +10,8 @@ its DAC holds, reads V_k through its ADC, and writes its DAC:
   arrived by t_k, the board puts it in force; it evaluates the law in force at its
   fresh ADC count (``firmware_protocol.boardlaw.board_eval``: threshold-and-reset,
   spike detection, limit, lifetime) and the DAC holds the result over (t_k, t_{k+1}].
-  A cell-driven synapse hears the board's spike flag of sample s - delay.
+  A cell-driven synapse hears the board's spike flag of sample s - delay; a spike
+  heard after that law was made is delivered with the next law made, and counted.
 - **current mode** (protocol v1's split, kept for comparison): the host runs
   ``clampcore.step.step`` (threshold_reset and detection included) on every sample
   it receives and sends the current for the newest; a command that arrives within
@@ -22,13 +23,13 @@ its DAC holds, reads V_k through its ADC, and writes its DAC:
 With the same seed every element draws the same random numbers in every mode, so
 the runs differ only by what the link does. ``run`` returns a ``LinkRun``.
 
-Public names: ``LinkRun``, ``run``, ``link_loop``.
+Public names: ``LinkRun``, ``run``, ``link_loop``, ``LinkHost``, ``LinkTrace``.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -40,25 +41,25 @@ from clampcore.calibration import (
     counts_to_pA,
     mV_to_counts,
 )
-from clampcore.elements import KIND_SYNAPSE
-from clampcore.elements import synapse as _syn
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.jit import kernel
 from clampcore.law import (
     CURRENT_MODE,
     LAW_MODE,
+    BoardArrays,
     board_arrays,
     current_to_law,
     law_scale,
     make_law,
 )
 from clampcore.lawloop import board_reset_current
-from clampcore.links import LINKS, Link, schedule
-from clampcore.program import build_program
+from clampcore.links import LINKS, Link, Schedule, schedule
+from clampcore.program import ProgramArrays, build_program
 from clampcore.step import (
     LS_CELL_SPIKED,
     cell_currents,
     hist_record_cell_spike,
+    queue_late_cell_spike,
     step,
 )
 from firmware_protocol.boardlaw import (
@@ -68,59 +69,61 @@ from firmware_protocol.boardlaw import (
     board_eval,
     board_set_law,
 )
-from simulated_rig.cells import cell_advance, cell_measure_mV, cell_v_true_mV, make_cell
+from simulated_rig.cells import (
+    CellArrays,
+    cell_advance,
+    cell_measure_mV,
+    cell_v_true_mV,
+    make_cell,
+)
 
 _US_PER_MS = 1000.0
+
+
+class LinkHost(NamedTuple):
+    """The host's side of a link run: converters, the laws it made and when each arrives."""
+
+    conv: np.ndarray  # the board's converters and the amplifier (clampcore.calibration)
+    scale: np.ndarray  # the law's units for conv (clampcore.law.law_scale)
+    laws: np.ndarray  # float32 (n + lead + 1, 4): the law of every sample
+    law_arrive_us: np.ndarray  # when each law reaches the board (inf: never sent)
+    cmd_pA: np.ndarray  # current mode: the command of each wake-up
+    new_law: np.ndarray  # float32[4]: scratch
+    neuron_rows: np.ndarray  # int64: program rows of the virtual neurons
+    counters: np.ndarray  # int64[2]: [0] late spikes, [1] the newest sample laws exist for
+
+
+# What a link run records per sample: ``LinkRun``'s arrays (described there), in order.
+TRACE_FIELDS = ("adc", "v_true_mV", "i_pA", "flags", "g_nS", "i_element_pA", "neuron_spikes")
+LinkTrace = NamedTuple("LinkTrace", [(f, np.ndarray) for f in TRACE_FIELDS])  # type: ignore[misc]
 
 
 @kernel
 def link_loop(
     law_mode: bool,
     lead: int,
-    wake_newest: np.ndarray,
-    wake_us: np.ndarray,
-    arrive_us: np.ndarray,
-    conv: np.ndarray,
-    scale: np.ndarray,
-    cell_kind: int,
-    cell_p: np.ndarray,
-    cell_s: np.ndarray,
-    cell_rng: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    bf: np.ndarray,
-    bi: np.ndarray,
-    bs: np.ndarray,
-    law: np.ndarray,
-    table: np.ndarray,
-    laws: np.ndarray,
-    law_arrive_us: np.ndarray,
-    cmd_pA: np.ndarray,
-    new_law: np.ndarray,
-    out_adc: np.ndarray,
-    out_v_true: np.ndarray,
-    out_i: np.ndarray,
-    out_flags: np.ndarray,
-    out_g: np.ndarray,
-    out_i_el: np.ndarray,
-    neuron_rows: np.ndarray,
-    out_nspk: np.ndarray,
-    counters: np.ndarray,
+    sched: Schedule,
+    cell: CellArrays,
+    pa: ProgramArrays,
+    board: BoardArrays,
+    host: LinkHost,
+    trace: LinkTrace,
 ) -> None:
     """Run every sample of ``out_adc``; see the module docstring. Outputs in place.
 
     ``laws`` (n + lead + 1, 4) and ``law_arrive_us`` hold the laws the host computed
     and when each reaches the board; ``cmd_pA`` (one per wake-up) and ``new_law``
     (float32[4]) are scratch space. ``counters``: [0] late spikes (heard after the
-    law they should have changed was sent), [1] the newest sample laws exist for.
+    law they should have changed was made; delivered with the next law made,
+    ``clampcore.step.queue_late_cell_spike``), [1] the newest sample laws exist for.
     """
+    wake_newest, wake_us, arrive_us = sched.wake_newest, sched.wake_us, sched.arrive_us
+    cell_kind, cell_p, cell_s, cell_rng = cell
+    kind, params, state, g_out, i_out = pa.kind, pa.params, pa.state, pa.g_out, pa.i_out
+    loop_p, loop_s = pa.loop_p, pa.loop_s
+    bf, bi, bs, law, table = board
+    conv, scale, laws, law_arrive_us, cmd_pA, new_law, neuron_rows, counters = host
+    out_adc, out_v_true, out_i, out_flags, out_g, out_i_el, out_nspk = trace
     n = out_adc.shape[0]
     dt_ms = loop_p[0]
     dt_us = dt_ms * _US_PER_MS
@@ -130,9 +133,7 @@ def link_loop(
     delivered = 0  # current mode: next command to deliver
     if law_mode:
         for s in range(min(lead + 1, n)):  # sent before the start
-            make_law(
-                s, scale, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s, laws[s]
-            )
+            make_law(s, scale, pa, laws[s])
             law_arrive_us[s] = 0.0
             _put_row(out_g, s, g_out)
             _put_row(out_i_el, s, i_out)
@@ -160,13 +161,11 @@ def link_loop(
                 spiked = law_mode and (out_flags[m] & BF_FLAG_SPIKE) != 0
                 if law_mode:
                     hist_record_cell_spike(m, spiked, loop_p, loop_s)
-                    if spiked and m + 1 <= hi:
-                        counters[0] += _late_listeners(kind, params, m, hi)
+                    if spiked:
+                        counters[0] += queue_late_cell_spike(m, hi, pa)
                 else:
                     v_host = counts_to_mV(conv, float(out_adc[m]))
-                    cmd_pA[w] = step(
-                        v_host, m, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s
-                    )
+                    cmd_pA[w] = step(v_host, m, pa)
                     # In current mode the host detects the cell's spikes (and runs
                     # threshold_reset): its decision replaces the board's.
                     out_flags[m] &= ~BF_FLAG_SPIKE
@@ -178,10 +177,7 @@ def link_loop(
             seen = max(seen, newest)
             if law_mode:
                 for s in range(hi + 1, min(newest + lead, n - 1) + 1):
-                    make_law(
-                        s, scale, kind, params, state, rng, trains, g_out, i_out, loop_p,
-                        loop_s, laws[s],
-                    )  # fmt: skip
+                    make_law(s, scale, pa, laws[s])
                     law_arrive_us[s] = arrive_us[w]
                     _put_row(out_g, s, g_out)
                     _put_row(out_i_el, s, i_out)
@@ -222,20 +218,6 @@ def _neuron_spikes(state: np.ndarray, rows: np.ndarray, out: np.ndarray, s: int)
 def _put_row(dst: np.ndarray, row: int, src: np.ndarray) -> None:
     for j in range(src.shape[0]):
         dst[row, j] = src[j]
-
-
-@kernel
-def _late_listeners(kind: np.ndarray, params: np.ndarray, m: int, hi: int) -> int:
-    """Cell-driven synapses whose delivery sample m + delay already has its law."""
-    late = 0
-    for r in range(kind.shape[0]):
-        if (
-            kind[r] == KIND_SYNAPSE
-            and int(params[r, _syn.P_SOURCE]) == _syn.SRC_CELL
-            and m + int(params[r, _syn.P_DELAY]) <= hi
-        ):
-            late += 1
-    return late
 
 
 @dataclass
@@ -290,70 +272,42 @@ def run(
         lead = max(1, round(lead_ms * rate / 1000.0))
     lk = LINKS[link] if isinstance(link, str) else link
     conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, exp.amplifier)
-    bf, bi, bs, law, table = board_arrays(
-        program, conv, LAW_MODE if law_mode else CURRENT_MODE, round(lifetime_ms * rate / 1000)
-    )
-    sched = schedule(lk, n, rate, lead, law_mode, table.size > 0, stall_ms, seed)
+    lifetime = round(lifetime_ms * rate / 1000)
+    boards = board_arrays(program, conv, LAW_MODE if law_mode else CURRENT_MODE, lifetime)
+    sched = schedule(lk, n, rate, lead, law_mode, boards.table.size > 0, stall_ms, seed)
     cell_cfg = dict(exp.cell)
     cell_cfg["seed"] = int(cell_cfg["seed"]) + (int(seed) << 20)
     cell = make_cell(cell_cfg, exp.dt_ms)
     n_el = len(program.names)
-    out = {
-        "adc": np.zeros(n, np.int64),
-        "v": np.zeros(n),
-        "i": np.zeros(n),
-        "flags": np.zeros(n, np.int64),
-        "g": np.zeros((n, n_el)),
-        "i_el": np.zeros((n, n_el)),
-    }
-    counters = np.zeros(2, np.int64)
     neuron_rows = program.spike_rows()
-    out["nspk"] = np.zeros((n, neuron_rows.size), dtype=np.bool_)
-    link_loop(
-        law_mode,
-        lead,
-        sched.wake_newest,
-        sched.wake_us,
-        sched.arrive_us,
+    trace = LinkTrace(
+        adc=np.zeros(n, np.int64),
+        v_true_mV=np.zeros(n),
+        i_pA=np.zeros(n),
+        flags=np.zeros(n, np.int64),
+        g_nS=np.zeros((n, n_el)),
+        i_element_pA=np.zeros((n, n_el)),
+        neuron_spikes=np.zeros((n, neuron_rows.size), dtype=np.bool_),
+    )
+    counters = np.zeros(2, np.int64)
+    host = LinkHost(
         conv,
         law_scale(conv),
-        cell.kind,
-        cell.params,
-        cell.state,
-        cell.rng,
-        *program.arrays(),
-        bf,
-        bi,
-        bs,
-        law,
-        table,
         np.zeros((n + lead + 1, 4), np.float32),
         np.full(n + lead + 1, np.inf),
         np.zeros(sched.wake_us.size),
         np.zeros(4, np.float32),
-        out["adc"],
-        out["v"],
-        out["i"],
-        out["flags"],
-        out["g"],
-        out["i_el"],
         neuron_rows,
-        out["nspk"],
         counters,
     )
+    link_loop(law_mode, lead, sched, cell, program.arrays(), boards, host, trace)
     return LinkRun(
         mode=mode,
         link=lk.name,
         rate_hz=rate,
         lead_samples=lead,
-        adc=out["adc"],
-        v_true_mV=out["v"],
-        i_pA=out["i"],
-        flags=out["flags"],
-        g_nS=out["g"],
-        i_element_pA=out["i_el"],
         up_bytes=sched.up_bytes,
         down_bytes=sched.down_bytes,
         late_spikes=int(counters[0]),
-        neuron_spikes=out["nspk"],
+        **trace._asdict(),
     )

@@ -7,14 +7,15 @@ command, and that command is in force from sample n + 1 + extra_delay_samples
 on (through the DAC and amplifier scaling). This is the timing model of the
 real loop (DEVELOPERS.md), and the same ``step`` the serial loop calls.
 
-Public names: ``simulate``, ``Recording``, ``closed_loop``, ``recording_from_arrays``.
+Public names: ``simulate``, ``Recording``, ``closed_loop``, ``ClosedLoopTrace``,
+``recording_from_arrays``.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -33,7 +34,7 @@ from clampcore.experiment import Experiment
 from clampcore.jit import kernel
 from clampcore.law import LAW_MODE
 from clampcore.lawloop import host_flags_of
-from clampcore.program import Program, build_program
+from clampcore.program import Program, ProgramArrays, build_program
 from clampcore.roundtrip import RoundTrip, adc_round_trip_mV, dac_round_trip_pA, round_trip_arrays
 from clampcore.step import (
     FAULT_BAD_V,
@@ -43,7 +44,20 @@ from clampcore.step import (
     LS_FLAGS,
     step,
 )
-from simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
+from simulated_rig.cells import CellArrays, cell_advance, cell_measure_mV, make_cell
+
+
+class ClosedLoopTrace(NamedTuple):
+    """What ``closed_loop`` writes, per sample, and its scratch space."""
+
+    spike_rows: np.ndarray  # int64: neuron/threshold rows whose spike flags follow the cell's
+    commands_pA: np.ndarray  # (delay_samples,): the commands still on their way to the cell
+    v_mV: np.ndarray
+    i_pA: np.ndarray
+    g_nS: np.ndarray  # (n, elements)
+    i_element_pA: np.ndarray  # (n, elements)
+    spikes: np.ndarray  # bool (n, 1 + spike rows): the cell's, then spike_rows'
+    flags: np.ndarray  # int64 (n,)
 
 
 @kernel
@@ -53,27 +67,9 @@ def closed_loop(
     quantise: bool,
     conv: np.ndarray,
     rt: RoundTrip,
-    cell_kind: int,
-    cell_p: np.ndarray,
-    cell_s: np.ndarray,
-    cell_rng: np.ndarray,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-    spike_rows: np.ndarray,
-    commands_pA: np.ndarray,
-    out_v: np.ndarray,
-    out_i: np.ndarray,
-    out_g: np.ndarray,
-    out_i_el: np.ndarray,
-    out_spikes: np.ndarray,
-    out_flags: np.ndarray,
+    cell: CellArrays,
+    pa: ProgramArrays,
+    out: ClosedLoopTrace,
 ) -> None:
     """Run ``n_samples`` of the closed loop, writing every output array in place.
 
@@ -82,6 +78,9 @@ def closed_loop(
     fewer steps: ``clampcore.roundtrip``); ``spike_rows`` lists the neuron rows whose
     spike flag is recorded after the cell's (column 0 of ``out_spikes``).
     """
+    cell_kind, cell_p, cell_s, cell_rng = cell
+    state, g_out, i_out, loop_p, loop_s = pa.state, pa.g_out, pa.i_out, pa.loop_p, pa.loop_s
+    spike_rows, commands_pA, out_v, out_i, out_g, out_i_el, out_spikes, out_flags = out
     dt_ms = loop_p[0]
     zero_counts = pA_to_counts(conv, 0.0)
     applied_pA = counts_to_pA(conv, zero_counts) if quantise else 0.0
@@ -95,9 +94,9 @@ def closed_loop(
         if quantise:
             v_mV = adc_round_trip_mV(conv, rt.coef, rt.adc_mV, v_mV)
         # step writes every element's g and i of this sample straight into the recording.
-        i_pA = step(
-            v_mV, n, kind, params, state, rng, trains, out_g[n], out_i_el[n], loop_p, loop_s
-        )
+        kind, params, state, rng, trains = pa.kind, pa.params, pa.state, pa.rng, pa.trains
+        row = ProgramArrays(kind, params, state, rng, trains, out_g[n], out_i_el[n], loop_p, loop_s)
+        i_pA = step(v_mV, n, row)
         commands_pA[slot] = dac_round_trip_pA(conv, rt.coef, rt.dac_pA, i_pA) if quantise else i_pA
         slot = slot + 1 if slot + 1 < delay_samples else 0
         out_v[n] = v_mV
@@ -228,25 +227,11 @@ def simulate(
     out_i_el = np.empty((n_samples, n_el))
     out_spikes = np.empty((n_samples, 1 + rows.size), dtype=np.bool_)
     out_flags = np.empty(n_samples, dtype=np.int64)
+    trace = ClosedLoopTrace(
+        rows, np.zeros(delay), out_v, out_i, out_g, out_i_el, out_spikes, out_flags
+    )
     closed_loop(
-        n_samples,
-        delay,
-        quantise,
-        conv,
-        round_trip_arrays(conv),
-        cell.kind,
-        cell.params,
-        cell.state,
-        cell.rng,
-        *program.arrays(),
-        rows,
-        np.zeros(delay),
-        out_v,
-        out_i,
-        out_g,
-        out_i_el,
-        out_spikes,
-        out_flags,
+        n_samples, delay, quantise, conv, round_trip_arrays(conv), cell, program.arrays(), trace
     )
     return recording_from_arrays(
         program, out_v, out_i, out_g, out_i_el, out_spikes, out_flags, seed=seed

@@ -5,13 +5,14 @@ random-number streams, spike-train times, per-element outputs and the loop's
 own parameters and state. ``param_slot`` says which array cell a live change
 of ``element.field`` writes, so a running loop can apply it between samples.
 
-Public names: ``Program``, ``build_program``, ``ParamSlot``, ``check_live_change``.
+Public names: ``Program``, ``ProgramArrays``, ``build_program``, ``ParamSlot``,
+``check_live_change``.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -54,6 +55,14 @@ class ParamSlot:
     col: int
 
 
+# ``Program``'s array fields, in the order compiled code takes them (``ProgramArrays``).
+ARRAY_FIELDS = ("kind", "params", "state", "rng", "trains", "g_out", "i_out", "loop_p", "loop_s")
+
+# A program's arrays as compiled code takes them (``step``, ``make_law``, the loops): one
+# argument that numba passes as the nine arrays, at no cost per call. Fields: as ``Program``.
+ProgramArrays = NamedTuple("ProgramArrays", [(f, np.ndarray) for f in ARRAY_FIELDS])  # type: ignore[misc]
+
+
 @dataclass
 class Program:
     """All arrays of one run (see ``clampcore.step`` for the loop arrays)."""
@@ -67,27 +76,17 @@ class Program:
     trains: np.ndarray  # float64, every train source's times (ms) one after another
     g_out: np.ndarray  # float64 (n,)  conductance of each element at the last sample, nS
     i_out: np.ndarray  # float64 (n,)  current of each element at the last sample, pA
-    loop_p: np.ndarray
-    loop_s: np.ndarray
+    loop_p: np.ndarray  # float64 (N_LOOP_PARAMS,): clampcore.step's LP_* columns
+    loop_s: np.ndarray  # float64 (N_LOOP_STATE + ring,): clampcore.step's LS_* columns
     experiment: Experiment
 
     @property
     def dt_ms(self) -> float:
         return float(self.loop_p[step_mod.LP_DT_MS])
 
-    def arrays(self) -> tuple[np.ndarray, ...]:
-        """The arguments of ``step`` after ``v_mV`` and ``n``, in order."""
-        return (
-            self.kind,
-            self.params,
-            self.state,
-            self.rng,
-            self.trains,
-            self.g_out,
-            self.i_out,
-            self.loop_p,
-            self.loop_s,
-        )
+    def arrays(self) -> ProgramArrays:
+        """The arrays of ``step`` (its argument after ``v_mV`` and ``n``)."""
+        return ProgramArrays(*(getattr(self, f) for f in ARRAY_FIELDS))
 
     def row(self, name: str) -> int:
         try:

@@ -20,7 +20,7 @@ One ``SharedRun`` is a set of named shared-memory blocks viewed as numpy arrays:
 The layout of the ring's columns is ``RingLayout``; it is rebuilt from the
 experiment in every process, so only the block names cross process borders.
 
-Public names: ``SharedRun``, ``RingLayout``, the ``CTRL_*``, ``ST_*``,
+Public names: ``SharedRun``, ``LoopShared``, ``RingLayout``, the ``CTRL_*``, ``ST_*``,
 ``MAIL_*``, ``COL_*`` and ``STATE_*`` constants.
 """
 
@@ -31,7 +31,7 @@ import json
 import secrets
 from dataclasses import dataclass
 from multiprocessing import shared_memory
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -69,6 +69,9 @@ ST_SPIKES = 9  # spikes of the recorded cell
 ST_ZEROED = 10  # samples commanded to 0 pA by the zero-current control
 ST_COMMANDS = 11  # commands sent
 ST_RX_ERROR = 12  # samples the board flagged RX_ERROR (a bad frame or rejected command)
+# Law mode: cell spikes a cell-driven synapse heard after the law of its delivery sample
+# had been made; each is delivered at the first sample whose law is still to be made.
+ST_LATE_SPIKES = 13
 ST_LAT_HIST = 16  # latency histogram in samples: bins 0..LAT_BINS-1 (last bin: that many or more)
 LAT_BINS = 16
 ST_TURN_HIST = ST_LAT_HIST + LAT_BINS  # turnaround histogram, TURN_BIN_US wide bins
@@ -96,6 +99,17 @@ COL_STATUS = 4
 COL_LATENCY = 5
 COL_TURNAROUND = 6
 N_FIXED_COLUMNS = 7
+
+
+class LoopShared(NamedTuple):
+    """What the compiled loop shares with its readers, as one argument (``SharedRun.loop``)."""
+
+    ctrl: np.ndarray  # int64 (N_CTRL,): CTRL_* words
+    ring: np.ndarray  # float64 (rows, columns): one row per sample (RingLayout)
+    mailbox: np.ndarray  # float64 (MAILBOX_SLOTS, 4): live changes posted
+    applied: np.ndarray  # float64 (MAILBOX_SLOTS, 5): live changes applied, with their sample
+    stats: np.ndarray  # float64 (N_STATS,): ST_* counters and histograms
+    neuron_rows: np.ndarray  # int64: program rows of the virtual neurons, in the ring's order
 
 
 @dataclass(frozen=True)
@@ -145,6 +159,11 @@ class SharedRun:
         self.applied = np.ndarray((MAILBOX_SLOTS, 5), np.float64, blocks["applied"].buf)
         self.stats = np.ndarray((N_STATS,), np.float64, blocks["stats"].buf)
         self._board = np.ndarray((BOARD_BYTES,), np.uint8, blocks["board"].buf)
+
+    def loop(self, neuron_rows: np.ndarray) -> LoopShared:
+        """The blocks as the compiled loop takes them; ``neuron_rows``: the program rows whose
+        spike flags end each ring row (the layout's ``spike/<neuron>`` columns, in order)."""
+        return LoopShared(self.ctrl, self.ring, self.mailbox, self.applied, self.stats, neuron_rows)
 
     @property
     def names(self) -> dict[str, str]:

@@ -1,6 +1,6 @@
 """The per-sample step: every element of an experiment, at one sample.
 
-``step(v_mV, n, ...)`` takes the membrane potential measured at sample ``n``
+``step(v_mV, n, pa)`` takes the membrane potential measured at sample ``n``
 and returns the command current (pA) to inject from the next sample on. It is
 the one function that the offline simulation, the serial loop and the
 benchmarks all call.
@@ -29,13 +29,14 @@ Order within a sample:
    max_current_pA -> clipped and ``FLAG_LIMITED``.
 
 Public names: ``step``, ``element_conductances``, ``cell_currents``,
-``hist_record_cell_spike``, the ``LP_*``/``LS_*`` loop-array columns, and the
-``FAULT_*``/``FLAG_*`` bits.
+``hist_record_cell_spike``, ``queue_late_cell_spike``, the ``LP_*``/``LS_*`` loop-array
+columns, and the ``FAULT_*``/``FLAG_*`` bits.
 """
 
 from __future__ import annotations
 
 import math
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -56,6 +57,9 @@ from clampcore.elements import synapse as _syn
 from clampcore.elements import threshold_reset as _tr
 from clampcore.elements.current import current_waveform
 from clampcore.jit import kernel
+
+if TYPE_CHECKING:  # program.py builds on this module
+    from clampcore.program import ProgramArrays
 
 # Loop parameters (float64 array ``loop_p``).
 LP_DT_MS = 0
@@ -102,24 +106,43 @@ def _detect_cell_spike(v_mV: float, loop_p: np.ndarray, loop_s: np.ndarray) -> b
 
 @kernel
 def hist_record_cell_spike(n: int, spiked: bool, loop_p: np.ndarray, loop_s: np.ndarray) -> None:
-    """Remember whether the cell spiked at sample ``n`` (read back by delayed synapses)."""
+    """Remember whether the cell spiked at sample ``n`` (read back by delayed synapses).
+
+    A spike is stored as n + 1, so a sample not heard yet (law mode, a slot still holding
+    an older sample) never reads as a spike (``_heard_cell_spike``).
+    """
     ring = int(loop_p[LP_SPIKE_RING])
-    loop_s[LS_SPIKE_RING + (n & (ring - 1))] = 1.0 if spiked else 0.0
+    loop_s[LS_SPIKE_RING + (n & (ring - 1))] = n + 1.0 if spiked else 0.0
 
 
 @kernel
-def element_conductances(
-    n: int,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-) -> None:
+def _heard_cell_spike(j: int, ring: int, loop_s: np.ndarray) -> bool:
+    """Whether the cell's spike of sample ``j`` is in the history ring."""
+    return j >= 0 and loop_s[LS_SPIKE_RING + (j & (ring - 1))] == j + 1.0
+
+
+@kernel
+def queue_late_cell_spike(m: int, hi: int, pa: ProgramArrays) -> int:
+    """The cell's spike of sample ``m``, heard when the conductances of samples up to ``hi``
+    are already made: every enabled cell-driven synapse whose delivery sample m + delay is
+    among them missed it, and hears it at the first sample still to be made (hi + 1, through
+    ``synapse.S_LATE``). Returns how many synapses heard it late."""
+    late = 0
+    for r in range(pa.kind.shape[0]):
+        p = pa.params[r]
+        if (
+            pa.kind[r] == KIND_SYNAPSE
+            and int(p[_syn.P_SOURCE]) == _syn.SRC_CELL
+            and p[P_ENABLED] != 0.0
+            and m + int(p[_syn.P_DELAY]) <= hi
+        ):
+            pa.state[r, _syn.S_LATE] += 1.0
+            late += 1
+    return late
+
+
+@kernel
+def element_conductances(n: int, pa: ProgramArrays) -> None:
     """Advance every element but threshold_reset to sample ``n``; sum the cell's law.
 
     Writes each element's conductance to ``g_out`` (nS), the current of elements
@@ -128,6 +151,8 @@ def element_conductances(
     A cell-driven synapse hears the cell's spike of sample n - delay from the
     history ring (``hist_record_cell_spike`` must have run for that sample).
     """
+    kind, params, state, rng = pa.kind, pa.params, pa.state, pa.rng
+    g_out, i_out, loop_p, loop_s = pa.g_out, pa.i_out, pa.loop_p, pa.loop_s
     dt_ms = loop_p[LP_DT_MS]
     t_ms = n * dt_ms
     ring = int(loop_p[LP_SPIKE_RING])
@@ -151,8 +176,8 @@ def element_conductances(
             g = p[_leak.P_G]
             e_mV = p[_leak.P_E]
         elif k == KIND_SYNAPSE:
-            heard = loop_s[LS_SPIKE_RING + ((n - int(p[_syn.P_DELAY])) & (ring - 1))] != 0.0
-            events = _syn.synapse_events(p, state[r], rng, r, trains, t_ms, dt_ms, heard, state)
+            heard = _heard_cell_spike(n - int(p[_syn.P_DELAY]), ring, loop_s)
+            events = _syn.synapse_events(pa, r, t_ms, dt_ms, heard)
             g = _syn.synapse_conductance(p, state[r], events, t_ms, dt_ms)
             e_mV = p[_syn.P_E]
             blocked = p[_syn.P_MG] > 0.0
@@ -224,20 +249,13 @@ def cell_currents(
 
 
 @kernel
-def step(
-    v_mV: float,
-    n: int,
-    kind: np.ndarray,
-    params: np.ndarray,
-    state: np.ndarray,
-    rng: np.ndarray,
-    trains: np.ndarray,
-    g_out: np.ndarray,
-    i_out: np.ndarray,
-    loop_p: np.ndarray,
-    loop_s: np.ndarray,
-) -> float:
-    """Command current (pA) for sample ``n`` at measured ``v_mV``; see the module doc."""
+def step(v_mV: float, n: int, pa: ProgramArrays) -> float:
+    """Command current (pA) for sample ``n`` at measured ``v_mV``; see the module doc.
+
+    ``pa``: the program's arrays (``clampcore.program.Program.arrays``).
+    """
+    kind, params, state, g_out, i_out = pa.kind, pa.params, pa.state, pa.g_out, pa.i_out
+    loop_p, loop_s = pa.loop_p, pa.loop_s
     dt_ms = loop_p[LP_DT_MS]
     loop_s[LS_CELL_SPIKED] = 0.0
     if not math.isfinite(v_mV) or abs(v_mV) > loop_p[LP_V_FAULT_MV]:
@@ -277,7 +295,7 @@ def step(
 
     # 3-4. Conductances (and the cell's current law), then the currents at this V.
     hist_record_cell_spike(n, cell_spiked, loop_p, loop_s)
-    element_conductances(n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+    element_conductances(n, pa)
     total += cell_currents(v_mV, kind, params, g_out, i_out)
 
     # 5. Output guard.

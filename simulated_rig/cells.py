@@ -50,7 +50,7 @@ from __future__ import annotations
 
 import math
 import numbers
-from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
@@ -120,9 +120,8 @@ _MS_TO_NS = 1e6  # 1 mS = 1e6 nS
 _PA_MOHM_TO_MV = 1e-3  # pA × MΩ = µV = 1e-3 mV
 
 
-@dataclass
-class CellArrays:
-    """Everything a compiled loop needs to run one model cell.
+class CellArrays(NamedTuple):
+    """Everything a compiled loop needs to run one model cell (one argument to it).
 
     ``kind`` is ``CELL_PASSIVE`` or ``CELL_HH``; ``params`` (float64,
     ``N_PARAMS``) and ``state`` (float64, ``N_STATE``) follow the column layout

@@ -531,14 +531,14 @@ def test_board_spikes_and_resets_decide_as_the_host_step(c_lib: LawLibrary, case
     program = build_program(TR_SETUPS[setup])
     bf, bi, _, _, table = board_arrays(program, CONV0, LAW_MODE, 10**6)
     host = copy.deepcopy(program)  # the host's step, current mode, on the same experiment
-    kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s = host.arrays()
+    loop_s, g_out = host.loop_s, host.g_out
     tr_row = host.row("tr")
     boards = [MirrorBoard(bf, bi, table), CBoard(c_lib, bf, bi, table)]
     for board in boards:
         board.set(np.array([1000.0, 0.0, 0.0, 0.0], np.float32), 0)
     for n, adc in enumerate(adcs):
         v = counts_to_mV(CONV0, float(adc))  # the quantised V both sides see
-        step(v, n, kind, params, state, rng, trains, g_out, i_out, loop_p, loop_s)
+        step(v, n, host.arrays())
         host_spike = loop_s[LS_CELL_SPIKED] != 0.0
         host_reset = g_out[tr_row] != 0.0  # the reset conductance is on at this sample
         for board in boards:

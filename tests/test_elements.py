@@ -66,7 +66,7 @@ def _drive(program: Program, v_mV: np.ndarray | list[float]) -> dict[str, np.nda
     }
     arrays = program.arrays()
     for k in range(n):
-        out["i_pA"][k] = step(float(v[k]), k, *arrays)
+        out["i_pA"][k] = step(float(v[k]), k, arrays)
         out["g_nS"][k] = program.g_out
         out["i_el_pA"][k] = program.i_out
         out["flags"][k] = int(program.loop_s[LS_FLAGS])
@@ -630,7 +630,7 @@ def test_noise_clipped_at_zero_in_the_applied_conductance() -> None:
     i_el = np.empty(n)
     arrays = prog.arrays()
     for k in range(n):
-        step(-60.0, k, *arrays)
+        step(-60.0, k, arrays)
         process[k] = prog.state[0, noise.S_G]
         g[k] = prog.g_out[0]
         i_el[k] = prog.i_out[0]
@@ -746,7 +746,7 @@ def test_lif_neuron_fires_at_the_analytic_rate() -> None:
     spikes = []
     arrays = prog.arrays()
     for k in range(8000):
-        step(-70.0, k, *arrays)
+        step(-70.0, k, arrays)
         if prog.state[0, neuron.S_SPIKED]:
             spikes.append(k)
             assert prog.state[0, neuron.S_V] == LIF_EL_MV  # reset at the spike's sample
@@ -767,7 +767,7 @@ def _neuron_run(n: int, **nrn: object) -> tuple[np.ndarray, np.ndarray, np.ndarr
     spiked = np.zeros(n, dtype=bool)
     arrays = prog.arrays()
     for k in range(n):
-        step(-70.0, k, *arrays)
+        step(-70.0, k, arrays)
         v[k] = prog.state[0, neuron.S_V]
         w[k] = prog.state[0, neuron.S_W]
         spiked[k] = prog.state[0, neuron.S_SPIKED] != 0.0
@@ -882,9 +882,9 @@ def test_nonfinite_parameter_injects_zero_with_fault(bad: float) -> None:
     )
     slot = prog.param_slot("vl", "g_nS")
     arrays = prog.arrays()
-    assert step(-10.0, 0, *arrays) == pytest.approx(105.0)
+    assert step(-10.0, 0, arrays) == pytest.approx(105.0)
     prog.params[slot.row, slot.col] = bad  # as a corrupted live change would
-    assert step(-10.0, 1, *arrays) == 0.0
+    assert step(-10.0, 1, arrays) == 0.0
     assert int(prog.loop_s[LS_FLAGS]) == FAULT_NONFINITE
     assert prog.loop_s[LS_N_FAULT] == 1
 
@@ -946,24 +946,24 @@ def test_live_change_applies_at_the_next_step() -> None:
     )
     arrays = prog.arrays()
     v = -60.0
-    first = step(v, 0, *arrays)
+    first = step(v, 0, arrays)
     i_syn = prog.i_out[1]
     assert first == pytest.approx(-2.0 * 10.0 + i_syn)
     value = check_live_change(prog, "vl", "g_nS", 5)
     assert value == 5.0
     slot = prog.param_slot("vl", "g_nS")
     prog.params[slot.row, slot.col] = value
-    step(v, 1, *arrays)
+    step(v, 1, arrays)
     assert prog.i_out[0] == pytest.approx(-5.0 * 10.0)  # Ohm's law with the new g
     # disable the synapse: it passes nothing from the next sample on
     slot = prog.param_slot("s", "enabled")
     prog.params[slot.row, slot.col] = check_live_change(prog, "s", "enabled", False)
-    assert step(v, 2, *arrays) == pytest.approx(-50.0)
+    assert step(v, 2, arrays) == pytest.approx(-50.0)
     # the loop's current limit is live too
     slot = prog.param_slot("loop", "max_current_pA")
     assert slot.array == "loop"
     prog.loop_p[slot.col] = check_live_change(prog, "loop", "max_current_pA", 20.0)
-    assert step(v, 3, *arrays) == -20.0
+    assert step(v, 3, arrays) == -20.0
     assert int(prog.loop_s[LS_FLAGS]) == FLAG_LIMITED
 
 

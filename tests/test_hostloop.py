@@ -48,20 +48,15 @@ def rig():
     layout = RingLayout.for_program(program)
     shared = SharedRun.create(layout)
     conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, program.experiment.amplifier)
-    link = new_link(pA_to_counts(conv, 0.0))
+    link = new_link(conv)
     yield program, shared, conv, link
     shared.close()
 
 
 def _feed(program, shared, conv, link, wire: bytes) -> bytes:
-    link.rx[: len(wire)] = np.frombuffer(wire, dtype=np.uint8)
-    n = process_rx(
-        len(wire), link.lk, link.answered, link.dstate, link.dbuf, link.frame, link.adc,
-        link.fields, link.dac, link.rx, link.tx, conv, *program.arrays(),
-        np.zeros(0, dtype=np.int64), shared.ctrl, shared.ring, shared.mailbox, shared.applied,
-        shared.stats,
-    )  # fmt: skip
-    return link.tx[:n].tobytes()
+    link.io.rx[: len(wire)] = np.frombuffer(wire, dtype=np.uint8)
+    n = process_rx(len(wire), link, program.arrays(), shared.loop(np.zeros(0, dtype=np.int64)))
+    return link.io.tx[:n].tobytes()
 
 
 def _sample(counter: int, adc: int, cmd_seq: int = 0, status: int = 0) -> bytes:
@@ -130,7 +125,7 @@ def _scenario_rows() -> list[list[float]]:
     shared = SharedRun.create(RingLayout.for_program(program))
     try:
         conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, program.experiment.amplifier)
-        link = new_link(pA_to_counts(conv, 0.0))
+        link = new_link(conv)
         for k in range(20):
             _feed(program, shared, conv, link, _sample(k, 30000 + 37 * k, cmd_seq=k))
         return shared.ring[:20, :5].tolist()

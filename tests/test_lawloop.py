@@ -14,6 +14,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+import pytest
 
 import clampcore
 from clampcore import linksim
@@ -25,9 +26,14 @@ from clampcore.calibration import (
 )
 from clampcore.engine import Engine, EngineError, RunOptions, law_lead_samples
 from clampcore.experiment import load_experiment
+from clampcore.health import loop_health
+from clampcore.lawloop import LW_HI, new_law_link, process_rx_law, top_up_laws
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.program import build_program
-from clampcore.shared import CTRL_WRITTEN
+from clampcore.shared import CTRL_WRITTEN, ST_LATE_SPIKES, RingLayout, SharedRun
+from firmware_protocol import lawmsg
+from firmware_protocol.boardlaw import BF_FLAG_SPIKE
+from firmware_protocol.codec import MAX_WIRE
 from simulated_rig.groundtruth import read_log
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -221,3 +227,86 @@ def test_run_command_in_law_mode_says_so(tmp_path, capsys):
     text = capsys.readouterr().out
     assert "law mode: the board evaluated the law at its own V on 100.00% of samples" in text
     assert validate_nwb(out) == []
+
+
+def _cell_synapse(delay_ms: float) -> dict:
+    """One exp-kinetics synapse driven by the cell: its conductance jumps by g_max at the
+    sample that delivers a spike (first-order kinetics; clampcore.elements.synapse)."""
+    return {
+        "loop": {"rate_hz": 10000.0, "max_current_pA": 500.0, "mode": "law"},
+        "element": [
+            {"kind": "synapse", "name": "fb", "source": "cell", "delay_ms": delay_ms,
+             "kinetics": "exp", "tau_decay_ms": 5.0, "g_max_nS": 2.0, "e_mV": 0.0},
+        ],
+    }  # fmt: skip
+
+
+@pytest.mark.parametrize(
+    ("delay_ms", "delivered_at", "late"),
+    [
+        (1.5, 15, 0),  # 15 samples > the lead of 10: heard in time, delivered at 0 + delay
+        (0.3, 10, 1),  # 3 samples: laws 0..9 were made when the spike came; the next is 10
+    ],
+)
+def test_a_spike_heard_too_late_is_delivered_with_the_next_law_and_counted(
+    delay_ms: float, delivered_at: int, late: int
+) -> None:
+    """The host's law loop without a port: laws for samples 0..9 (lead 10) are made before
+    the board's sample 0, which carries a spike; then samples 0..5 come in one frame. A
+    synapse whose delivery sample (0 + delay) already has its law hears the spike with the
+    first law still to be made and the loop counts it (issue 12: "a spike heard too late
+    anyway is delivered late and counted"); one in time hears it exactly one delay later
+    (the definition of a synaptic delay). Either way it hears it exactly once."""
+    program = build_program(_cell_synapse(delay_ms))
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, program.experiment.amplifier)
+    shared = SharedRun.create(RingLayout.for_program(program))
+    try:
+        sh = shared.loop(np.zeros(0, dtype=np.int64))
+        pa = program.arrays()
+        lead = 10
+        ll = new_law_link(lead, False, 1, 0, conv)
+        top_up_laws(ll, 0, pa, sh)  # samples 0 .. lead - 1, before the board starts
+        count = 6
+        flags = np.zeros(count, dtype=np.int64)
+        flags[0] = BF_FLAG_SPIKE
+        adc = np.full(count, 30000, dtype=np.int64)
+        wire = np.zeros(MAX_WIRE, dtype=np.uint8)
+        n = lawmsg.encode_samples(1, 0, 0, 0, count, adc, adc, flags, wire)
+        ll.io.rx[:n] = wire[:n]
+        process_rx_law(n, ll, pa, sh)
+        made = count - 1 + lead  # laws now exist up to the newest sample seen + lead
+        assert ll.lw[LW_HI] == made
+        mask = ll.laws.shape[0] - 1
+        g = np.array([ll.ghist[s & mask, 0] for s in range(made + 1)])
+        jumps = np.flatnonzero(np.diff(g) > 1.0) + 1
+        np.testing.assert_array_equal(jumps, [delivered_at])
+        assert g[delivered_at] == pytest.approx(2.0)  # g_max, added at once
+        assert shared.stats[ST_LATE_SPIKES] == late
+        assert loop_health(shared.stats, 10000.0)["late_spikes"] == late
+    finally:
+        shared.close()
+
+
+def test_lockstep_law_mode_delivers_late_spikes_at_the_next_law_and_counts_them(tmp_path):
+    """The whole chain with a look-ahead longer than the recurrent synapse's delay (3 ms =
+    30 samples at 10 kHz, lead forced to 50): every spike of the cell is heard after the law
+    of spike + 30 was made, so the synapse hears it with the first law still to be made.
+    On the lockstep rig the host has seen sample m - 1 when sample m comes, so laws exist
+    up to m - 1 + 50: delivery at m + 50, and the alpha conductance rises from the sample
+    after (as in the test above with the delay the link allows). The run counts every one
+    and says so in its summary and in the recording's metadata."""
+    lead = 50
+    options = RunOptions(rig_clock="lockstep", watchdog_ms=5000, mode="law", lead_samples=lead)
+    engine = Engine(EXAMPLE, "sim", options)
+    engine.start(duration_s=0.5, out=tmp_path / "late.nwb")
+    assert engine.wait(120.0), "the run did not end"
+    result = engine.finish()
+    assert result.error is None, result.error
+    rec = read_nwb_summary(result.nwb_path)
+    spikes = np.flatnonzero(rec["columns"]["spike/cell"])
+    assert spikes.size >= 3
+    g = rec["columns"]["g_nS/recurrent"]
+    onsets = np.flatnonzero((g[1:] > 0) & (g[:-1] == 0)) + 1
+    assert onsets[0] == spikes[0] + lead + 1
+    assert result.summary["late_spikes"] == spikes.size
+    assert rec["summary"]["late_spikes"] == spikes.size  # kept in the recording

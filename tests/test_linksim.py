@@ -192,6 +192,25 @@ def test_a_delay_shorter_than_the_lead_is_counted_late() -> None:
     assert run.late_spikes == run.spikes.sum()
 
 
+def test_a_spike_heard_too_late_is_delivered_once_after_its_delay() -> None:
+    # Issue 12: "a spike heard too late anyway is delivered late and counted". The delay (1 ms
+    # = 20 samples) is shorter than the lead (2 ms = 40): each spike reaches the synapse with
+    # the first law the host makes after hearing it, so after spike + delay and within the
+    # lead and the link's delay, and exactly once (the history ring holds only what was heard).
+    run = linksim.run(_cell_driven(1.0), 0.5, link="usb-fs", mode="law", lead_ms=2.0)
+    spikes = np.flatnonzero(run.spikes)
+    g = run.g_nS[:, 2]
+    jumps = np.flatnonzero(np.diff(g) > 0.5) + 1  # g_max 1 nS added at once
+    delay, lead = 20, 40
+    link_samples = 2 * 20  # usb-fs: up to a 1 ms frame each way at 20 kHz (clampcore.links)
+    heard = spikes[spikes + lead + link_samples < g.size]
+    assert heard.size >= 3
+    assert jumps.size in (heard.size, heard.size + 1)  # a spike near the end may land or not
+    waited = jumps[: heard.size] - heard
+    assert np.all(waited > delay)
+    assert np.all(waited <= lead + link_samples)
+
+
 def test_a_host_stalled_past_lead_and_lifetime_gets_zero_current() -> None:
     # Board-side safety: without new laws, the last law is used for `lifetime` samples past
     # its own and then the fault value (0 pA) goes out, flagged stale.

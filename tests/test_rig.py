@@ -289,7 +289,7 @@ def test_lockstep_run_equals_offline_simulation() -> None:
             sample = c.expect(codec.Sample)
             assert sample.counter == k
             v_mV[k] = counts_to_mV(conv, sample.adc_counts[0])
-            i_pA[k] = step(v_mV[k], k, *arrays)
+            i_pA[k] = step(v_mV[k], k, arrays)
             c.send(codec.Command(k, (pA_to_counts(conv, i_pA[k]),)))
         c.request(codec.Stop())
         c.close()

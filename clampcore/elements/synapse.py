@@ -35,7 +35,7 @@ Public names: ``SPEC``, ``delay_samples``, the ``SRC_*`` and ``KIN_*`` codes, ``
 from __future__ import annotations
 
 import math
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -45,6 +45,9 @@ from clampcore.elements.spec import P_TARGET, ElementSpec, Problem, RowContext
 from clampcore.fields import Field, only
 from clampcore.jit import kernel
 from clampcore.rng import normal, uniform
+
+if TYPE_CHECKING:  # clampcore.program builds on the element modules
+    from clampcore.program import ProgramArrays
 
 FIELDS = (
     Field("kinetics", "exp", "choice", live=False, choices=("exp", "alpha", "dual_exp")),
@@ -172,6 +175,9 @@ SPEC = ElementSpec(
         "decay_a_factor",
         "decay_b_tau_ms",  # cached decay of the rising part (dual_exp)
         "decay_b_factor",
+        # cell source, law mode: spikes heard after this synapse's law for them was made, to
+        # be delivered at the next sample computed (clampcore.step.queue_late_cell_spike)
+        "late_spikes",
     ),
     conductance=True,
     init=_init,
@@ -209,6 +215,7 @@ S_TRAIN_POS = SPEC.state_col("train_pos")
 S_EVENTS = SPEC.state_col("events")
 S_DECAY_A = SPEC.state_col("decay_a_tau_ms")
 S_DECAY_B = SPEC.state_col("decay_b_tau_ms")
+S_LATE = SPEC.state_col("late_spikes")
 
 # A decayed conductance below this is set to 0: left alone it would sink into subnormal
 # floats after ~700 time constants, whose arithmetic is ~100x slower on x86 (measured here:
@@ -266,20 +273,12 @@ def poisson_count(rng: np.ndarray, row: int, mean: float) -> int:
 
 @kernel
 def synapse_events(
-    p: np.ndarray,
-    s: np.ndarray,
-    rng: np.ndarray,
-    row: int,
-    trains: np.ndarray,
-    t_ms: float,
-    dt_ms: float,
-    cell_spiked: bool,
-    state: np.ndarray,
+    pa: ProgramArrays, row: int, t_ms: float, dt_ms: float, cell_spiked: bool
 ) -> int:
-    """Presynaptic events at this sample (0, 1, or more for a dense train).
-
-    ``state`` is the whole program state, read for a neuron source's spike flag.
+    """Presynaptic events at this sample for the synapse of ``row`` (0, 1, or more for a
+    dense train); ``pa``: the program's arrays (a neuron source's spike flag is in its state).
     """
+    p, s, rng, trains, state = pa.params[row], pa.state[row], pa.rng, pa.trains, pa.state
     source = int(p[P_SOURCE])
     if source == SRC_POISSON:
         return poisson_count(rng, row, p[P_RATE] * dt_ms * 1e-3)
@@ -294,7 +293,9 @@ def synapse_events(
         s[S_TRAIN_POS] = pos
         return events
     if source == SRC_CELL:
-        return 1 if cell_spiked else 0
+        late = int(s[S_LATE])
+        s[S_LATE] = 0.0
+        return late + (1 if cell_spiked else 0)
     return 1 if state[int(p[P_SOURCE_ROW]), NEURON_S_SPIKED] != 0.0 else 0
 
 
