@@ -16,7 +16,11 @@ Standard library only (``tasks.py`` imports nothing else); run it with the proje
 environment, which has pytest. Tests marked ``reference`` (brian2) run in
 ``.venv-reference`` (``--reference-python`` to point elsewhere). Not part of CI: too slow.
 
-Public names: ``Mutant``, ``MUTANTS``, ``main``.
+Every test module must be named as the catcher of at least one mutant: the script lists
+those that are not (and, after a run of all mutants, those whose tests caught none) and
+then exits non-zero.
+
+Public names: ``Mutant``, ``MUTANTS``, ``suite_modules``, ``modules_without_mutant``, ``main``.
 """
 
 from __future__ import annotations
@@ -176,8 +180,8 @@ MUTANTS: tuple[Mutant, ...] = (
         "refuse-limit",
         "a current limit the board cannot represent is not refused",
         "clampcore/engine.py",
-        "        if lo > -limit or hi < limit:",
-        "        if False:",
+        '        if problem:\n            raise EngineError(f"refusing to start: {problem}")',
+        '        if False:\n            raise EngineError(f"refusing to start: {problem}")',
         (f"{E2E}::test_refuses_a_limit_the_board_cannot_represent",),
     ),
     # ---- calibration
@@ -391,16 +395,16 @@ MUTANTS: tuple[Mutant, ...] = (
         "journal-events",
         "the journal's flush never writes the events (parameter changes, faults)",
         "clampcore/journal.py",
-        "        if self._events:\n            self._write_all(self._events_fd",
-        "        if False:\n            self._write_all(self._events_fd",
+        "        if self._events:\n            count = self._events.count",
+        "        if False:\n            count = self._events.count",
         ("tests/test_journal.py",),
     ),
     Mutant(
         "nwb-rate",
         "NWB series written at half the sample rate",
         "clampcore/nwb.py",
-        'common = {"rate": rate_hz, "starting_time": start_s}',
-        'common = {"rate": rate_hz / 2, "starting_time": start_s}',
+        'self.common = {"rate": self.rate_hz, "starting_time"',
+        'self.common = {"rate": self.rate_hz / 2, "starting_time"',
         ("tests/test_nwb.py",),
     ),
     Mutant(
@@ -426,6 +430,113 @@ MUTANTS: tuple[Mutant, ...] = (
         "latency = counter - answered_counter if answered_counter >= 0 else -1",
         "latency = counter - answered_counter - 1 if answered_counter >= 0 else -1",
         ("tests/test_hostloop.py",),
+    ),
+    # ---- stability guard, characterisation, the model checks, the loop over a link
+    Mutant(
+        "static-limit",
+        "stability guard: a negative leak counted as positive in the static limit",
+        "clampcore/stability.py",
+        "static_ok=g + g_min > 0.0,",
+        "static_ok=g - g_min > 0.0,",
+        ("tests/test_stability.py::test_negative_leak_static_limit_with_delay",),
+    ),
+    Mutant(
+        "fit-resistance",
+        "characterisation: input resistance 10% low (slope of dV over dI misscaled)",
+        "clampcore/cellfeatures.py",
+        "r_MOhm = reg.slope * 1000.0",
+        "r_MOhm = reg.slope * 900.0",
+        ("tests/test_characterize.py::test_passive_cell_values_within_five_percent",),
+    ),
+    Mutant(
+        "poisson-one",
+        "Poisson input: at most one event per sample (events sharing a sample lost)",
+        "clampcore/elements/synapse.py",
+        "    while u > cdf and p > 0.0:",
+        "    while u > cdf and p > 0.0 and k < 1:",
+        ("tests/test_model_checks.py",),
+    ),
+    Mutant(
+        "late-spikes",
+        "link simulation: spikes heard after their law was sent are not counted late",
+        "clampcore/linksim.py",
+        "counters[0] += _late_listeners(kind, params, m, hi)",
+        "counters[0] += 0",
+        ("tests/test_linksim.py",),
+    ),
+    Mutant(
+        "c-law-zero",
+        "C board ignores the host's zero request in law mode",
+        "firmware_protocol/c/ccb_core.c",
+        "b->law.state.hold_zero = payload[CCB_HEADER] != 0u;",
+        "(void)payload; /* a mutant */\n    b->law.state.hold_zero = 0u;",
+        ("tests/test_c_core_law.py",),
+    ),
+    # ---- outputs and recordings kept
+    Mutant(
+        "overwrite",
+        "an existing output file is replaced without --force",
+        "clampcore/cli.py",
+        "    if path.exists() and not force:",
+        "    if False:",
+        ("tests/test_faults.py::test_existing_outputs_are_never_replaced_without_force",),
+    ),
+    Mutant(
+        "journal-unchecked",
+        "the journal is removed although the NWB file does not match it",
+        "clampcore/nwb.py",
+        "    problems = check_against_journal(out, data)\n    if problems:",
+        "    problems = check_against_journal(out, data)\n    if False:",
+        ("tests/test_recording.py::test_one_copy_journal_removed_only_after_a_check",),
+    ),
+    # ---- the window
+    Mutant(
+        "gui-esc-zero",
+        "window: Esc no longer holds 0 pA",
+        "gui/window.py",
+        "                self._window.set_zero_current(True)",
+        "                pass",
+        ("tests/test_gui_safety.py::test_zero_current_reaches_the_loop_from_any_state",),
+    ),
+    Mutant(
+        "gui-zero-narrow",
+        "window: the zero-current button too narrow to read",
+        "gui/window.py",
+        "        row.addWidget(self.zero_button)",
+        "        self.zero_button.setMaximumWidth(60)\n        row.addWidget(self.zero_button)",
+        ("tests/test_gui_layout.py",),
+    ),
+    Mutant(
+        "gui-watchdog-marker",
+        "window: a watchdog trip is neither marked nor logged",
+        "gui/events.py",
+        '"watchdog": ((status & STATUS_WATCHDOG) != 0, None),',
+        '"watchdog": (status < 0, None),',
+        ("tests/test_gui_events.py",),
+    ),
+    Mutant(
+        "gui-form-fields",
+        "window: the form shows fields that do not apply to the element's choices",
+        "gui/editor.py",
+        "on = kept or field_applies(row.field, values)",
+        "on = True",
+        ("tests/test_gui_form.py",),
+    ),
+    Mutant(
+        "gui-record-path",
+        "window: shows only the recording's file name, not where it is",
+        "gui/window.py",
+        "self.recording_path.setText(str(engine.nwb_path))",
+        "self.recording_path.setText(engine.nwb_path.name)",
+        ("tests/test_gui_recording.py",),
+    ),
+    Mutant(
+        "gui-rin-unsettled",
+        "window: test-pulse input resistance read before the membrane settles",
+        "gui/testpulse.py",
+        "dv = np.nanmean(v_mV[end - settle : end])",
+        "dv = np.nanmean(v_mV[start : start + settle])",
+        ("tests/test_gui_views.py::test_test_pulse_gives_the_input_resistance",),
     ),
     # ---- validation, defaults, timing primitives
     Mutant(
@@ -522,6 +633,25 @@ def _module(node: str) -> str:
     return node.split("::")[0]
 
 
+def suite_modules(root: Path = ROOT) -> list[str]:
+    """Every test module of the suite, as ``tests/test_*.py`` paths."""
+    return sorted(p.relative_to(root).as_posix() for p in (root / "tests").glob("test_*.py"))
+
+
+def modules_without_mutant(mutants: tuple[Mutant, ...] = MUTANTS, root: Path = ROOT) -> list[str]:
+    """Test modules that no mutant names among the tests that must catch it.
+
+    Each module must be able to fail on some deliberate bug: one that cannot is either the
+    only witness of untested code or a test that asserts nothing (issue #9).
+    """
+    named = {_module(t) for m in mutants for t in m.tests}
+    return [m for m in suite_modules(root) if m not in named]
+
+
+def _say_modules(label: str, modules: list[str]) -> None:
+    print(f"{label}: " + (", ".join(modules) if modules else "none"))
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--list", action="store_true", help="list the mutants and exit")
@@ -545,10 +675,12 @@ def main(argv: list[str] | None = None) -> int:
         n = _occurrences(m, ROOT)
         if n != 1:
             problems[m.name] = "pattern not found" if n == 0 else f"pattern ambiguous ({n}x)"
+    unnamed = modules_without_mutant()
     if args.list:
         for m in chosen:
             print(f"{m.name:<20} {problems.get(m.name, 'ok'):<20} {m.path}: {m.what}")
-        return 1 if problems else 0
+        _say_modules("test modules no mutant names as catcher", unnamed)
+        return 1 if problems or unnamed else 0
 
     rows: list[tuple[Mutant, str, str]] = []
     with tempfile.TemporaryDirectory(prefix="clampcore-mutants-") as tmp:
@@ -598,18 +730,19 @@ def main(argv: list[str] | None = None) -> int:
         lines.append(f"| {what} | `{m.path}` | {by.strip()} |")
     caught = sum(1 for _, v, _ in rows if v == "caught")
     summary = f"{caught} of {len(rows)} mutants caught, {len(rows) - caught} not"
+    # With -x the first failing test is the catcher: a module named second may catch nothing.
     killers = {_module(d) for _, v, d in rows if v == "caught"}
-    modules = sorted(p.relative_to(ROOT).as_posix() for p in (ROOT / "tests").glob("test_*.py"))
-    unkilled = [m for m in modules if m not in killers]
+    unkilled = [m for m in suite_modules() if m not in killers]
     table = "\n".join(lines)
     print("\n" + table + "\n\n" + summary)
-    if len(chosen) == len(MUTANTS):
-        print(
-            "test modules that caught no mutant: " + (", ".join(unkilled) if unkilled else "none")
-        )
+    full = len(chosen) == len(MUTANTS)
+    if full:
+        _say_modules("test modules that caught no mutant in this run", unkilled)
+    _say_modules("test modules no mutant names as catcher", unnamed)
     if args.table:
         Path(args.table).write_text(table + "\n\n" + summary + "\n", encoding="utf-8")
-    return 0 if caught == len(rows) else 1
+    all_caught = caught == len(rows)
+    return 0 if all_caught and not unnamed and not (full and unkilled) else 1
 
 
 if __name__ == "__main__":
