@@ -150,7 +150,8 @@ class RunOptions:
     rig_link: str | None = None  # for port "sim": a link model (clampcore.links), wall clock only
     # "current" or "law" (PROTOCOL.md §10) instead of the experiment's [loop] mode; None: as set.
     mode: str | None = None
-    # Extra fields for the recording's metadata (e.g. the stability guard's "stability").
+    # Extra fields for the recording's metadata (e.g. the stability guard's "stability"),
+    # written at start and again at the end (a window may update them during the run).
     extra_meta: dict[str, Any] = field(default_factory=dict)
 
 
@@ -674,6 +675,8 @@ class Engine:
             self._rig.stop()
         status = self.status()
         final = {
+            # again at the end: what changed during the run (a live stability override) is kept
+            **self.options.extra_meta,
             "exit_reason": report.get("error")
             or self.recorder.error
             or EXIT_MESSAGES.get(report["exit_code"], "?"),
