@@ -13,6 +13,7 @@ from __future__ import annotations
 import copy
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -23,12 +24,19 @@ from scipy import optimize, stats
 import clampcore
 from clampcore.cellfeatures import analyse_passive, detect_spikes, isi_stats, spike_features
 from clampcore.cellfit import fit_neurons, neuron_toml, simulate_fi
-from clampcore.characterize import DEFAULT_EXPERIMENT, characterize, reanalyse
+from clampcore.characterize import (
+    DEFAULT_EXPERIMENT,
+    characterize,
+    reanalyse,
+    reanalyse_recordings,
+)
 from clampcore.cli import main
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.protocols import dac_quantiser, passive_protocol, run_protocol
 
 efel = pytest.importorskip("efel")
+
+ROOT_FIXTURES = Path(__file__).resolve().parent / "fixtures"
 
 # A passive cell made integrate-and-fire by a virtual threshold_reset (noise on). Its
 # threshold sits so that the rheobase, g_L (theta - E_L) = 5 nS x 21 mV = 105 pA, falls
@@ -377,6 +385,17 @@ def test_characterize_on_the_simulated_rig_equals_offline(imposed, tmp_path):
     for path in rig["recordings"].values():
         assert validate_nwb(path) == []
 
+    # The recordings alone (read with pynwb, no JSON): the same values, hence the same fit.
+    again = reanalyse_recordings([tmp_path / "active.nwb"])  # finds passive.nwb beside it
+    assert again["values"] == rig["values"]
+    assert again["rate_hz"] == rig["rate_hz"]
+    texts = []
+    for source in ("characterization.json", "active.nwb"):
+        out = tmp_path / f"fit-from-{source}.toml"
+        assert main(["fit", str(tmp_path / source), "--out", str(out)]) == 0
+        texts.append(out.read_text().splitlines()[1:])  # the first line names the source
+    assert texts[0] == texts[1] and any('model = "adex"' in line for line in texts[0])
+
 
 def test_cli_errors_are_one_line(tmp_path, capsys):
     assert main(["characterize", "--out", str(tmp_path)]) == 1
@@ -384,6 +403,34 @@ def test_cli_errors_are_one_line(tmp_path, capsys):
     assert main(["fit", str(tmp_path / "none.json")]) == 1
     err = capsys.readouterr().err.strip()
     assert err.startswith("clampcore: ") and "not found" in err and "\n" not in err
+
+
+def test_fit_from_recordings_says_what_is_wrong_in_one_line(imposed, tmp_path, capsys):
+    _, out = imposed
+    # A clampcore recording, but not of a characterisation.
+    other = ROOT_FIXTURES / "v1_simulate_imposed_lif.nwb"
+    assert main(["fit", str(other)]) == 1
+    err = capsys.readouterr().err.strip()
+    assert "not a characterisation recording" in err and "\n" not in err
+    # Not NWB at all.
+    fake = tmp_path / "fake.nwb"
+    fake.write_text("not a recording")
+    assert main(["fit", str(fake)]) == 1
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("clampcore: ") and "fake.nwb" in err and "\n" not in err
+    # One recording without the other beside it.
+    alone = tmp_path / "alone"
+    alone.mkdir()
+    (alone / "active.nwb").write_bytes((out / "active.nwb").read_bytes())
+    assert main(["fit", str(alone / "active.nwb")]) == 1
+    err = capsys.readouterr().err.strip()
+    assert "passive recording of this characterisation is missing" in err and "\n" not in err
+    # Both given explicitly works from anywhere; a JSON and an NWB together do not mix.
+    both = [str(alone / "active.nwb"), str(out / "passive.nwb")]
+    assert main(["fit", *both, "--lif-only"]) == 0
+    assert 'model = "lif"' in capsys.readouterr().out
+    assert main(["fit", str(out / "characterization.json"), *both]) == 1
+    assert "one or two NWB recordings" in capsys.readouterr().err
 
 
 def test_reanalysis_of_the_recordings_gives_the_same_values(imposed, capsys):

@@ -50,8 +50,9 @@ def _with_leak(g_nS: float) -> dict:
 def test_the_closed_forms_are_the_textbook_bounds():
     # Levin & May (1976): a < 2 for k = 0 and a < 1 for k = 1, with a = g·dt/C; the cell's
     # own 5 nS leak moves each bound by well under 1%.
-    assert BOUND_D1_NS == pytest.approx(2.0 * C_PF / DT_MS, rel=1e-2)
-    assert BOUND_D2_NS == pytest.approx(1.0 * C_PF / DT_MS, rel=1e-2)
+    levin_may_k0, levin_may_k1 = 2.0 * C_PF / DT_MS, 1.0 * C_PF / DT_MS
+    assert levin_may_k0 == pytest.approx(BOUND_D1_NS, rel=1e-2)
+    assert levin_may_k1 == pytest.approx(BOUND_D2_NS, rel=1e-2)
 
 
 def test_the_line_shows_the_bound_warns_and_start_is_refused(qtbot, tmp_path):
