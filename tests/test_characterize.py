@@ -22,7 +22,13 @@ from hypothesis import strategies as st
 from scipy import optimize, stats
 
 import clampcore
-from clampcore.cellfeatures import analyse_passive, detect_spikes, isi_stats, spike_features
+from clampcore.cellfeatures import (
+    analyse_active,
+    analyse_passive,
+    detect_spikes,
+    isi_stats,
+    spike_features,
+)
 from clampcore.cellfit import fit_neurons, neuron_toml, simulate_fi
 from clampcore.characterize import (
     DEFAULT_EXPERIMENT,
@@ -32,7 +38,7 @@ from clampcore.characterize import (
 )
 from clampcore.cli import main
 from clampcore.nwb import read_nwb_summary, validate_nwb
-from clampcore.protocols import dac_quantiser, passive_protocol, run_protocol
+from clampcore.protocols import active_protocol, dac_quantiser, passive_protocol, run_protocol
 
 efel = pytest.importorskip("efel")
 
@@ -365,6 +371,34 @@ def test_hh_values_hold_across_cells(c_pF, noise_pA, seed):
     assert v["resting_potential"]["value"] == pytest.approx(rest, abs=0.2)
     assert v["input_resistance"]["value"] == pytest.approx(r_MOhm, rel=0.05)
     assert v["capacitance_onset"]["value"] == pytest.approx(c_pF, rel=0.05)
+
+
+@settings(max_examples=4, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    g_nS=st.floats(3, 12),
+    tau_ms=st.floats(8, 40),
+    above_rest_mV=st.floats(12, 30),  # typical neurons fire 15-25 mV above rest (common practice)
+    noise_pA=st.floats(0, 3),
+    seed=st.integers(0, 1000),
+)
+def test_rheobase_and_fi_hold_across_cells(g_nS, tau_ms, above_rest_mV, noise_pA, seed):
+    """Passive cells made integrate-and-fire (threshold_reset), with noise: the rheobase
+    within one step of the LIF's g_L (theta - E_L) (Gerstner & Kistler 2002) and every f-I
+    point within 5% or one spike of the model's own noise-free simulation."""
+    exp = copy.deepcopy(IMPOSED)
+    theta = -70.0 + above_rest_mV
+    exp["cell"].update(capacitance_pF=g_nS * tau_ms, leak_nS=g_nS, noise_pA=noise_pA, seed=seed)
+    exp["element"][0]["threshold_mV"] = theta
+    exp["loop"]["spike_threshold_mV"] = theta
+    proto = active_protocol(1000.0 / g_nS, 800.0, seed=seed, dac=dac_quantiser(exp))
+    values = analyse_active(run_protocol(exp, proto, None, seed=seed))["values"]
+    step = values["rheobase"]["quality"]["resolution_pA"]
+    truth = g_nS * above_rest_mV
+    # The threshold_reset reads the measured V: 0.05 mV of measurement noise (4 SD) and one
+    # 0.03 mV ADC step let a step that ends this close below theta fire.
+    band_pA = g_nS * (4 * 0.05 + 0.03)
+    assert truth - band_pA <= values["rheobase"]["value"] <= truth + step + 1e-9
+    _check_fi({"values": values}, exp)
 
 
 # ------------------------------------------------------------ simulated rig, CLI
