@@ -1,9 +1,12 @@
 """``clampcore fit``: a virtual neuron that behaves like the characterised cell.
 
     clampcore fit CHARACTERIZATION.json [--out NEURON.toml] [--name NAME] [--from-recordings]
+    clampcore fit DIR/active.nwb [DIR/passive.nwb] [--out NEURON.toml] ...
 
 From the values ``clampcore characterize`` measured (its JSON; with
-``--from-recordings``, analysed again from the NWB recordings it names):
+``--from-recordings``, analysed again from the NWB recordings it names), or from its
+NWB recordings alone (analysed again: ``clampcore.characterize.reanalyse_recordings``;
+one recording finds the other beside it):
 
 - **LIF** (``neuron`` element, ``model = "lif"``): ``C``, ``g_L = 1/R`` and
   ``E_L`` = resting potential from the passive values (``C = τ/R`` when one
@@ -259,7 +262,17 @@ def _command(args: argparse.Namespace) -> int:
     from clampcore.characterize import require_analysis
 
     require_analysis("fit")
-    path = Path(args.characterization)
+    paths = [Path(p) for p in args.characterization]
+    if any(p.suffix.lower() == ".nwb" for p in paths):
+        from clampcore.characterize import reanalyse_recordings
+
+        if len(paths) > 2 or not all(p.suffix.lower() == ".nwb" for p in paths):
+            raise ValueError("give one characterization.json, or one or two NWB recordings")
+        doc = reanalyse_recordings(paths)
+        return _write_fits(doc, args, " and ".join(p.name for p in paths))
+    if len(paths) != 1:
+        raise ValueError("give one characterization.json, or one or two NWB recordings")
+    path = paths[0]
     if not path.is_file():
         raise ValueError(
             f"{path}: not found (give the characterization.json of a characterize run)"
@@ -274,8 +287,12 @@ def _command(args: argparse.Namespace) -> int:
         from clampcore.characterize import reanalyse
 
         doc["values"] = reanalyse(doc)[0]["values"]
+    return _write_fits(doc, args, path.name)
+
+
+def _write_fits(doc: dict[str, Any], args: argparse.Namespace, source: str) -> int:
     fits = fit_neurons(doc, adex=not args.lif_only)
-    text = neuron_toml(fits, args.name, path.name)
+    text = neuron_toml(fits, args.name, source)
     if args.out:
         Path(args.out).write_text(text, encoding="utf-8")
         print(f"wrote {args.out}")
@@ -285,7 +302,12 @@ def _command(args: argparse.Namespace) -> int:
 
 def add_parser(sub: Any, name: str) -> None:
     p = sub.add_parser(name, help="fit LIF and AdEx neurons to a characterisation")
-    p.add_argument("characterization", help="characterization.json from clampcore characterize")
+    p.add_argument(
+        "characterization",
+        nargs="+",
+        help="characterization.json from clampcore characterize, or its NWB recordings "
+        "(passive.nwb and active.nwb; one finds the other beside it)",
+    )
     p.add_argument("--out", help="write the [[element]] blocks to this TOML file")
     p.add_argument("--name", default="fitted", help="element name prefix (default: fitted)")
     p.add_argument("--lif-only", action="store_true", help="skip the AdEx fit")

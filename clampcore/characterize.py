@@ -15,9 +15,11 @@ NWB in ``DIR``. ``DIR`` also gets ``characterization.json`` (every value with it
 unit, method and fit quality, and which recordings it came from) and the one-page
 report ``characterization.png`` / ``.pdf``. The experiment's own elements (a
 virtual leak, a threshold_reset...) stay in force; the stability guard applies.
+Each recording keeps its protocol and the names of both recordings in its metadata,
+so ``reanalyse_recordings`` analyses them again with no other file.
 
-Public names: ``characterize``, ``reanalyse``, ``add_parser``, ``require_analysis``,
-``DEFAULT_EXPERIMENT``.
+Public names: ``characterize``, ``reanalyse``, ``reanalyse_recordings``, ``add_parser``,
+``require_analysis``, ``DEFAULT_EXPERIMENT``, ``RECORDING_NAMES``.
 """
 
 from __future__ import annotations
@@ -36,6 +38,8 @@ from clampcore.protocols import active_protocol, dac_quantiser, passive_protocol
 DEFAULT_EXPERIMENT = Path(__file__).resolve().parent.parent / "examples" / "hh_cell.toml"
 JSON_NAME = "characterization.json"
 REPORT_STEM = "characterization"
+# The recordings of a characterisation, by protocol, in its output folder.
+RECORDING_NAMES = {"passive": "passive.nwb", "active": "active.nwb"}
 
 
 def characterize(
@@ -69,7 +73,10 @@ def characterize(
     dac = dac_quantiser(exp)
     passive = passive_protocol(r_estimate_MOhm, limit, dac=dac)
     log(f"passive protocol: steps and pulses, {passive.duration_ms / 1000:g} s ({where})")
-    run_p = run_protocol(exp, passive, port, out_dir / "passive.nwb", seed, rig_clock, quantise)
+    names = RECORDING_NAMES
+    run_p = run_protocol(
+        exp, passive, port, out_dir / names["passive"], seed, rig_clock, quantise, names
+    )
     t0 = time.perf_counter()
     first = characterise(run_p, None)
     analysis_s = time.perf_counter() - t0
@@ -78,7 +85,9 @@ def characterize(
         raise RuntimeError(f"input resistance could not be measured ({r_measured!r} MOhm)")
     active = active_protocol(r_measured, limit, seed=seed, dac=dac)
     log(f"active protocol: steps, ramp, noise, {active.duration_ms / 1000:g} s ({where})")
-    run_a = run_protocol(exp, active, port, out_dir / "active.nwb", seed, rig_clock, quantise)
+    run_a = run_protocol(
+        exp, active, port, out_dir / names["active"], seed, rig_clock, quantise, names
+    )
     t0 = time.perf_counter()
     result = characterise(run_p, run_a)
     analysis_s += time.perf_counter() - t0
@@ -117,6 +126,45 @@ def reanalyse(doc: dict[str, Any]) -> tuple[dict[str, Any], Any, Any]:
         proto = Protocol(name, segs, max(seg.end_ms for seg in segs))
         runs.append(read_protocol_run(Path(doc["recordings"][name]), proto))
     return characterise(runs[0], runs[1]), runs[0], runs[1]
+
+
+def reanalyse_recordings(paths: list[Path]) -> dict[str, Any]:
+    """Analyse a characterisation again from its NWB recordings alone (read with pynwb).
+
+    ``paths``: both recordings (passive and active) or one of them, the other then being
+    the one its metadata names, beside it. Returns a document like ``characterization.json``
+    (``values``, ``rate_hz``, ``recordings``); ``ValueError`` names a file that is not a
+    characterisation recording, or the recording missing.
+    """
+    require_analysis("fit")
+    from clampcore.cellfeatures import characterise
+    from clampcore.protocols import read_protocol_recording
+
+    runs: dict[str, Any] = {}
+    for path in map(Path, paths):
+        run = read_protocol_recording(path)
+        if run.protocol.name in runs:
+            raise ValueError(
+                f"{path}: a second {run.protocol.name} recording (give one of each protocol)"
+            )
+        runs[run.protocol.name] = run
+    for run in list(runs.values()):
+        for name, file in run.companions.items():
+            other = run.nwb_path.parent / file
+            if name not in runs and other.is_file():
+                runs[name] = read_protocol_recording(other)
+    for name in RECORDING_NAMES:
+        if name not in runs:
+            raise ValueError(
+                f"{paths[0]}: the {name} recording of this characterisation is missing "
+                f"(give both, e.g. DIR/passive.nwb DIR/active.nwb)"
+            )
+    result = characterise(runs["passive"], runs["active"])
+    return {
+        "values": result["values"],
+        "rate_hz": runs["passive"].rate_hz,
+        "recordings": {name: str(runs[name].nwb_path) for name in RECORDING_NAMES},
+    }
 
 
 def _source(port: str | None, rig_clock: str) -> str:

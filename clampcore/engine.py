@@ -160,7 +160,8 @@ class RunOptions:
     # Law mode: this look-ahead in samples instead of law_lead_samples' (None). One longer
     # than a cell-driven synapse's delay allows makes its spikes late (delivered late, counted).
     lead_samples: int | None = None
-    # Extra fields for the recording's metadata (e.g. the stability guard's "stability").
+    # Extra fields for the recording's metadata (e.g. the stability guard's "stability"),
+    # written at start and again at the end (a window may update them during the run).
     extra_meta: dict[str, Any] = field(default_factory=dict)
 
 
@@ -675,6 +676,8 @@ class Engine:
             self._rig.stop()
         status = self.status()
         final = {
+            # again at the end: what changed during the run (a live stability override) is kept
+            **self.options.extra_meta,
             "exit_reason": report.get("error")
             or self.recorder.error
             or EXIT_MESSAGES.get(report["exit_code"], "?"),

@@ -29,18 +29,21 @@ the smallest passive step of a 500 MΩ cell.
 
 A protocol runs on a port through ``clampcore.engine.Engine`` (``"sim"``: the
 simulated rig) or, with ``port=None``, offline through ``clampcore.simulate``
-against the experiment's model cell.
+against the experiment's model cell. Its recording says what it is: the metadata
+key ``characterization`` (``PROTOCOL_META_KEY``) holds the protocol's name and
+segments and the file names of the other recordings of the same characterisation,
+so that ``read_protocol_recording`` reads a recording back with no other file.
 
 Public names: ``Segment``, ``Protocol``, ``ProtocolRun``, ``passive_protocol``,
 ``active_protocol``, ``protocol_experiment``, ``run_protocol``, ``read_protocol_run``,
-``dac_quantiser``,
-``ELEMENT_PREFIX``.
+``read_protocol_recording``, ``protocol_meta``, ``dac_quantiser``, ``ELEMENT_PREFIX``,
+``PROTOCOL_META_KEY``.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -71,6 +74,8 @@ PULSE_PERIOD_MS = 20.0
 ACTIVE_TARGET_MV = 40.0
 # Noise correlation time: a few ms, like synaptic background (common practice).
 NOISE_TAU_MS = 5.0
+# The recording's metadata key that marks it as a characterisation protocol's.
+PROTOCOL_META_KEY = "characterization"
 
 
 @dataclass(frozen=True)
@@ -216,6 +221,17 @@ def active_protocol(
     return Protocol("active", tuple(segs), t)
 
 
+def protocol_meta(protocol: Protocol, recordings: dict[str, str] | None = None) -> dict[str, Any]:
+    """What a protocol's recording keeps about it (under ``PROTOCOL_META_KEY``):
+    ``recordings`` names the recordings of the same characterisation (file names)."""
+    return {
+        "protocol": protocol.name,
+        "duration_ms": float(protocol.duration_ms),
+        "segments": [asdict(s) for s in protocol.segments],
+        "recordings": dict(recordings or {}),
+    }
+
+
 def protocol_experiment(base: Any, protocol: Protocol) -> Experiment:
     """The base experiment with the protocol's current elements added."""
     exp = load_experiment(base)
@@ -245,6 +261,8 @@ class ProtocolRun:
     # received leaves a gap) and the latency of the command in force there, in samples.
     sample_n: np.ndarray | None = None
     latency_samples: np.ndarray | None = None
+    # Read back from a recording: the file names of its characterisation's recordings.
+    companions: dict[str, str] = field(default_factory=dict)
 
     @property
     def dt_ms(self) -> float:
@@ -278,9 +296,12 @@ def run_protocol(
     seed: int = 0,
     rig_clock: str = "wall",
     quantise: bool = True,
+    recordings: dict[str, str] | None = None,
 ) -> ProtocolRun:
-    """Run ``protocol`` on ``port`` (None: offline) and read back what it recorded."""
+    """Run ``protocol`` on ``port`` (None: offline) and read back what it recorded
+    (``recordings``: the file names of the characterisation's recordings, kept in each)."""
     exp = protocol_experiment(base, protocol)
+    meta = {PROTOCOL_META_KEY: protocol_meta(protocol, recordings)}
     duration_s = protocol.duration_ms / 1000.0
     names = [ELEMENT_PREFIX + s.name for s in protocol.segments]
     if port is None:
@@ -289,6 +310,7 @@ def run_protocol(
         rec = simulate(exp, duration_s, seed=seed, quantise=quantise)
         v, i_total = rec.v_mV, rec.i_pA
         stim = np.sum([rec.i_element_pA[n] for n in names], axis=0)
+        rec.extra.update(meta)
         nwb = rec.save(out) if out is not None else None
         sample_n = latency = None
     else:
@@ -296,7 +318,7 @@ def run_protocol(
 
         if out is None:
             raise ValueError("a run on a port needs an output path for its recording")
-        engine = Engine(exp, port, RunOptions(seed=seed, rig_clock=rig_clock))
+        engine = Engine(exp, port, RunOptions(seed=seed, rig_clock=rig_clock, extra_meta=meta))
         engine.start(duration_s=duration_s, out=out)
         try:
             while not engine.wait(0.5):
@@ -336,7 +358,30 @@ def read_protocol_run(nwb_path: Path, protocol: Protocol) -> ProtocolRun:
     its elements' recorded currents; the loop's settings from the stored experiment)."""
     from clampcore.nwb import read_nwb_summary
 
+    return _run_of(read_nwb_summary(Path(nwb_path)), protocol, Path(nwb_path))
+
+
+def read_protocol_recording(nwb_path: Path) -> ProtocolRun:
+    """A characterisation protocol's recording read back with no other file: the protocol
+    from its metadata (``PROTOCOL_META_KEY``); ``ValueError`` for any other recording."""
+    from clampcore.nwb import read_nwb_summary
+
     rec = read_nwb_summary(Path(nwb_path))
+    meta = rec["meta"].get(PROTOCOL_META_KEY)
+    if not isinstance(meta, dict) or "segments" not in meta:
+        raise ValueError(
+            f"{nwb_path}: not a characterisation recording (no protocol in its metadata; "
+            "clampcore characterize writes passive.nwb and active.nwb)"
+        )
+    segs = tuple(Segment(**seg) for seg in meta["segments"])
+    protocol = Protocol(str(meta["protocol"]), segs, float(meta["duration_ms"]))
+    run = _run_of(rec, protocol, Path(nwb_path))
+    run.companions = {k: str(v) for k, v in meta.get("recordings", {}).items()}
+    return run
+
+
+def _run_of(rec: dict[str, Any], protocol: Protocol, nwb_path: Path) -> ProtocolRun:
+    """The ``ProtocolRun`` of a recording read back by ``clampcore.nwb.read_nwb_summary``."""
     cols = rec["columns"]
     names = [f"i_pA/{ELEMENT_PREFIX}{s.name}" for s in protocol.segments]
     missing = [n for n in names if n not in cols]

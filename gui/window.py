@@ -10,8 +10,9 @@ file) run on worker threads and are polled by the same timer.
 Layout, top to bottom: the run bar (state, port, Connect, Start, Stop and the
 zero-current control; then where recordings go, this run's recording and the
 progress of writing it), the alarm banner, then the traces with their readout
-strip on the left and tabs on the right (Parameters, Loop health, Log). It fits
-1280x720 (tests/test_gui_layout.py).
+strip on the left and, on the right, the loop-stability line (gui.guard: the largest
+stable virtual conductance, the experiment's total, the override) over the tabs
+(Parameters, Loop health, Log). It fits 1280x720 (tests/test_gui_layout.py).
 
 Safety controls stay in reach whatever else is open: Esc is caught by an
 application-wide event filter (modal dialogs, menus and text fields cannot keep
@@ -25,6 +26,7 @@ Public names: ``TuningWindow``, ``REFRESH_HZ``, ``ZERO_SHORTCUT``.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import threading
 import time
 from pathlib import Path
@@ -32,12 +34,14 @@ from typing import Any
 
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from clampcore import stability
 from clampcore.engine import Engine, EngineError, RunOptions, board_owns
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.health import loop_health
 from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
 from gui import testpulse
 from gui.editor import ParameterEditor, Target
+from gui.guard import OVERRIDE_HINT, StabilityLine, loop_delay, meta_with_override, pushes_beyond
 from gui.health import AlarmBanner, HealthPanel
 from gui.savefile import experiment_toml
 from gui.traces import TracePanel
@@ -161,6 +165,8 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._source_text = self.experiment.text if self.experiment.path else None
         self._pending_open: Path | None = None  # opened once the stopping run is written
         self._close_confirmed = False
+        self._health: dict[str, Any] | None = None  # the running loop's, for its latency
+        self._run_override = False  # this run was let past the stability bound
         self.question: QtWidgets.QMessageBox | None = None  # the open question, if any
         self.dialog: QtWidgets.QFileDialog | None = None  # the open file dialog, if any
         self.setWindowTitle("clampcore — tuning")
@@ -182,9 +188,16 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.tabs.addTab(self.editor, "Parameters")
         self.tabs.addTab(self.health, "Loop health")
         self.tabs.addTab(self.log, "Log")
+        self.stability_line = StabilityLine()
+        right = QtWidgets.QWidget()
+        right_col = QtWidgets.QVBoxLayout(right)
+        right_col.setContentsMargins(0, 0, 0, 0)
+        right_col.setSpacing(2)
+        right_col.addWidget(self.stability_line)
+        right_col.addWidget(self.tabs, 1)
         split = QtWidgets.QSplitter(QtCore.Qt.Orientation.Horizontal)
         split.addWidget(self.traces)
-        split.addWidget(self.tabs)
+        split.addWidget(right)
         split.setStretchFactor(0, 3)
         split.setStretchFactor(1, 1)
         split.setSizes([1050, 450])
@@ -215,6 +228,8 @@ class TuningWindow(QtWidgets.QMainWindow):
         self._sync_pulse_box()
         self._set_state("idle", "not running")
         self._update_title()
+        self.port_box.currentTextChanged.connect(lambda _text: self.update_stability())
+        self.update_stability()
 
     # ------------------------------------------------------------------ building
     def _build_run_bar(self, port: str, record_dir: Path | str | None) -> None:
@@ -396,13 +411,28 @@ class TuningWindow(QtWidgets.QMainWindow):
                 self._fail_start(f"cannot use {folder} for recordings: {exc}")
                 return False
             out = _free_name(folder, time.strftime("clampcore-%Y%m%d-%H%M%S"))
+        exp = _copy_experiment(self.experiment)
+        try:  # the command line's guard: refused beyond the bound unless overridden
+            delay, _ = self._delay(exp, running=False)
+            override = self.stability_line.override_box.isChecked()
+            report = stability.guard(stability.assess(exp, delay), override, OVERRIDE_HINT)
+        except ValueError as exc:  # StabilityError, or cell values it cannot use
+            self.update_stability()
+            self._fail_start(str(exc))
+            return False
+        # Recorded as --override-stability records it; a per-run copy, updated by live overrides.
+        options = dataclasses.replace(
+            self.options, extra_meta={**self.options.extra_meta, "stability": report.as_meta()}
+        )
         try:
-            engine = Engine(_copy_experiment(self.experiment), port, self.options)
+            engine = Engine(exp, port, options)
             engine.start(duration_s=duration_s, out=out)
         except (EngineError, ExperimentError, OSError, RuntimeError, ValueError) as exc:
             self._fail_start(str(exc))
             return False
         self.engine = engine
+        self._run_override = report.override
+        self._health = None
         self.result = None
         self.last_error = None
         self._run_count += 1
@@ -422,7 +452,82 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.recording_path.end(False)  # the file name in view; the whole path on selecting
         self._set_state("starting", f"opening {port}; recording to {engine.nwb_path.name}")
         self._note(f"run {self._run_count}: started on {port}, recording to {engine.nwb_path}")
+        for line in report.lines()[1:]:  # warnings, or what the override let through
+            self._note(
+                f"run {self._run_count}: {line}" + (" (overridden)" if report.override else "")
+            )
+        self.update_stability()
         return True
+
+    def update_stability(self) -> None:
+        """Show the stability bound of what runs (or of what will run, when stopped)."""
+        engine = self.engine if self.running else None
+        exp = engine.experiment if engine is not None else self.experiment
+        delay, where = self._delay(exp, running=engine is not None)
+        try:
+            report = stability.assess(exp, delay)
+        except ValueError as exc:
+            self.stability_line.show_problem(str(exc))
+            return
+        report.override = engine is not None and self._run_override and not report.ok
+        self.stability_line.show_report(report, where)
+
+    def _delay(self, exp: Experiment, running: bool = True) -> tuple[int, str]:
+        """The loop delay for the stability guard (gui.guard.loop_delay): the port chosen,
+        the run's mode, and while ``running`` the loop's measured latency."""
+        port = self.port_box.currentText().strip()
+        return loop_delay(exp, port, self.options.mode, self._health if running else None)
+
+    def _stability_check(self, engine: Engine, element: str, field: str, value: Any) -> Any:
+        """A live change that would push the loop beyond its stability bound: the reason it is
+        refused (a str), or, overridden, the report to log (None: nothing to refuse or log)."""
+        draft = engine.experiment.to_dict()
+        if element == "loop":
+            draft["loop"][field] = value
+        else:
+            next(el for el in draft["element"] if el["name"] == element)[field] = value
+        try:
+            after_exp = load_experiment(draft)
+        except ExperimentError:
+            return None  # the loop's own rules refuse it, and say why
+        delay, _ = self._delay(engine.experiment)
+        try:
+            before = stability.assess(engine.experiment, delay)
+            after = stability.assess(after_exp, delay)
+        except ValueError:
+            return None
+        if not pushes_beyond(before, after):
+            return None
+        try:
+            return stability.guard(
+                after, self.stability_line.override_box.isChecked(), OVERRIDE_HINT
+            )
+        except stability.StabilityError as exc:
+            why = str(exc).removeprefix("refusing to start: ")
+            return f"{element}.{field} = {value}: not applied: {why}"
+
+    def _log_override(
+        self, engine: Engine, report: Any, element: str, field: str, value: Any
+    ) -> None:
+        """Keep a live override in the recording, where --override-stability keeps it."""
+        assert engine.shared is not None
+        change = {
+            "sample": engine.shared.written(),  # posted here; applied at the next boundary
+            "element": element,
+            "field": field,
+            "value": value,
+            "g_virtual_max_nS": report.g_virtual_max_nS,
+            "g_stable_max_nS": report.g_stable_max_nS,
+            "delay_samples": report.delay_samples,
+        }
+        meta = engine.options.extra_meta
+        meta["stability"] = meta_with_override(report, change, meta.get("stability", {}))
+        self._run_override = True
+        self._note(
+            f"stability override: {element}.{field} = {value} takes the loop to "
+            f"{report.g_virtual_max_nS:.4g} nS, beyond its {report.g_stable_max_nS:.4g} nS "
+            "(logged in the recording)"
+        )
 
     def _held_by_board(self, target: Target, field: str) -> str | None:
         """In law mode the board applies some rules itself: those cannot change live."""
@@ -524,6 +629,15 @@ class TuningWindow(QtWidgets.QMainWindow):
             health = loop_health(stats, engine.experiment.loop["rate_hz"])
             if self._ticks % _HEALTH_EVERY == 0 or self.tabs.currentWidget() is self.health:
                 self.health.update_from(health)
+            if self._ticks % _HEALTH_EVERY == 0:  # the measured latency may change the bound
+                self._health = health
+                shown = self.stability_line
+                delay, where = self._delay(engine.experiment)
+                if shown.report is None or (delay, where) != (
+                    shown.report.delay_samples,
+                    shown.delay_from,
+                ):
+                    self.update_stability()
             self.banner.update_from(health, *self.traces.limit_summary())
             self._log_changes()
             self._log_events()
@@ -599,6 +713,10 @@ class TuningWindow(QtWidgets.QMainWindow):
                 self._set_state("stopped", f"{result.exit_reason} · {where}")
         self.editor.set_experiment(self.experiment)
         self.traces.show_experiment(self.experiment)
+        self._health = None
+        self._run_override = False
+        self.stability_line.override_box.setChecked(False)  # an override is for one run
+        self.update_stability()
         if self._pending_open is not None:
             path, self._pending_open = self._pending_open, None
             self._show_file_result(self.load_file(path))
@@ -615,14 +733,20 @@ class TuningWindow(QtWidgets.QMainWindow):
             assert engine is not None
             if section == "section" and name != "loop":
                 return f"[{name}] cannot change while running: stop first"
+            element = "loop" if section == "section" else name
+            guarded = self._stability_check(engine, element, field, value)
+            if isinstance(guarded, str):
+                return guarded
             try:
-                engine.change("loop" if section == "section" else name, field, value)
+                engine.change(element, field, value)
             except ExperimentError as exc:
                 return str(exc)
             except KeyError as exc:
                 return str(exc.args[0]) if exc.args else "cannot change while running"
             except RuntimeError as exc:  # a full mailbox
                 return str(exc)
+            if guarded is not None:
+                self._log_override(engine, guarded, element, field, value)
         # The experiment for saving and for the next run, checked by the loader.
         draft = self.experiment.to_dict()
         if section == "section":
@@ -651,6 +775,7 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.experiment = checked
         self.editor.experiment = checked  # what a refused or dropped value snaps back to
         self._sync_pulse_box()
+        self.update_stability()
 
     def add_element(self, kind: str, name: str) -> str | None:
         """Add an element with default values; None when added, else why not."""
@@ -810,6 +935,8 @@ class TuningWindow(QtWidgets.QMainWindow):
         self.traces.show_experiment(exp)
         self.banner.reset()
         self._update_title()
+        self.stability_line.override_box.setChecked(False)
+        self.update_stability()
         self._note(f"opened {path}")
         return None
 

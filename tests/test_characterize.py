@@ -13,6 +13,7 @@ from __future__ import annotations
 import copy
 import json
 import math
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -21,14 +22,28 @@ from hypothesis import strategies as st
 from scipy import optimize, stats
 
 import clampcore
-from clampcore.cellfeatures import analyse_passive, detect_spikes, isi_stats, spike_features
+from clampcore.cellfeatures import (
+    analyse_active,
+    analyse_passive,
+    detect_spikes,
+    isi_stats,
+    spike_features,
+)
 from clampcore.cellfit import fit_neurons, neuron_toml, simulate_fi
-from clampcore.characterize import DEFAULT_EXPERIMENT, characterize, reanalyse
+from clampcore.characterize import (
+    DEFAULT_EXPERIMENT,
+    characterize,
+    reanalyse,
+    reanalyse_recordings,
+)
 from clampcore.cli import main
 from clampcore.nwb import read_nwb_summary, validate_nwb
-from clampcore.protocols import dac_quantiser, passive_protocol, run_protocol
+from clampcore.protocols import active_protocol, dac_quantiser, passive_protocol, run_protocol
+from clampcore.stability import cell_conductance
 
 efel = pytest.importorskip("efel")
+
+ROOT_FIXTURES = Path(__file__).resolve().parent / "fixtures"
 
 # A passive cell made integrate-and-fire by a virtual threshold_reset (noise on). Its
 # threshold sits so that the rheobase, g_L (theta - E_L) = 5 nS x 21 mV = 105 pA, falls
@@ -359,6 +374,46 @@ def test_hh_values_hold_across_cells(c_pF, noise_pA, seed):
     assert v["capacitance_onset"]["value"] == pytest.approx(c_pF, rel=0.05)
 
 
+@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    g_nS=st.floats(3, 12),
+    tau_ms=st.floats(8, 25),
+    step_below=st.integers(2, 6),
+    between=st.floats(0.3, 0.7),
+    noise_pA=st.floats(0.1, 0.5),
+    seed=st.integers(0, 1000),
+)
+def test_rheobase_and_fi_hold_across_cells(g_nS, tau_ms, step_below, between, noise_pA, seed):
+    """Passive cells made integrate-and-fire (threshold_reset), with noise: the rheobase
+    within one step of the LIF's g_L (theta - E_L) (Gerstner & Kistler 2002) and every f-I
+    point within 5% or one spike of the model's own noise-free simulation.
+
+    The threshold puts the rheobase between two steps of the family, every step at least
+    1.2 mV of drive from theta (7 SD of V even if the 0.5 pA noise current held still on
+    3 nS): on a step that ends at theta itself noise alone decides whether the cell fires,
+    and no noise-free value applies.
+    """
+    inc_pA = math.floor(4.0 * g_nS)  # active_protocol: 10 steps up to 40 mV of drive
+    above_rest_mV = (step_below + between) * inc_pA / g_nS
+    exp = copy.deepcopy(IMPOSED)
+    theta = -70.0 + above_rest_mV
+    c_pF = g_nS * tau_ms
+    exp["cell"].update(capacitance_pF=c_pF, leak_nS=g_nS, noise_pA=noise_pA, seed=seed)
+    # As in IMPOSED: reset 16 mV below theta (past the detector's 10 mV re-arm hysteresis),
+    # the clamp's C/g 0.2 ms (a quarter of the loop's stable limit at 10 kHz), and a current
+    # limit that lets it get there within the refractory period: 16 mV x C / 2 ms <= 2400 pA
+    # (C <= 300 pF), well inside the 4000 pA that +-10 V at 400 pA/V can command.
+    exp["element"][0].update(threshold_mV=theta, reset_mV=theta - 16.0, g_nS=c_pF / 0.2)
+    exp["loop"].update(spike_threshold_mV=theta, max_current_pA=3000.0)
+    proto = active_protocol(1000.0 / g_nS, 800.0, seed=seed, dac=dac_quantiser(exp))
+    values = analyse_active(run_protocol(exp, proto, None, seed=seed))["values"]
+    step = values["rheobase"]["quality"]["resolution_pA"]
+    assert step == pytest.approx(inc_pA, abs=0.2)  # the DAC grid moves steps by < 0.12 pA
+    truth = g_nS * above_rest_mV
+    assert truth <= values["rheobase"]["value"] <= truth + step
+    _check_fi({"values": values}, exp)
+
+
 # ------------------------------------------------------------ simulated rig, CLI
 def test_characterize_on_the_simulated_rig_equals_offline(imposed, tmp_path):
     """Through the serial path in lockstep the recordings, hence every value, equal the
@@ -377,6 +432,36 @@ def test_characterize_on_the_simulated_rig_equals_offline(imposed, tmp_path):
     for path in rig["recordings"].values():
         assert validate_nwb(path) == []
 
+    # The recordings alone (read with pynwb, no JSON): the same values, hence the same fit.
+    again = reanalyse_recordings([tmp_path / "active.nwb"])  # finds passive.nwb beside it
+    assert again["values"] == rig["values"]
+    assert again["rate_hz"] == rig["rate_hz"]
+    texts = []
+    for source in ("characterization.json", "active.nwb"):
+        out = tmp_path / f"fit-from-{source}.toml"
+        assert main(["fit", str(tmp_path / source), "--out", str(out)]) == 0
+        texts.append(out.read_text().splitlines()[1:])  # the first line names the source
+    assert texts[0] == texts[1] and any('model = "adex"' in line for line in texts[0])
+
+
+def test_hh_passive_values_on_the_simulated_rig_equal_offline(tmp_path):
+    """The Hodgkin-Huxley cell (noise on) through the serial path in lockstep: the passive
+    protocol's values equal the offline ones, which test_hh_cell_values checks against
+    the HH 1952 steady states."""
+    exp = clampcore.load_experiment(DEFAULT_EXPERIMENT)
+    _, g_nS = cell_conductance(exp.cell, exp.dt_ms)
+    proto = passive_protocol(1000.0 / g_nS, exp.loop["max_current_pA"], dac=dac_quantiser(exp))
+    offline = analyse_passive(run_protocol(exp, proto, None, seed=2))["values"]
+    rig_run = run_protocol(exp, proto, "sim", tmp_path / "hh.nwb", seed=2, rig_clock="lockstep")
+    rig = analyse_passive(rig_run)["values"]
+    assert offline["input_resistance"]["value"] > 0
+    for name, entry in offline.items():
+        if entry["value"] is None:
+            assert rig[name]["value"] is None, name
+            continue
+        # float32 element currents in the recording (see above)
+        np.testing.assert_allclose(rig[name]["value"], entry["value"], rtol=1e-6, err_msg=name)
+
 
 def test_cli_errors_are_one_line(tmp_path, capsys):
     assert main(["characterize", "--out", str(tmp_path)]) == 1
@@ -384,6 +469,34 @@ def test_cli_errors_are_one_line(tmp_path, capsys):
     assert main(["fit", str(tmp_path / "none.json")]) == 1
     err = capsys.readouterr().err.strip()
     assert err.startswith("clampcore: ") and "not found" in err and "\n" not in err
+
+
+def test_fit_from_recordings_says_what_is_wrong_in_one_line(imposed, tmp_path, capsys):
+    _, out = imposed
+    # A clampcore recording, but not of a characterisation.
+    other = ROOT_FIXTURES / "v1_simulate_imposed_lif.nwb"
+    assert main(["fit", str(other)]) == 1
+    err = capsys.readouterr().err.strip()
+    assert "not a characterisation recording" in err and "\n" not in err
+    # Not NWB at all.
+    fake = tmp_path / "fake.nwb"
+    fake.write_text("not a recording")
+    assert main(["fit", str(fake)]) == 1
+    err = capsys.readouterr().err.strip()
+    assert err.startswith("clampcore: ") and "fake.nwb" in err and "\n" not in err
+    # One recording without the other beside it.
+    alone = tmp_path / "alone"
+    alone.mkdir()
+    (alone / "active.nwb").write_bytes((out / "active.nwb").read_bytes())
+    assert main(["fit", str(alone / "active.nwb")]) == 1
+    err = capsys.readouterr().err.strip()
+    assert "passive recording of this characterisation is missing" in err and "\n" not in err
+    # Both given explicitly works from anywhere; a JSON and an NWB together do not mix.
+    both = [str(alone / "active.nwb"), str(out / "passive.nwb")]
+    assert main(["fit", *both, "--lif-only"]) == 0
+    assert 'model = "lif"' in capsys.readouterr().out
+    assert main(["fit", str(out / "characterization.json"), *both]) == 1
+    assert "one or two NWB recordings" in capsys.readouterr().err
 
 
 def test_reanalysis_of_the_recordings_gives_the_same_values(imposed, capsys):
