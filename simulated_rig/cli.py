@@ -252,7 +252,7 @@ def run(args: argparse.Namespace) -> int:
             realtime_priority=args.realtime,
             link=args.link,
         )
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, RuntimeError) as exc:  # RuntimeError: the C core's build
         print(f"simulated rig: {exc}", file=sys.stderr)
         return 2
     previous = {}
