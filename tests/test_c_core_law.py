@@ -7,8 +7,9 @@ Python around the host's numba mirror of the per-sample arithmetic,
 ``codec``) are fed the same frames, clock and ADC counts, and must send byte-identical
 frames and write identical DAC counts. The simulated rig runs this same C core
 (``simulated_rig.ccore``), so these checks cover the rig's board too. The board's
-parameters come from the host's own ``clampcore.law.board_arrays`` for a real experiment (limit, implausible-V guard, spike
-detection, threshold_reset, an Mg-blocked synapse's table).
+parameters come from the host's own ``clampcore.law.board_arrays`` for a real
+experiment (limit, implausible-V guard, spike detection, threshold_reset, an Mg-blocked
+synapse's table).
 """
 
 from __future__ import annotations
