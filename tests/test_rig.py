@@ -634,6 +634,24 @@ def test_bad_options_give_a_clear_error(tmp_path: Path) -> None:
     assert not any(line.startswith("Traceback") for line in result.stderr.splitlines())
 
 
+def test_without_a_c_compiler_the_rig_says_so_in_one_line(tmp_path: Path) -> None:
+    """The rig runs the C board core, built on first use: no compiler, a clear refusal."""
+    env = {k: v for k, v in os.environ.items() if k != "CC"}
+    env["PATH"] = str(tmp_path)  # an empty folder: no cc, gcc or clang to find
+    result = subprocess.run(
+        [sys.executable, "-m", "simulated_rig"],
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+        timeout=120,
+        stdin=subprocess.DEVNULL,
+        env=env,
+    )
+    assert result.returncode == 2
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and "C compiler" in lines[0] and "gcc" in lines[0], result.stderr
+
+
 def test_clampcore_rig_subcommand_has_the_same_options() -> None:
     result = subprocess.run(
         [sys.executable, "-m", "clampcore", "rig", "--help"],
