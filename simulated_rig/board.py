@@ -318,19 +318,27 @@ class Truth(NamedTuple):
 # ---------------------------------------------------------------------------
 _LINK_BYTES = 1 << 18  # bytes in flight each way: far more than 20 ms at 50 kHz
 _LINK_CHUNKS = 1 << 14  # writes (or reads) in flight each way
-LN_ON, LN_FRAME_NS, LN_TRANSIT_NS, LN_JITTER_NS = 0, 1, 2, 3
+LN_ON, LN_FRAME_NS, LN_TRANSIT_NS, LN_JITTER_NS, LN_TIMER_NS, LN_BAUD = 0, 1, 2, 3, 4, 5
+N_LN = 6
 # ends[i, 0]: ring position after chunk i; ends[i, 1]: when it is delivered (ns).
 Q_HEAD, Q_TAIL, Q_BYTES_IN, Q_BYTES_OUT, Q_LAST_NS = 0, 1, 2, 3, 4
+# A serial bridge (LN_BAUD > 0): when its UART is next free, the bytes the chip holds for
+# the host, when it last sent a packet, the first chunk it holds (clampcore.links).
+Q_UART_FREE, Q_HELD, Q_LAST_PACKET, Q_HELD_FROM = 5, 6, 7, 8
+N_Q = 9
+_HELD_NS = np.iinfo(np.int64).max  # a chunk the bridge chip holds: not yet due
+_UART_BITS = 10  # 8N1: start, 8 data and stop bits a byte (clampcore.links)
+_BRIDGE_PACKET_BYTES = 62  # a full packet of the bridge chip (clampcore.links)
 
 
 class LinkShape(NamedTuple):
     """A link model's timing and the bytes it holds, each way (out: to the host)."""
 
-    p: np.ndarray  # int64[4]: LN_*
+    p: np.ndarray  # int64[N_LN]: LN_*
     rng: np.ndarray  # uint64[1]: jitter stream
     obuf: np.ndarray  # uint8[_LINK_BYTES]
     oends: np.ndarray  # int64[_LINK_CHUNKS, 2]
-    oq: np.ndarray  # int64[5]: Q_*
+    oq: np.ndarray  # int64[N_Q]: Q_*
     ibuf: np.ndarray
     iends: np.ndarray
     iq: np.ndarray
@@ -338,26 +346,26 @@ class LinkShape(NamedTuple):
 
 def new_link_shape(link_name: str | None, seed: int) -> LinkShape:
     """The rig's link model ``link_name`` (a ``clampcore.links.LINKS`` name; None: direct pty)."""
-    p = np.zeros(4, dtype=np.int64)
+    p = np.zeros(N_LN, dtype=np.int64)
     if link_name is not None:
         if link_name not in LINKS:
             raise ValueError(f"link {link_name!r}: one of {', '.join(LINKS)}")
         link = LINKS[link_name]
-        if link.baud > 0:
-            raise ValueError(f"link {link_name!r}: the wall-clock rig models USB links only")
         p[LN_ON] = 1
         p[LN_FRAME_NS] = round(link.frame_us * _NS_PER_US)
         p[LN_TRANSIT_NS] = round(link.transit_us * _NS_PER_US)
         p[LN_JITTER_NS] = round(link.jitter_us * _NS_PER_US)
+        p[LN_TIMER_NS] = round(link.timer_ms * _NS_PER_MS)
+        p[LN_BAUD] = link.baud
     return LinkShape(
         p,
         np.array([seed_state(seed, stream=0xF2)], dtype=np.uint64),
         np.zeros(_LINK_BYTES, dtype=np.uint8),
         np.zeros((_LINK_CHUNKS, 2), dtype=np.int64),
-        np.zeros(5, dtype=np.int64),
+        np.zeros(N_Q, dtype=np.int64),
         np.zeros(_LINK_BYTES, dtype=np.uint8),
         np.zeros((_LINK_CHUNKS, 2), dtype=np.int64),
-        np.zeros(5, dtype=np.int64),
+        np.zeros(N_Q, dtype=np.int64),
     )
 
 
@@ -377,6 +385,32 @@ def _link_due(ln: LinkShape, q: np.ndarray, now: int) -> int:
 
 
 @kernel
+def _uart_ns(ln: LinkShape, n: int) -> int:
+    """How long n bytes take on the bridge's UART."""
+    return (n * _UART_BITS * _NS_PER_S) // ln.p[LN_BAUD]
+
+
+@kernel
+def _bridge_send(ln: LinkShape, ends: np.ndarray, q: np.ndarray, t: int) -> None:
+    """The bridge chip sends what it holds as a packet at t (USB: at the next frame)."""
+    for i in range(q[Q_HELD_FROM], q[Q_TAIL]):
+        ends[i & (ends.shape[0] - 1), 1] = _link_due(ln, q, t - ln.p[LN_TRANSIT_NS])
+    q[Q_HELD_FROM] = q[Q_TAIL]
+    q[Q_HELD] = 0
+    q[Q_LAST_PACKET] = t
+
+
+@kernel
+def _bridge_timer(ln: LinkShape, ends: np.ndarray, q: np.ndarray, now: int) -> None:
+    """The latency timer: what the chip holds goes out once the timer has run since its
+    last packet (and the held bytes are all in)."""
+    if q[Q_HELD] > 0:
+        t = max(q[Q_LAST_PACKET] + ln.p[LN_TIMER_NS], q[Q_UART_FREE])
+        if t <= now:
+            _bridge_send(ln, ends, q, t)
+
+
+@kernel
 def _link_put(
     ln: LinkShape,
     buf: np.ndarray,
@@ -385,8 +419,17 @@ def _link_put(
     src: np.ndarray,
     n: int,
     now: int,
+    up: bool,
 ) -> bool:
-    """Queue src[:n]; False when the link is full (the bytes are lost, as on an overrun)."""
+    """Queue src[:n] (``up``: to the host); False when the link is full (the bytes are
+    lost, as on an overrun).
+
+    A serial bridge (``clampcore.links``, the same rules as its sample-time model): both
+    ways the bytes cross a UART one after another at baud / 10 bytes a second; to the
+    host the chip holds them until it has a full packet or its latency timer has run
+    since its last packet, then sends at the next USB frame; to the board they cross USB
+    at the next frame, then the UART.
+    """
     full = q[Q_TAIL] - q[Q_HEAD] >= ends.shape[0]
     if full or q[Q_BYTES_IN] - q[Q_BYTES_OUT] + n > buf.shape[0]:
         return False
@@ -396,7 +439,24 @@ def _link_put(
     q[Q_BYTES_IN] += n
     slot = q[Q_TAIL] & (ends.shape[0] - 1)
     ends[slot, 0] = q[Q_BYTES_IN]
-    ends[slot, 1] = _link_due(ln, q, now)
+    if ln.p[LN_BAUD] == 0:
+        ends[slot, 1] = _link_due(ln, q, now)
+    elif up:
+        if q[Q_LAST_PACKET] == 0:
+            q[Q_LAST_PACKET] = now  # the timer runs from the first bytes
+        q[Q_UART_FREE] = max(q[Q_UART_FREE], now) + _uart_ns(ln, n)
+        _bridge_timer(ln, ends, q, q[Q_UART_FREE])  # before this chunk's last byte is in
+        ends[slot, 1] = _HELD_NS
+        q[Q_HELD] += n
+        if q[Q_HELD] >= _BRIDGE_PACKET_BYTES:
+            q[Q_TAIL] += 1
+            _bridge_send(ln, ends, q, q[Q_UART_FREE])
+            return True
+    else:
+        t = max(q[Q_UART_FREE], _link_due(ln, q, now)) + _uart_ns(ln, n)
+        q[Q_UART_FREE] = t
+        q[Q_LAST_NS] = t
+        ends[slot, 1] = t
     q[Q_TAIL] += 1
     return True
 
@@ -406,7 +466,7 @@ def _link_send(fd: int, ln: LinkShape, tx: np.ndarray, n: int, now: int) -> int:
     """Write tx[:n] to the host now, or hand it to the link model; bytes taken (or -1)."""
     if ln.p[LN_ON] == 0:
         return fd_write(fd, tx, 0, n)
-    return n if _link_put(ln, ln.obuf, ln.oends, ln.oq, tx, n, now) else -1
+    return n if _link_put(ln, ln.obuf, ln.oends, ln.oq, tx, n, now, True) else -1
 
 
 @kernel
@@ -414,6 +474,8 @@ def _link_flush(fd: int, ln: LinkShape, now: int) -> None:
     """Deliver to the host every byte the link model has due by ``now``."""
     q = ln.oq
     mask = ln.obuf.shape[0] - 1
+    if ln.p[LN_BAUD] > 0:
+        _bridge_timer(ln, ln.oends, q, now)
     while q[Q_HEAD] < q[Q_TAIL]:
         slot = q[Q_HEAD] & (ln.oends.shape[0] - 1)
         if ln.oends[slot, 1] > now:
@@ -437,7 +499,7 @@ def _link_read(fd: int, ln: LinkShape, chunk: np.ndarray, now: int) -> int:
         return fd_read(fd, chunk, 0, chunk.shape[0])
     got = fd_read(fd, chunk, 0, chunk.shape[0])
     if got > 0:
-        _link_put(ln, ln.ibuf, ln.iends, ln.iq, chunk, got, now)
+        _link_put(ln, ln.ibuf, ln.iends, ln.iq, chunk, got, now, False)
     q = ln.iq
     mask = ln.ibuf.shape[0] - 1
     n = 0
