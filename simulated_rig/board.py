@@ -109,7 +109,9 @@ from firmware_protocol.codec import (
     MSG_CONFIGURE,
     MSG_KEEPALIVE,
     MSG_SAMPLE,
+    MSG_START,
     MSG_STOP,
+    STATE_READY,
     STATE_RUNNING,
     STATUS_FAULT_OUTPUT,
     STATUS_WATCHDOG,
@@ -1090,6 +1092,7 @@ class Board:
         )
         core_peek(self.core.mem, self.core.peek)
         self.cell = self._new_cell(self.experiment.dt_ms)
+        self._next_cell = self.cell  # the cell of the next START (built before it)
 
         st = np.zeros(1, dtype=RIG_STATE)
         r = st[0]
@@ -1142,6 +1145,14 @@ class Board:
     def warm_up(self) -> None:
         """Load (or compile) the compiled path now, so that the first message gets its answer."""
         r = self.st[0]
+        # The kernels Python calls for a control message (_on_control) compile now too:
+        # a host's first CONFIGURE must not wait for numba. None of these changes anything.
+        core = self.core
+        core_feed(core.mem, core.tx, 0, 0, 0)
+        core_peek(core.mem, core.peek)
+        core.prev[:] = core.peek
+        after_feed(self.st, core, self.truth.ev, np.zeros(MIN_PAYLOAD, dtype=np.uint8))
+        board_clock_us(self.st, False, 0)
         budget = r["budget_ns"]
         r["budget_ns"] = 0
         try:
@@ -1214,6 +1225,9 @@ class Board:
         msg_type = payload[0]
         was_running = self._running()
         stop = self._stop_event("STOP") if msg_type == MSG_STOP and was_running else None
+        if msg_type == MSG_START and core.peek[P_STATE] == STATE_READY:
+            # Build the run's cell before the core starts its watchdog (it may be slow).
+            self._next_cell = self._new_cell(1000.0 / max(int(core.peek[P_RATE_HZ]), 1))
         buf = np.frombuffer(wire + b"\0", dtype=np.uint8).copy()
         core.prev[:] = core.peek
         now = time.monotonic_ns()
@@ -1232,12 +1246,11 @@ class Board:
         if stop is not None and not self._running():
             events.append(stop)
         if after[P_STATE] == STATE_RUNNING and not was_running:
-            events.append(self._on_start(now))
+            events.append(self._on_start())
+            r["base_ns"] = now  # sample 0 is due when the core started its watchdog
+            r["wait_from_ns"] = now
         self._log_events(events)
         self._send(reply)
-        if after[P_STATE] == STATE_RUNNING and not was_running:
-            r["base_ns"] = time.monotonic_ns()
-            r["wait_from_ns"] = r["base_ns"]
 
     def _configure_event(self, payload: bytes, reply: bytes) -> dict[str, Any]:
         _, cfg = codec.parse_payload(payload)
@@ -1253,13 +1266,13 @@ class Board:
             result=status.result,
         )
 
-    def _on_start(self, now_ns: int) -> dict[str, Any]:
-        """The core has started a run: a new cell at rest, the rig's counters at 0."""
+    def _on_start(self) -> dict[str, Any]:
+        """The core has started a run: the new cell at rest, the rig's counters at 0."""
         r, peek = self.st[0], self.core.peek
         rate_hz = int(peek[P_RATE_HZ])
         r["rate_hz"] = rate_hz
         r["dt_ms"] = 1000.0 / rate_hz
-        self.cell = self._new_cell(1000.0 / rate_hz)
+        self.cell = self._next_cell
         for name in _RUN_COUNTERS:
             r[name] = 0
         r["run"] += 1
