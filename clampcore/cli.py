@@ -528,7 +528,7 @@ def _parser() -> argparse.ArgumentParser:
     _add_mode(p)
     p.add_argument(
         "--link",
-        choices=[n for n, link in LINKS.items() if link.baud == 0 and n != "ideal"],
+        choices=[n for n in LINKS if n != "ideal"],
         default=None,
         help="for 'sim' on the wall clock: hold bytes as this link would (README: choosing a link)",
     )

@@ -16,6 +16,8 @@ Build the library with ``firmware_protocol.cboard.build_core_library(tmpdir)``, 
   ``state() -> int``, ``rate_hz() -> int``, ``law_mode() -> bool``,
   ``law_counts() -> (late, ahead)`` (laws not queued, PROTOCOL.md §10).
 * ``StreamResult`` - payloads, good and bad counts, bad counts per reason, digest.
+* ``board_info(hello)`` - ``ccb_board_info`` for ``ccb_init``; ``status_of(call) -> Status``
+  - the STATUS a ``ccb_get_status``-like function fills (both also for ``simulated_rig.ccore``).
 * ``fnv1a_digest(payloads) -> int`` - the same digest the C stream helper computes.
 """
 
@@ -23,7 +25,7 @@ from __future__ import annotations
 
 import ctypes
 import os
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 from firmware_protocol.codec import (
@@ -120,6 +122,18 @@ def _info_from(hello: Hello) -> _BoardInfo:
     for name, _ in _BoardInfo._fields_[1:]:
         setattr(info, name, getattr(hello, name))
     return info
+
+
+def board_info(hello: Hello) -> ctypes.Structure:
+    """``ccb_board_info`` (ccb.h) filled from a Hello, for ``ccb_init`` and its ports."""
+    return _info_from(hello)
+
+
+def status_of(call: Callable[[ctypes.c_void_p], None]) -> Status:
+    """The Status a ``ccb_get_status``-like C function writes through its one pointer."""
+    st = _Status()
+    call(ctypes.byref(st))  # type: ignore[arg-type]
+    return Status(**{name: getattr(st, name) for name in _STATUS_FIELDS})
 
 
 @dataclass(frozen=True)

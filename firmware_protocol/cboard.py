@@ -13,6 +13,9 @@ Public names:
   port (``ports/memory_port.c``) for ctypes (see ``firmware_protocol.cbinding``).
 * ``build_law_library(tmpdir, opt="-O2", extra=()) -> Path`` - shared library of the board's
   per-sample arithmetic (``ccb_law.c``) for ctypes (see ``firmware_protocol.claw``).
+* ``build_rig_library(out) -> Path`` - the core, the in-memory port and ``ports/rig_port.c``
+  for the simulated rig (``simulated_rig.ccore`` caches it); ``rig_library_sources()``,
+  ``RIG_FLAGS``.
 * ``build_fuzz_binary(tmpdir, sanitize) -> Path`` - the C fuzz driver (``ports/fuzz_main.c``).
 * ``build_pty_board(tmpdir, defines=()) -> Path`` - the pseudo-terminal board
   (``ports/pty_board.c``).
@@ -56,7 +59,10 @@ def find_c_compiler() -> str | None:
 def _compile(args: list[str], what: str) -> None:
     cc = find_c_compiler()
     if cc is None:
-        raise CompilerMissingError("no C compiler found (set CC or install cc/gcc/clang)")
+        raise CompilerMissingError(
+            f"building {what} needs a C compiler and none was found "
+            "(tried $CC, cc, gcc, clang: install one, e.g. gcc, or set CC)"
+        )
     proc = subprocess.run([cc, *args], capture_output=True, text=True, check=False)
     if proc.returncode != 0:
         raise RuntimeError(f"compiling {what} failed:\n{' '.join(args)}\n{proc.stderr}")
@@ -91,6 +97,28 @@ def build_core_library(tmpdir: str | os.PathLike[str], defines: tuple[str, ...] 
     args = [*flags, "-fPIC", "-shared", *srcs, "-o", str(out), *_LIBS]
     _compile(args, "libccb_mem")
     return out
+
+
+def rig_library_sources() -> list[Path]:
+    """Every file the rig's library is built from (its cache key hashes them)."""
+    ports = C_SOURCE_DIR / "ports"
+    names = ("memory_port.h", "memory_port.c", "rig_port.h", "rig_port.c")
+    return [C_SOURCE_DIR / "ccb.h", C_SOURCE_DIR / "ccb_law.h", *map(Path, _core_sources())] + [
+        ports / n for n in names
+    ]
+
+
+# Only rig_port.h's CCB_RIG_API functions leave the library: another build of the core in
+# the same process (a test's libccb_mem) then cannot bind to this one's symbols or it to them.
+RIG_FLAGS = (*STRICT_FLAGS, *LAW_FLAGS, *_OPT, "-fPIC", "-shared", "-fvisibility=hidden")
+
+
+def build_rig_library(out: str | os.PathLike[str]) -> Path:
+    """Compile the core, the in-memory port and the rig's entry points
+    (``ports/rig_port.c``) into the shared library ``out``."""
+    srcs = [str(p) for p in rig_library_sources() if p.suffix == ".c"]
+    _compile([*RIG_FLAGS, *srcs, "-o", str(out), *_LIBS], "the simulated rig's board core")
+    return Path(out)
 
 
 def build_law_library(

@@ -131,7 +131,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
     )
     parser.add_argument(
         "--link",
-        choices=[name for name, link in LINKS.items() if link.baud == 0 and name != "ideal"],
+        choices=[name for name in LINKS if name != "ideal"],
         default=None,
         help="wall clock: hold bytes as this link would (README: choosing a link); "
         "default: the pseudo-terminal alone",
@@ -252,7 +252,7 @@ def run(args: argparse.Namespace) -> int:
             realtime_priority=args.realtime,
             link=args.link,
         )
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, RuntimeError) as exc:  # RuntimeError: the C core's build
         print(f"simulated rig: {exc}", file=sys.stderr)
         return 2
     previous = {}

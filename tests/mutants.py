@@ -97,11 +97,14 @@ MUTANTS: tuple[Mutant, ...] = (
     ),
     Mutant(
         "law-due-sample",
-        "the rig puts each law in force one sample late",
-        "simulated_rig/board.py",
-        "        if lb.qdue[slot] == k:",
-        "        if lb.qdue[slot] == k - 1:",
-        ("tests/test_lawloop.py::test_lockstep_law_mode_equals_the_ideal_clamp",),
+        "the board (C core, also the rig's) never puts a queued law in force",
+        "firmware_protocol/c/ccb_core.c",
+        "(L->queued[slot >> 3] & bit) && L->due[slot] == b->counter)",
+        "(L->queued[slot >> 3] & bit) && L->due[slot] == b->counter && L->k < 0)",
+        (
+            "tests/test_lawloop.py::test_lockstep_law_mode_equals_the_ideal_clamp",
+            "tests/test_c_core_law.py",
+        ),
     ),
     Mutant(
         "non-finite-guard",
@@ -120,12 +123,12 @@ MUTANTS: tuple[Mutant, ...] = (
         ("tests/test_elements.py",),
     ),
     Mutant(
-        "rig-watchdog",
-        "simulated board's watchdog three times too slow",
+        "rig-lockstep-give-up",
+        "the lockstep rig never lets the board's watchdog trip for a silent host",
         "simulated_rig/board.py",
-        "now - st[S_LAST_RX_NS] >= st[S_WATCHDOG_US] * _NS_PER_US",
-        "now - st[S_LAST_RX_NS] >= 3 * st[S_WATCHDOG_US] * _NS_PER_US",
-        ("tests/test_rig.py",),
+        '        r["clock_base_us"] = clock_us + ahead',
+        '        r["clock_base_us"] = clock_us',
+        ("tests/test_rig.py::test_sigkill_of_the_host_hands_over_to_the_watchdog",),
     ),
     Mutant(
         "c-watchdog",
@@ -133,7 +136,10 @@ MUTANTS: tuple[Mutant, ...] = (
         "firmware_protocol/c/ccb_core.c",
         "(uint32_t)(now - b->last_rx_us) >= b->watchdog_us",
         "(uint32_t)(now - b->last_rx_us) >= 2u * b->watchdog_us",
-        ("tests/test_c_core.py",),
+        (
+            "tests/test_c_core.py",
+            "tests/test_rig.py::test_watchdog_on_the_wall_clock_trips_reports_and_recovers",
+        ),
     ),
     Mutant(
         "teardown-zero",
@@ -302,11 +308,11 @@ MUTANTS: tuple[Mutant, ...] = (
     ),
     Mutant(
         "rig-duplicates",
-        "simulated board applies a command older than the one in force",
-        "simulated_rig/board.py",
-        "st[S_HAVE_CMD] != 0 and not _newer(answers, st[S_CMD_ANSWERS])",
-        "st[S_HAVE_CMD] != 0 and False",
-        ("tests/test_rig.py",),
+        "the board (C core, also the rig's) applies a command older than the one in force",
+        "firmware_protocol/c/ccb_core.c",
+        "(b->have_command && !newer(c.answers_counter, b->cmd_answers))",
+        "(b->have_command && 0)",
+        ("tests/test_rig.py", "tests/test_c_core.py"),
     ),
     # ---- elements: signs and time constants, spike detection
     Mutant(

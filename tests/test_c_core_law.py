@@ -1,17 +1,15 @@
-"""The C board core's law mode (PROTOCOL.md §10) against the simulated rig's board.
+"""The C board core's law mode (PROTOCOL.md §10) against a reference board written here.
 
-The C core (``firmware_protocol/c/``, through ctypes on the in-memory port) and a model
-of the simulated rig's law-mode board are fed the same frames, clock and ADC counts,
-and must send byte-identical frames and write identical DAC counts. The model
-(``RigLaw`` below) is built from the rig's own compiled functions
-(``simulated_rig.board._on_laws``, ``_sticky``, ``encode_status``, ``new_law_board``)
-and the kernels the rig's ``_tick`` calls (``boardlaw.board_set_law``,
-``boardlaw.board_eval``, ``lawmsg.encode_samples``); the few state changes that live
-in the rig's Python handlers (``Board._on_configure``, ``_on_law_setup``, ``_on_start``)
-and the law branch of its ``_tick`` are restated there line for line, with the cell
-replaced by the given ADC counts. The board's parameters come from the host's own
-``clampcore.law.board_arrays`` for a real experiment (limit, implausible-V guard, spike
-detection, threshold_reset, an Mg-blocked synapse's table).
+The C core (``firmware_protocol/c/``, through ctypes on the in-memory port) and a
+reference board written here from PROTOCOL.md §5 and §10 (``ReferenceBoard``: plain
+Python around the host's numba mirror of the per-sample arithmetic,
+``boardlaw.board_set_law`` and ``board_eval``, and the host's encoders ``lawmsg`` and
+``codec``) are fed the same frames, clock and ADC counts, and must send byte-identical
+frames and write identical DAC counts. The simulated rig runs this same C core
+(``simulated_rig.ccore``), so these checks cover the rig's board too. The board's
+parameters come from the host's own ``clampcore.law.board_arrays`` for a real
+experiment (limit, implausible-V guard, spike detection, threshold_reset, an Mg-blocked
+synapse's table).
 """
 
 from __future__ import annotations
@@ -39,9 +37,9 @@ from firmware_protocol.cboard import (
     build_core_library,
 )
 from firmware_protocol.fuzz import reference_deframe
-from simulated_rig import board as rb
+from simulated_rig.board import board_hello
 
-HELLO = rb.board_hello()  # the rig's own board: 16-bit ±10 V converters, one in, one out
+HELLO = board_hello()  # the rig's own board: 16-bit ±10 V converters, one in, one out
 RATE_HZ = 10_000
 WATCHDOG_US = 5_000
 PERIOD_US = 1_000_000 // RATE_HZ
@@ -85,95 +83,130 @@ def laws_body(first: int, laws: list[np.ndarray], blocked: bool, seen: int = 0) 
     return body + b"".join(struct.pack(f"<{words}I", *w[:words]) for w in laws)
 
 
-class RigLaw:
-    """The simulated rig's law-mode board with the cell replaced by given ADC counts."""
+# ccb.h's defaults, which the rig's library is built with (simulated_rig.ccore).
+LAW_QUEUE = 1024
+BLOCK_POINTS = 1025
+
+
+class ReferenceBoard:
+    """A law-mode board written from PROTOCOL.md §5 and §10 in plain Python: the per-sample
+    arithmetic is the host's numba mirror (``boardlaw.board_set_law``, ``board_eval``), the
+    messages are the host's codec (``lawmsg``, ``codec``); the cell is replaced by given
+    ADC counts. It knows the messages a law-mode run uses."""
 
     def __init__(self) -> None:
-        self.st = np.zeros(rb.N_ST, dtype=np.int64)
-        self.st[rb.S_DAC_MAX] = (1 << HELLO.dac_bits) - 1
-        self.lb = rb.new_law_board()
-        self.ts = np.zeros(2, dtype=np.int64)
-        self.body = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
-        self.tx = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
+        self.bf, self.bi, self.bs, self.law, _ = bl.new_board_arrays()
+        self.table = np.zeros(BLOCK_POINTS, dtype=np.float32)
+        self.queue: dict[int, tuple[int, np.ndarray]] = {}  # slot -> (sample, law)
+        self.state = codec.STATE_UNCONFIGURED
+        self.rate_hz = self.n_inputs = self.watchdog_us = self.fault = 0
+        self.have_cmd = self.tripped = self.flags = self.law_mode = 0
+        self.counter = self.tx_seq = 0
+        self.unknown = self.rejected = self.trips = self.applied = 0
+        self.laws_late = self.laws_ahead = 0
         self.out = bytearray()
         self.last_rx_us = 0
         self.dac = -1
 
-    def _status(self, ack: int, result: int) -> None:
-        n = rb.encode_status(self.st, ack, result, self.body, self.tx)
-        self.out += self.tx[:n].tobytes()
+    def _sticky(self) -> int:
+        s = 0
+        if self.state != codec.STATE_UNCONFIGURED and (not self.have_cmd or self.tripped):
+            s |= codec.STATUS_FAULT_OUTPUT
+        if self.tripped:
+            s |= codec.STATUS_WATCHDOG
+        return s
 
-    def _reply(self, ack: int, result: int) -> None:  # Board._reply
+    def _status(self, ack: int, result: int) -> None:
+        status = codec.Status(
+            state=self.state, status=self._sticky(), ack_seq=ack, result=result,
+            counter=self.counter, bad_frames=0, unknown_messages=self.unknown,
+            rejected=self.rejected, late_commands=0, missing_commands=0,
+            watchdog_trips=self.trips, commands_applied=self.applied, rate_hz=self.rate_hz,
+            n_inputs=self.n_inputs, watchdog_us=self.watchdog_us,
+        )  # fmt: skip
+        self.out += codec.encode_message(status, self.tx_seq)
+        self.tx_seq = (self.tx_seq + 1) & 0xFFFF
+
+    def _reply(self, ack: int, result: int) -> None:
         if result != codec.RESULT_OK:
-            self.st[rb.S_REJECTED] += 1
-            self.st[rb.S_FLAGS] |= codec.STATUS_RX_ERROR
+            self.rejected += 1
+            self.flags |= codec.STATUS_RX_ERROR
         self._status(ack, result)
 
     def _unknown(self) -> None:
-        self.st[rb.S_UNKNOWN] += 1
-        self.st[rb.S_FLAGS] |= codec.STATUS_RX_ERROR
+        self.unknown += 1
+        self.flags |= codec.STATUS_RX_ERROR
+
+    def _on_laws(self, payload: bytes, now_us: int) -> None:
+        """§10.4: each law to its sample's slot; late and too-early ones counted."""
+        frame = np.frombuffer(payload, dtype=np.uint8).copy()
+        fields = np.zeros(lawmsg.N_FIELDS, dtype=np.int64)
+        count = lawmsg.decode_laws(frame, frame.size, fields)
+        if count < 0 or self.state == codec.STATE_UNCONFIGURED:
+            self._unknown()
+            return
+        blocked = bool(fields[lawmsg.LAWS_BLOCKED])
+        running = self.state == codec.STATE_RUNNING
+        taken = self.counter if running else 0
+        for i in range(count):
+            sample = int(fields[lawmsg.LAWS_FIRST]) + i
+            if sample < taken:
+                self.laws_late += 1
+                self.flags |= codec.STATUS_LATE
+            elif sample - taken >= LAW_QUEUE:
+                self.laws_ahead += 1
+                self.flags |= codec.STATUS_RX_ERROR
+            else:
+                words = [lawmsg.law_word(frame, blocked, i, j) for j in range(4 if blocked else 2)]
+                law = np.array(words + [0] * (4 - len(words)), dtype=np.uint32).view(np.float32)
+                self.queue[sample % LAW_QUEUE] = (sample, law)
+        self.applied += count
+        if running:
+            self.last_rx_us = now_us  # restarts the watchdog and lifts a trip
+            self.tripped = 0
 
     def feed(self, payload: bytes, now_us: int) -> None:
-        st, lb = self.st, self.lb
         typ, seq = payload[0], payload[1] | payload[2] << 8
         body = payload[3:-2]
+        running = self.state == codec.STATE_RUNNING
         if typ == lawmsg.MSG_LAWS:
-            frame = np.frombuffer(payload, dtype=np.uint8).copy()
-            unknown = st[rb.S_UNKNOWN]
-            rb._on_laws(frame, frame.size, st, lb, self.ts)
-            if st[rb.S_UNKNOWN] == unknown and st[rb.S_STATE] == codec.STATE_RUNNING:
-                self.last_rx_us = now_us  # the rig restarts the watchdog on its own clock
+            self._on_laws(payload, now_us)
         elif typ == lawmsg.MSG_ZERO and len(body) == 1:
-            lb.bs[bl.BS_HOLD_ZERO] = 1 if body[0] != 0 else 0
-        elif typ in (lawmsg.MSG_BOARD_RULES, lawmsg.MSG_BLOCK_TABLE):  # Board._on_law_setup
-            if st[rb.S_STATE] != codec.STATE_READY:
+            self.bs[bl.BS_HOLD_ZERO] = 1 if body[0] != 0 else 0  # on arrival
+        elif typ in (lawmsg.MSG_BOARD_RULES, lawmsg.MSG_BLOCK_TABLE):  # READY only
+            if self.state != codec.STATE_READY:
                 self._reply(seq, codec.RESULT_BAD_STATE)
                 return
             try:
                 if typ == lawmsg.MSG_BOARD_RULES:
-                    lawmsg.parse_rules(body, lb.bf, lb.bi)
-                    lb.bi[bl.BI_DAC_TOP] = st[rb.S_DAC_MAX]
-                    lb.bi[bl.BI_FAULT_COUNTS] = st[rb.S_FAULT_COUNTS]
-                    st[rb.S_LAW_MODE] = 1
+                    lawmsg.parse_rules(body, self.bf, self.bi)
+                    self.bi[bl.BI_DAC_TOP] = (1 << HELLO.dac_bits) - 1
+                    self.bi[bl.BI_FAULT_COUNTS] = self.fault
+                    self.law_mode = 1
                 else:
-                    lawmsg.parse_table(body, lb.table)
+                    lawmsg.parse_table(body, self.table)
             except ValueError:
                 self._unknown()
                 return
             self._reply(seq, codec.RESULT_OK)
-        elif typ == codec.MSG_CONFIGURE:  # Board._on_configure, a valid CONFIGURE in READY
+        elif typ == codec.MSG_CONFIGURE:  # a valid CONFIGURE in READY (all this test sends)
             _, cfg = codec.parse_payload(payload)
-            st[rb.S_RATE_HZ] = cfg.rate_hz
-            st[rb.S_N_INPUTS] = cfg.n_inputs
-            st[rb.S_WATCHDOG_US] = cfg.watchdog_us
-            st[rb.S_FAULT_COUNTS] = cfg.fault_counts[0]
-            st[rb.S_STATE] = codec.STATE_READY
-            st[rb.S_HAVE_CMD] = 0
-            st[rb.S_TRIPPED] = 0
-            st[rb.S_LAW_MODE] = 0
-            lb.qdue[:] = -1
+            self.rate_hz, self.n_inputs = cfg.rate_hz, cfg.n_inputs
+            self.watchdog_us, self.fault = cfg.watchdog_us, cfg.fault_counts[0]
+            self.state = codec.STATE_READY
+            self.have_cmd = self.tripped = self.law_mode = 0
+            self.queue.clear()
             self._reply(seq, codec.RESULT_OK)
-        elif typ == codec.MSG_START:  # Board._on_start
-            for i in (
-                rb.S_UNKNOWN,
-                rb.S_REJECTED,
-                rb.S_TRIPS,
-                rb.S_APPLIED,
-                rb.S_COUNTER,
-                rb.S_HAVE_CMD,
-                rb.S_TRIPPED,
-                rb.S_FLAGS,
-                rb.S_LAWS_LATE,
-                rb.S_LAWS_AHEAD,
-            ):
-                st[i] = 0  # fmt: skip
-            lb.bs[:] = bl.new_board_arrays()[2]
-            st[rb.S_CMD_COUNTS] = st[rb.S_FAULT_COUNTS]
-            st[rb.S_STATE] = codec.STATE_RUNNING
+        elif typ == codec.MSG_START:  # counters cover one run; laws queued in READY stay
+            self.unknown = self.rejected = self.trips = self.applied = 0
+            self.counter = self.have_cmd = self.tripped = self.flags = 0
+            self.laws_late = self.laws_ahead = 0
+            self.bs[:] = bl.new_board_arrays()[2]
+            self.state = codec.STATE_RUNNING
             self._reply(seq, codec.RESULT_OK)
             self.last_rx_us = now_us
-        elif typ == codec.MSG_KEEPALIVE:  # _on_raw_frame
-            if st[rb.S_STATE] == codec.STATE_RUNNING:
+        elif typ == codec.MSG_KEEPALIVE:  # restarts the watchdog, lifts no trip (§5.3)
+            if running:
                 self.last_rx_us = now_us
         elif typ == codec.MSG_GET_STATUS:
             self._status(seq, codec.RESULT_OK)
@@ -181,33 +214,31 @@ class RigLaw:
             raise AssertionError(f"the model does not know message 0x{typ:02X}")
 
     def tick(self, adc: int, now_us: int) -> None:
-        """simulated_rig.board._tick: the watchdog, then its law-mode branch."""
-        st, lb = self.st, self.lb
-        k = st[rb.S_COUNTER]
-        if st[rb.S_TRIPPED] == 0 and now_us - self.last_rx_us >= st[rb.S_WATCHDOG_US]:
-            st[rb.S_TRIPPED] = 1
-            st[rb.S_TRIPS] += 1
+        """One sample: the watchdog (§5.3), the law queued for it, the law at this count."""
+        k = self.counter
+        if not self.tripped and now_us - self.last_rx_us >= self.watchdog_us:
+            self.tripped = 1
+            self.trips += 1
             self._status(0, codec.RESULT_REPORT)
-        slot = k & (rb.LAW_QUEUE - 1)
-        if lb.qdue[slot] == k:
-            bl.board_set_law(lb.bs, lb.law, lb.qlaw[slot], k)
-            lb.qdue[slot] = -1
-        packed = bl.board_eval(adc, k, lb.bf, lb.bi, lb.bs, lb.law, lb.table)
+        due, law = self.queue.get(k % LAW_QUEUE, (-1, None))
+        if due == k:
+            bl.board_set_law(self.bs, self.law, law, k)
+            del self.queue[k % LAW_QUEUE]
+        packed = bl.board_eval(adc, k, self.bf, self.bi, self.bs, self.law, self.table)
         out_flags = packed >> 16
-        if st[rb.S_TRIPPED] != 0:
+        if self.tripped:  # the link watchdog overrides every law
             out_flags |= bl.BF_FLAG_FAULT
-        st[rb.S_CMD_COUNTS] = packed & 0xFFFF
-        st[rb.S_HAVE_CMD] = 0 if out_flags & bl.BF_FLAG_FAULT else 1
-        self.dac = int(st[rb.S_FAULT_COUNTS] if st[rb.S_TRIPPED] != 0 else st[rb.S_CMD_COUNTS])
-        status = rb._sticky(st) | st[rb.S_FLAGS]
-        st[rb.S_FLAGS] = 0
+        self.have_cmd = 0 if out_flags & bl.BF_FLAG_FAULT else 1
+        self.dac = int(self.fault if self.tripped else packed & 0xFFFF)
+        status = self._sticky() | self.flags
+        self.flags = 0
         one = np.array([adc, self.dac, out_flags], dtype=np.int64)
-        n = lawmsg.encode_samples(
-            st[rb.S_TX_SEQ], k, now_us, status, 1, one[0:1], one[1:2], one[2:3], self.tx
-        )
-        st[rb.S_TX_SEQ] = (st[rb.S_TX_SEQ] + 1) & 0xFFFF
-        self.out += self.tx[:n].tobytes()
-        st[rb.S_COUNTER] = k + 1
+        tx = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
+        n = lawmsg.encode_samples(self.tx_seq, k, now_us, status, 1, one[0:1], one[1:2],
+                                  one[2:3], tx)  # fmt: skip
+        self.tx_seq = (self.tx_seq + 1) & 0xFFFF
+        self.out += tx[:n].tobytes()
+        self.counter = k + 1
 
     def take(self) -> bytes:
         data, self.out = bytes(self.out), bytearray()
@@ -215,16 +246,16 @@ class RigLaw:
 
 
 class Pair:
-    """The C core and the rig's model, fed the same frames, clock and ADC counts."""
+    """The C core and the reference board, fed the same frames, clock and ADC counts."""
 
     def __init__(self, core: CoreLibrary) -> None:
         self.c = core.rig(HELLO)
-        self.ref = RigLaw()
+        self.ref = ReferenceBoard()
         self.seq = 0
         self.now_us = 0
 
     def send(self, msg_type: int, body: bytes) -> bytes:
-        """One frame to both; returns what the C core sent (checked equal to the rig's)."""
+        """One frame to both; returns what the C core sent (checked equal to the reference's)."""
         self.seq += 1
         return self.send_wire(lawmsg.frame_bytes(msg_type, self.seq, body))
 
@@ -331,7 +362,7 @@ def _play(pair: Pair, events: list[tuple[str, object]]) -> bytes:
     return sent
 
 
-def test_a_law_mode_run_gives_the_rigs_bytes_and_dac_counts(core: CoreLibrary) -> None:
+def test_a_law_mode_run_gives_the_reference_bytes_and_dac_counts(core: CoreLibrary) -> None:
     pair = Pair(core)
     sent = _play(pair, _sweep())
     samples = _samples(sent)
@@ -379,19 +410,19 @@ _events = st.lists(
 
 @settings(derandomize=True, deadline=None, max_examples=120)
 @given(events=_events)
-def test_any_run_gives_the_rigs_bytes_and_dac_counts(core: CoreLibrary, events: list) -> None:
+def test_any_run_gives_the_reference_bytes_and_dac_counts(core: CoreLibrary, events: list) -> None:
     """Arbitrary laws (late, queued, beyond the queue, non-finite), counts, zero requests
-    and silences long enough to trip the watchdog: the C core sends what the rig sends."""
+    and silences long enough to trip the watchdog: the C core sends what the reference sends."""
     pair = Pair(core)
     pair.setup([law_bits(0.0, 5.0)] * 3)
     for kind, arg in events:
         if kind == "laws_rel":
             offset, laws, blocked = arg
-            first = max(0, int(pair.ref.st[rb.S_COUNTER]) + offset)
+            first = max(0, pair.ref.counter + offset)
             pair.send(lawmsg.MSG_LAWS, laws_body(first, laws, blocked))
         else:
             _play_one(pair, kind, arg)
-    assert pair.c.law_counts() == (pair.ref.st[rb.S_LAWS_LATE], pair.ref.st[rb.S_LAWS_AHEAD])
+    assert pair.c.law_counts() == (pair.ref.laws_late, pair.ref.laws_ahead)
 
 
 def _play_one(pair: Pair, kind: str, arg: object) -> bytes:
@@ -452,8 +483,8 @@ def test_late_laws_and_laws_beyond_the_queue_are_counted_and_dropped(core: CoreL
     assert status & codec.STATUS_RX_ERROR and not status & codec.STATUS_LATE
     assert pair.c.law_counts() == (2, 1)
     assert dac_5 == dac_4 and flags == 0  # sample 4's law still in force (lifetime 3)
-    # Counted by the rig alike; both count every law of a LAWS frame as applied.
-    assert (pair.ref.st[rb.S_LAWS_LATE], pair.ref.st[rb.S_LAWS_AHEAD]) == (2, 1)
+    # Counted by the reference alike; both count every law of a LAWS frame as applied.
+    assert (pair.ref.laws_late, pair.ref.laws_ahead) == (2, 1)
     assert pair.c.status().commands_applied == 3 + 2  # this run's frames (START zeroes it)
 
 
@@ -480,7 +511,7 @@ def test_zero_acts_on_arrival_ahead_of_queued_laws_and_start_resets_it(
 
 def test_stop_forgets_the_laws_of_the_run(core: CoreLibrary) -> None:
     """A law queued for a sample the run never reached must not act in the next run
-    (a choice of the C core: the rig keeps them, PROTOCOL.md §10.6)."""
+    (PROTOCOL.md §10.6)."""
     rig = core.rig(HELLO)
     for wire in _setup_wires():
         rig.feed(wire)
@@ -509,7 +540,7 @@ def _setup_wires() -> list[bytes]:
 def _malformed() -> list[tuple[str, bytes]]:
     two_laws_one_sent = struct.pack("<IIBB", 0, 0, 2, 0) + b"\x00" * 8
     bad_shift = lawmsg.rules_body(BF, np.where(np.arange(bl.N_BI) == bl.BI_BLOCK_SHIFT, 17, BI))
-    table_end = struct.pack("<HB", rb.BLOCK_POINTS - 1, 2) + b"\x00" * 8
+    table_end = struct.pack("<HB", BLOCK_POINTS - 1, 2) + b"\x00" * 8
     return [
         ("rules_short", lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 7, RULES[:-1])),
         ("rules_block_shift_17", lawmsg.frame_bytes(lawmsg.MSG_BOARD_RULES, 7, bad_shift)),
@@ -528,7 +559,7 @@ def test_malformed_law_messages_are_ignored_and_counted(
 ) -> None:
     """PROTOCOL.md §5.5: a body the board cannot use is an unknown message: ignored, counted,
     never acted on, no reply. (A block shift that would read beyond the board's table is
-    one: the C core checks it, the rig's table is always the largest.)"""
+    one: the C core checks it.)"""
     rig = core.rig(HELLO)
     for w in _setup_wires()[:1]:
         rig.feed(w)

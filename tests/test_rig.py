@@ -634,6 +634,24 @@ def test_bad_options_give_a_clear_error(tmp_path: Path) -> None:
     assert not any(line.startswith("Traceback") for line in result.stderr.splitlines())
 
 
+def test_without_a_c_compiler_the_rig_says_so_in_one_line(tmp_path: Path) -> None:
+    """The rig runs the C board core, built on first use: no compiler, a clear refusal."""
+    env = {k: v for k, v in os.environ.items() if k != "CC"}
+    env["PATH"] = str(tmp_path)  # an empty folder: no cc, gcc or clang to find
+    result = subprocess.run(
+        [sys.executable, "-m", "simulated_rig"],
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+        timeout=120,
+        stdin=subprocess.DEVNULL,
+        env=env,
+    )
+    assert result.returncode == 2
+    lines = result.stderr.strip().splitlines()
+    assert len(lines) == 1 and "C compiler" in lines[0] and "gcc" in lines[0], result.stderr
+
+
 def test_clampcore_rig_subcommand_has_the_same_options() -> None:
     result = subprocess.run(
         [sys.executable, "-m", "clampcore", "rig", "--help"],
@@ -684,3 +702,38 @@ def test_sigterm_stops_the_rig_and_closes_the_log(exp_path: Path, tmp_path: Path
     c.close()
     (stop,) = read_log(log).events_of("stop")
     assert stop["why"] == "rig shut down" and stop["samples"] >= 10
+
+
+def test_the_serial_bridge_on_the_wall_clock_follows_the_sample_time_model() -> None:
+    """The rig's wall-clock serial bridge (``simulated_rig.board._link_put``) delivers each
+    batch of bytes to the host when the sample-time model of the same link does
+    (``clampcore.links._bridge_up``: full 62-byte packets, the 16 ms latency timer, 921,600
+    baud, 1 ms USB frames), for batches handed over at 20 kHz and, slower, at 500 Hz.
+    Times are given to the kernels, not read from a clock: behaviour, not timing."""
+    from clampcore.links import LINKS, _bridge_up
+    from simulated_rig.board import Q_TAIL, _link_flush, _link_put, new_link_shape
+
+    link = LINKS["bridge"]
+    t0_ns = 5_000_000_000  # any board time; the models count from the first batch
+    cases = (
+        (50.0, [22] * 40),  # 20 kHz: the UART is the bottleneck, full packets
+        (2000.0, [22, 27, 22, 40, 22, 22, 90, 22]),  # packets, the timer at the end
+        (2000.0, [5] * 30),  # 62 bytes take 26 ms to gather: the timer sends (16 ms)
+    )
+    for period_us, sizes in cases:
+        ln = new_link_shape("bridge", seed=0)
+        ready_us = np.arange(len(sizes)) * period_us
+        for t_us, n in zip(ready_us, sizes, strict=True):
+            _link_put(ln, ln.obuf, ln.oends, ln.oq, np.ones(n, dtype=np.uint8), n,
+                      t0_ns + round(t_us * 1000), True)  # fmt: skip
+        r, w = os.pipe()
+        try:
+            _link_flush(w, ln, t0_ns + 10**10)  # long after: the timer sends the rest
+        finally:
+            os.close(w)
+            os.close(r)
+        assert ln.oq[Q_TAIL] == len(sizes)
+        got_us = (ln.oends[: len(sizes), 1] - t0_ns) / 1000.0
+        expected_us = _bridge_up(link, ready_us, np.array(sizes, dtype=float))
+        assert np.allclose(got_us, expected_us, rtol=0, atol=1.0), (got_us, expected_us)
+        assert len(set(got_us.tolist())) < len(sizes)  # batches went out together in packets

@@ -270,6 +270,10 @@ typedef struct ccb_board { /* all fields private: use the functions below */
 uint8_t ccb_init(ccb_board *b, const ccb_board_info *info, const ccb_port *port);
 void ccb_feed(ccb_board *b, const uint8_t *data, size_t len);
 void ccb_tick(ccb_board *b);
+/* The watchdog check that ccb_tick() makes first, on its own: for a port that must know
+ * the output in force before it samples (a simulator advancing its model cell over the
+ * period that ends at this tick).  Calling it just before ccb_tick() changes nothing else. */
+void ccb_check_watchdog(ccb_board *b);
 uint8_t ccb_state(const ccb_board *b);
 uint32_t ccb_rate_hz(const ccb_board *b); /* 0 until configured */
 void ccb_get_status(const ccb_board *b, ccb_status *out);

@@ -993,6 +993,26 @@ void ccb_feed(ccb_board *b, const uint8_t *data, size_t len)
     }
 }
 
+/* The link watchdog (§5.3) at time now: trip once, report, and (version 1) fault value out. */
+static void check_watchdog(ccb_board *b, uint32_t now, uint8_t law_mode)
+{
+    if (!b->tripped && (uint32_t)(now - b->last_rx_us) >= b->watchdog_us) {
+        b->tripped = 1;
+        b->stats.watchdog_trips++;
+        if (!law_mode) {
+            output_fault(b); /* in law mode the tick below writes it */
+        }
+        send_status(b, 0, CCB_RESULT_REPORT);
+    }
+}
+
+void ccb_check_watchdog(ccb_board *b)
+{
+    if (b != NULL && b->state == CCB_STATE_RUNNING) {
+        check_watchdog(b, b->port.micros(b->port.ctx), ccb_law_mode(b));
+    }
+}
+
 void ccb_tick(ccb_board *b)
 {
     uint32_t now;
@@ -1002,14 +1022,7 @@ void ccb_tick(ccb_board *b)
     }
     law_mode = ccb_law_mode(b);
     now = b->port.micros(b->port.ctx);
-    if (!b->tripped && (uint32_t)(now - b->last_rx_us) >= b->watchdog_us) {
-        b->tripped = 1;
-        b->stats.watchdog_trips++;
-        if (!law_mode) {
-            output_fault(b); /* in law mode the tick below writes it */
-        }
-        send_status(b, 0, CCB_RESULT_REPORT);
-    }
+    check_watchdog(b, now, law_mode);
     for (i = 0; i < b->n_inputs; i++) {
         b->adc[i] = b->port.read_adc(b->port.ctx, i);
     }
