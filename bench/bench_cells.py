@@ -17,9 +17,8 @@ import statistics
 import time
 
 import numpy as np
+from clampcore.simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
 from numba import njit
-
-from simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
 
 RATE_HZ = 20000.0  # the loop's usual sample rate
 DT_MS = 1000.0 / RATE_HZ

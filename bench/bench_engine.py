@@ -36,13 +36,13 @@ import time
 from pathlib import Path
 
 import numpy as np
+from clampcore.firmware_protocol.cboard import find_c_compiler
 from numba import njit
 
 import clampcore
 from clampcore import build_program
 from clampcore.program import Program
 from clampcore.step import step
-from firmware_protocol.cboard import find_c_compiler
 
 RATE_HZ = 20000.0  # the loop's usual sample rate
 N_STEPS = 200_000  # 10 s of samples per timed repeat of the step loop

@@ -41,12 +41,13 @@ import time
 from pathlib import Path
 
 import numpy as np
+from clampcore.simulated_rig import start_rig
+from clampcore.simulated_rig.groundtruth import read_log
 
 from clampcore import linksim
 from clampcore.engine import Engine, RunOptions
 from clampcore.links import LINKS
 from clampcore.nwb import read_nwb_summary
-from simulated_rig.groundtruth import read_log
 
 _CELL = {
     "model": "passive",
@@ -196,7 +197,7 @@ def wall_run(exp: dict, seconds: float, link: str, mode: str, stall_ms: float) -
             rig_clock="wall", rig_log=log, rig_link=None if link == "direct" else link,
             mode=mode, watchdog_ms=100.0,
         )  # fmt: skip
-        engine = Engine(exp, "sim", options)
+        engine = Engine(exp, "sim", options, rig_factory=start_rig)
         engine.start(duration_s=seconds, out=Path(tmp) / "run.nwb")
         stop = threading.Event()
         staller = threading.Thread(target=_stall_host, args=(engine, stall_ms, stop))

@@ -63,10 +63,10 @@ def main() -> int:
     )  # fmt: skip
     args = parser.parse_args()
 
+    from clampcore.gui.window import REFRESH_HZ, TuningWindow
     from PySide6 import QtCore, QtWidgets
 
     from clampcore.engine import RunOptions
-    from gui.window import REFRESH_HZ, TuningWindow
 
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication([])
     tmp = tempfile.TemporaryDirectory(prefix="bench-gui-")

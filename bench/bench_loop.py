@@ -40,6 +40,15 @@ import threading
 from pathlib import Path
 
 import numpy as np
+from clampcore.firmware_protocol import codec
+from clampcore.firmware_protocol.codec import (
+    SAMPLE_COUNTER,
+    decode_sample,
+    deframe_next,
+    encode_command,
+)
+from clampcore.simulated_rig import start_rig
+from clampcore.simulated_rig.groundtruth import LOG_BEHIND, NO_COMMAND, read_log
 
 from clampcore.board_link import BoardLink, board_converters
 from clampcore.calibration import conversion_array, pA_to_counts
@@ -54,10 +63,6 @@ from clampcore.realtime import (
     hold_cpu_dma_latency_zero,
 )
 from clampcore.sysio import fd_read, fd_write, monotonic_ns, monotonic_us, wait_readable
-from firmware_protocol import codec
-from firmware_protocol.codec import SAMPLE_COUNTER, decode_sample, deframe_next, encode_command
-from simulated_rig import start_rig
-from simulated_rig.groundtruth import LOG_BEHIND, NO_COMMAND, read_log
 
 ROOT = Path(__file__).resolve().parent.parent
 EXPERIMENT = ROOT / "examples" / "imposed_lif.toml"

@@ -22,10 +22,9 @@ import tempfile
 import time
 
 import numpy as np
+from clampcore.firmware_protocol import codec, fuzz
+from clampcore.firmware_protocol.cboard import build_fuzz_binary, find_c_compiler
 from numba import njit
-
-from firmware_protocol import codec, fuzz
-from firmware_protocol.cboard import build_fuzz_binary, find_c_compiler
 
 
 @njit(cache=True, nogil=True)

@@ -38,6 +38,7 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+from clampcore.simulated_rig import start_rig
 
 from clampcore.engine import Engine, RunOptions
 from clampcore.journal import Journal, JournalData, read_journal
@@ -52,7 +53,7 @@ FILTERS = [("gzip", 1), ("gzip", 4), ("gzip", 9), ("lzf", None)]
 
 def _record(seconds: float, tmp: Path) -> JournalData:
     options = RunOptions(keep_journal=True, seed=1)
-    engine = Engine(EXPERIMENT, "sim", options)
+    engine = Engine(EXPERIMENT, "sim", options, rig_factory=start_rig)
     engine.start(duration_s=seconds, out=tmp / "run.nwb")
     engine.wait()
     result = engine.finish()

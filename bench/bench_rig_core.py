@@ -21,11 +21,11 @@ import statistics
 import time
 
 import numpy as np
+from clampcore.firmware_protocol import codec
+from clampcore.simulated_rig import ccore
+from clampcore.simulated_rig.board import board_hello
 
 from clampcore.jit import kernel
-from firmware_protocol import codec
-from simulated_rig import ccore
-from simulated_rig.board import board_hello
 
 _PERIOD_20KHZ_NS = 50_000  # 1 / 20 kHz
 

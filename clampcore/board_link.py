@@ -24,7 +24,7 @@ import serial
 from serial.tools import list_ports as _list_ports
 
 from clampcore.calibration import Converter
-from firmware_protocol import boardlaw, codec, lawmsg
+from clampcore.firmware_protocol import boardlaw, codec, lawmsg
 
 _CONTROL_SEQ_START = 0x8000  # control frames count from here; commands use their own numbers
 _REPLY_TIMEOUT_S = 2.0  # a board answers a control message within a few ms; 2 s is generous

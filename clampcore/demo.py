@@ -13,11 +13,12 @@ from __future__ import annotations
 import shutil
 from pathlib import Path
 
-from clampcore.cli import run_with_status
+from clampcore.console import run_with_status
 from clampcore.engine import Engine, RunOptions
 from clampcore.law import LAW_MODE
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.plot import plot_recording
+from clampcore.simulated_rig import start_rig
 
 EXAMPLES = Path(__file__).resolve().parent.parent / "examples"
 
@@ -34,7 +35,7 @@ def run_demo(out_dir: Path, duration_s: float = 5.0, example: str = "imposed_lif
         f"clampcore demo: {exp.name} on the simulated rig for {duration_s:g} s, law mode "
         "(the board evaluates the current law at its own V)"
     )
-    engine = Engine(exp, "sim", RunOptions(mode=LAW_MODE))
+    engine = Engine(exp, "sim", RunOptions(mode=LAW_MODE), rig_factory=start_rig)
     result = run_with_status(engine, duration_s, str(out_dir / "demo.nwb"), force=True)
     if result.nwb_path is None:
         return 1

@@ -2,10 +2,13 @@
 
 ``Engine`` is what the command line and the window use::
 
-    engine = Engine("examples/imposed_lif.toml", port="sim")
+    engine = Engine("examples/imposed_lif.toml", port="sim", rig_factory=start_rig)
     engine.start(duration_s=5)
     engine.change("imposed_spike", "threshold_mV", -48.0)   # applied at a sample boundary
     result = engine.finish()                                # waits, records NWB
+
+Port "sim" is the simulated rig, started by the ``rig_factory`` the caller hands in
+(``clampcore.simulated_rig.start_rig``): the engine never imports the rig itself.
 
 The loop runs in its own process (``_loop_process``): it opens the port, asks
 the board for its capabilities, refuses to start when the calibration is missing
@@ -36,6 +39,7 @@ import signal
 import tempfile
 import time
 import traceback
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -50,6 +54,7 @@ from clampcore.calibration import (
     pA_to_counts,
 )
 from clampcore.experiment import Experiment, ExperimentError, load_experiment
+from clampcore.firmware_protocol.lawmsg import rules_body, table_bodies
 from clampcore.health import loop_health
 from clampcore.hostloop import (
     EXIT_BOARD_SILENT,
@@ -102,7 +107,6 @@ from clampcore.shared import (
     RingLayout,
     SharedRun,
 )
-from firmware_protocol.lawmsg import rules_body, table_bodies
 
 _PR_SET_PDEATHSIG = 1  # <linux/prctl.h>
 # Before stopping, wait this long for a sample newer than the last one answered, so that the
@@ -492,9 +496,24 @@ def _python_loop(
 class Engine:
     """One run of an experiment on a port ("sim" starts the simulated rig)."""
 
-    def __init__(self, experiment: Any, port: str, options: RunOptions | None = None) -> None:
+    def __init__(
+        self,
+        experiment: Any,
+        port: str,
+        options: RunOptions | None = None,
+        rig_factory: Callable[..., Any] | None = None,
+    ) -> None:
+        """``rig_factory``: for port "sim", what starts the simulated rig
+        (``clampcore.simulated_rig.start_rig``; called with the experiment file and the
+        ``rig_*`` options, it returns an object with ``path`` and ``stop()``)."""
+        if port == "sim" and rig_factory is None:
+            raise EngineError(
+                'port "sim" needs the simulated rig: pass '
+                "rig_factory=clampcore.simulated_rig.start_rig"
+            )
         self.experiment: Experiment = load_experiment(experiment)
         self.port = port
+        self.rig_factory = rig_factory
         self.options = options or RunOptions()
         self.program = build_program(self.experiment, seed=self.options.seed)
         self.layout = RingLayout.for_program(self.program)
@@ -539,12 +558,10 @@ class Engine:
         port = self.port
         source = port
         if port == "sim":
-            from simulated_rig import start_rig
-
-            assert self._tmpdir is not None
+            assert self._tmpdir is not None and self.rig_factory is not None
             exp_file = Path(self._tmpdir.name) / "experiment.toml"
             exp_file.write_text(exp.text or exp.to_toml(), encoding="utf-8")
-            self._rig = start_rig(
+            self._rig = self.rig_factory(
                 exp_file,
                 clock=self.options.rig_clock,
                 seed=self.options.seed,

@@ -33,6 +33,23 @@ import numpy as np
 
 from clampcore.calibration import counts_to_mV, pA_to_counts
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.firmware_protocol.codec import (
+    DEFRAMER_BAD,
+    MAX_CHANNELS,
+    MAX_PAYLOAD,
+    MAX_WIRE,
+    SAMPLE_CMD_SEQ,
+    SAMPLE_COUNTER,
+    SAMPLE_NFIELDS,
+    SAMPLE_STATUS,
+    STATUS_LATE,
+    STATUS_RX_ERROR,
+    STATUS_WATCHDOG,
+    decode_sample,
+    deframe_next,
+    encode_command,
+    new_deframer,
+)
 from clampcore.jit import kernel
 from clampcore.program import ProgramArrays
 from clampcore.shared import (
@@ -83,23 +100,6 @@ from clampcore.step import (
     step,
 )
 from clampcore.sysio import fd_read, fd_write, monotonic_us, wait_readable
-from firmware_protocol.codec import (
-    DEFRAMER_BAD,
-    MAX_CHANNELS,
-    MAX_PAYLOAD,
-    MAX_WIRE,
-    SAMPLE_CMD_SEQ,
-    SAMPLE_COUNTER,
-    SAMPLE_NFIELDS,
-    SAMPLE_STATUS,
-    STATUS_LATE,
-    STATUS_RX_ERROR,
-    STATUS_WATCHDOG,
-    decode_sample,
-    deframe_next,
-    encode_command,
-    new_deframer,
-)
 
 EXIT_RUNNING = 0
 EXIT_STOP_REQUEST = 1

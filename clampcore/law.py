@@ -35,6 +35,7 @@ from clampcore.calibration import C_ADC_TOP, C_DAC_TOP, counts_to_mV, counts_to_
 from clampcore.elements import KIND_THRESHOLD_RESET, P_ENABLED
 from clampcore.elements import synapse as _syn
 from clampcore.elements import threshold_reset as _tr
+from clampcore.firmware_protocol import boardlaw as bl
 from clampcore.jit import kernel
 from clampcore.program import Program, ProgramArrays
 from clampcore.step import (
@@ -45,7 +46,6 @@ from clampcore.step import (
     LS_LAW_GB_NS,
     element_conductances,
 )
-from firmware_protocol import boardlaw as bl
 
 LAW_MODE = "law"  # the board evaluates the law at its own V (protocol v2)
 CURRENT_MODE = "current"  # the host computes the current from the newest V it has

@@ -34,6 +34,18 @@ from clampcore.calibration import counts_to_mV, counts_to_pA
 from clampcore.elements import KIND_THRESHOLD_RESET
 from clampcore.elements import threshold_reset as _tr
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.firmware_protocol import boardlaw as bl
+from clampcore.firmware_protocol import lawmsg
+from clampcore.firmware_protocol.codec import (
+    DEFRAMER_BAD,
+    MAX_PAYLOAD,
+    MAX_WIRE,
+    STATUS_LATE,
+    STATUS_WATCHDOG,
+    deframe_next,
+    encode_frame,
+    new_deframer,
+)
 from clampcore.hostloop import (
     EXIT_PORT_ERROR,
     FLAG_ZEROED,
@@ -82,18 +94,6 @@ from clampcore.step import (
     cell_currents,
     hist_record_cell_spike,
     queue_late_cell_spike,
-)
-from firmware_protocol import boardlaw as bl
-from firmware_protocol import lawmsg
-from firmware_protocol.codec import (
-    DEFRAMER_BAD,
-    MAX_PAYLOAD,
-    MAX_WIRE,
-    STATUS_LATE,
-    STATUS_WATCHDOG,
-    deframe_next,
-    encode_frame,
-    new_deframer,
 )
 
 LW_NEXT_SEQ = 0  # sequence number of the next frame the loop sends

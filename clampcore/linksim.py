@@ -42,6 +42,13 @@ from clampcore.calibration import (
     mV_to_counts,
 )
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
+from clampcore.firmware_protocol.boardlaw import (
+    BF_FLAG_RESET,
+    BF_FLAG_SPIKE,
+    BI_FAULT_COUNTS,
+    board_eval,
+    board_set_law,
+)
 from clampcore.jit import kernel
 from clampcore.law import (
     CURRENT_MODE,
@@ -55,26 +62,19 @@ from clampcore.law import (
 from clampcore.lawloop import board_reset_current
 from clampcore.links import LINKS, Link, Schedule, schedule
 from clampcore.program import ProgramArrays, build_program
+from clampcore.simulated_rig.cells import (
+    CellArrays,
+    cell_advance,
+    cell_measure_mV,
+    cell_v_true_mV,
+    make_cell,
+)
 from clampcore.step import (
     LS_CELL_SPIKED,
     cell_currents,
     hist_record_cell_spike,
     queue_late_cell_spike,
     step,
-)
-from firmware_protocol.boardlaw import (
-    BF_FLAG_RESET,
-    BF_FLAG_SPIKE,
-    BI_FAULT_COUNTS,
-    board_eval,
-    board_set_law,
-)
-from simulated_rig.cells import (
-    CellArrays,
-    cell_advance,
-    cell_measure_mV,
-    cell_v_true_mV,
-    make_cell,
 )
 
 _US_PER_MS = 1000.0

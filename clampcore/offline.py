@@ -36,6 +36,7 @@ from clampcore.law import LAW_MODE
 from clampcore.lawloop import host_flags_of
 from clampcore.program import Program, ProgramArrays, build_program
 from clampcore.roundtrip import RoundTrip, adc_round_trip_mV, dac_round_trip_pA, round_trip_arrays
+from clampcore.simulated_rig.cells import CellArrays, cell_advance, cell_measure_mV, make_cell
 from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
@@ -44,7 +45,6 @@ from clampcore.step import (
     LS_FLAGS,
     step,
 )
-from simulated_rig.cells import CellArrays, cell_advance, cell_measure_mV, make_cell
 
 
 class ClosedLoopTrace(NamedTuple):

@@ -57,6 +57,7 @@ from clampcore.calibration import (
     pA_to_counts,
 )
 from clampcore.experiment import Experiment, load_experiment
+from clampcore.simulated_rig import start_rig
 
 ELEMENT_PREFIX = "protocol_"
 # Passive steps: the largest moves V by this much (see the module docstring).
@@ -318,7 +319,8 @@ def run_protocol(
 
         if out is None:
             raise ValueError("a run on a port needs an output path for its recording")
-        engine = Engine(exp, port, RunOptions(seed=seed, rig_clock=rig_clock, extra_meta=meta))
+        options = RunOptions(seed=seed, rig_clock=rig_clock, extra_meta=meta)
+        engine = Engine(exp, port, options, rig_factory=start_rig)
         engine.start(duration_s=duration_s, out=out)
         try:
             while not engine.wait(0.5):

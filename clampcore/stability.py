@@ -185,7 +185,7 @@ def virtual_conductances_nS(exp: Experiment) -> list[tuple[str, str, float, floa
 
 def cell_conductance(cell: dict[str, Any], dt_ms: float) -> tuple[float, float]:
     """(capacitance pF, conductance nS at rest) of a ``[cell]`` table's model cell."""
-    from simulated_rig.cells import (
+    from clampcore.simulated_rig.cells import (
         CELL_PASSIVE,
         P_CAPACITANCE_PF,
         P_G_K_NS,

@@ -28,7 +28,7 @@ import os
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
-from firmware_protocol.codec import (
+from clampcore.firmware_protocol.codec import (
     IDENTITY_BYTES,
     MAX_CHANNELS,
     MAX_WIRE,

@@ -19,8 +19,7 @@ import ctypes
 import os
 
 import numpy as np
-
-from firmware_protocol import boardlaw as bl
+from clampcore.firmware_protocol import boardlaw as bl
 
 _f32 = ctypes.c_float
 _i32 = ctypes.c_int32

@@ -31,9 +31,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from numba import njit
-
-from firmware_protocol.codec import (
+from clampcore.firmware_protocol.codec import (
     COMMAND_NFIELDS,
     DEFRAMER_BAD,
     DEFRAMER_BAD_BY_REASON,
@@ -62,6 +60,7 @@ from firmware_protocol.codec import (
     deframe_next,
     encode_frame,
 )
+from numba import njit
 
 FUZZ_GOOD = 0
 FUZZ_BAD = 1

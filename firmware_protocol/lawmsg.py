@@ -25,10 +25,8 @@ from __future__ import annotations
 import struct
 
 import numpy as np
-
-from clampcore.jit import kernel
-from firmware_protocol import boardlaw as bl
-from firmware_protocol.codec import (
+from clampcore.firmware_protocol import boardlaw as bl
+from clampcore.firmware_protocol.codec import (
     ERR_BAD_ARGUMENT,
     ERR_BAD_LENGTH,
     ERR_NOT_THIS_TYPE,
@@ -40,6 +38,8 @@ from firmware_protocol.codec import (
     _put_u32,
     encode_frame,
 )
+
+from clampcore.jit import kernel
 
 MSG_LAWS = 0x08
 MSG_BOARD_RULES = 0x09

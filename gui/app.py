@@ -88,9 +88,8 @@ def run_window(
 ) -> int:
     """Open the window and run Qt's event loop until it closes; returns the exit code."""
     try:
+        from clampcore.gui.window import TuningWindow
         from PySide6 import QtWidgets
-
-        from gui.window import TuningWindow
     except ImportError as exc:
         print(
             f"clampcore gui needs PySide6 and pyqtgraph (pip install 'clampcore[gui]'): {exc}",

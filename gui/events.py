@@ -29,10 +29,10 @@ import itertools
 from dataclasses import dataclass
 
 import numpy as np
+from clampcore.firmware_protocol.codec import STATUS_WATCHDOG
 
 from clampcore.hostloop import FLAG_ZEROED
 from clampcore.step import FAULT_BAD_V, FAULT_NONFINITE, FLAG_LIMITED
-from firmware_protocol.codec import STATUS_WATCHDOG
 
 # Episodes closer than this are one: a limit hit on every spike of a 20 Hz train is one
 # episode, not 20 markers a second (a marker a person can still read; common practice).

@@ -29,13 +29,13 @@ from typing import Any
 
 import numpy as np
 import pyqtgraph as pg
+from clampcore.gui import testpulse
+from clampcore.gui.events import EVENT_COLOURS, EventScanner, TraceEvent
+from clampcore.gui.testpulse import input_resistance_MOhm
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore.elements import CONDUCTANCE_KINDS
 from clampcore.experiment import Experiment
-from gui import testpulse
-from gui.events import EVENT_COLOURS, EventScanner, TraceEvent
-from gui.testpulse import input_resistance_MOhm
 
 # Bins per envelope when the plot's width is not known yet: about the pixel width of a
 # plot on a 1920-pixel screen. Once shown, one bin per pixel column of the plot (between

@@ -7,6 +7,6 @@ Modules: ``cells`` (model cells), ``board`` (the simulated board around the C co
 Public names: ``start_rig``, ``RigProcess`` (from ``launch``).
 """
 
-from simulated_rig.launch import RigProcess, start_rig
+from clampcore.simulated_rig.launch import RigProcess, start_rig
 
 __all__ = ["RigProcess", "start_rig"]

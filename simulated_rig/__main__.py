@@ -5,6 +5,6 @@ Public names: none (runs ``simulated_rig.cli.main``).
 
 import sys
 
-from simulated_rig.cli import main
+from clampcore.simulated_rig.cli import main
 
 sys.exit(main())

@@ -86,23 +86,8 @@ from pathlib import Path
 from typing import Any, NamedTuple
 
 import numpy as np
-from numba import config as numba_config
-
-from clampcore.calibration import (
-    DEFAULT_BOARD_ADC,
-    DEFAULT_BOARD_DAC,
-    conversion_array,
-    counts_to_pA,
-    mV_to_counts,
-)
-from clampcore.experiment import Experiment, load_experiment
-from clampcore.jit import kernel
-from clampcore.links import LINKS
-from clampcore.realtime import fifo_scheduling, fine_timer_slack
-from clampcore.rng import seed_state, uniform
-from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_ns, sleep_until_ns
-from firmware_protocol import codec, lawmsg
-from firmware_protocol.codec import (
+from clampcore.firmware_protocol import codec, lawmsg
+from clampcore.firmware_protocol.codec import (
     MAX_WIRE,
     MIN_PAYLOAD,
     MSG_COMMAND,
@@ -117,7 +102,7 @@ from firmware_protocol.codec import (
     STATUS_WATCHDOG,
     cobs_decode,
 )
-from simulated_rig.ccore import (
+from clampcore.simulated_rig.ccore import (
     N_PEEK,
     P_APPLIED,
     P_BAD_FRAMES,
@@ -141,13 +126,13 @@ from simulated_rig.ccore import (
     core_watchdog,
     new_core,
 )
-from simulated_rig.cells import (
+from clampcore.simulated_rig.cells import (
     cell_advance,
     cell_measure_mV,
     cell_v_true_mV,
     make_cell,
 )
-from simulated_rig.groundtruth import (
+from clampcore.simulated_rig.groundtruth import (
     LOG_BEHIND,
     LOG_DTYPE,
     LOG_FAULT_OUTPUT,
@@ -158,7 +143,22 @@ from simulated_rig.groundtruth import (
     NO_COMMAND,
     LogWriter,
 )
-from simulated_rig.launch import RigProcess, start_rig  # noqa: F401 (re-exported)
+from clampcore.simulated_rig.launch import RigProcess, start_rig  # noqa: F401 (re-exported)
+from numba import config as numba_config
+
+from clampcore.calibration import (
+    DEFAULT_BOARD_ADC,
+    DEFAULT_BOARD_DAC,
+    conversion_array,
+    counts_to_pA,
+    mV_to_counts,
+)
+from clampcore.experiment import Experiment, load_experiment
+from clampcore.jit import kernel
+from clampcore.links import LINKS
+from clampcore.realtime import fifo_scheduling, fine_timer_slack
+from clampcore.rng import seed_state, uniform
+from clampcore.sysio import fd_read, fd_wait_readable, fd_write, monotonic_ns, sleep_until_ns
 
 # ---------------------------------------------------------------------------
 # What the rig tells the host in HELLO.

@@ -27,20 +27,20 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
-from llvmlite import binding as llvm
-from numba import config as numba_config
-from numba import types
-
-from clampcore.jit import kernel
-from firmware_protocol.cbinding import board_info, status_of
-from firmware_protocol.cboard import (
+from clampcore.firmware_protocol.cbinding import board_info, status_of
+from clampcore.firmware_protocol.cboard import (
     RIG_FLAGS,
     CompilerMissingError,
     build_rig_library,
     find_c_compiler,
     rig_library_sources,
 )
-from firmware_protocol.codec import Hello, Status
+from clampcore.firmware_protocol.codec import Hello, Status
+from llvmlite import binding as llvm
+from numba import config as numba_config
+from numba import types
+
+from clampcore.jit import kernel
 
 __all__ = ["CompilerMissingError"]
 

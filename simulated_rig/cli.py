@@ -26,9 +26,7 @@ import sys
 import threading
 from typing import Any
 
-from clampcore.links import LINKS
-from clampcore.realtime import LOOP_FIFO_PRIORITY, RIG_FIFO_PRIORITY
-from simulated_rig.board import (
+from clampcore.simulated_rig.board import (
     LOCKSTEP_PATIENCE_S,
     MAX_RATE_HZ,
     WAKE_US,
@@ -37,6 +35,9 @@ from simulated_rig.board import (
     Faults,
     open_pty,
 )
+
+from clampcore.links import LINKS
+from clampcore.realtime import LOOP_FIFO_PRIORITY, RIG_FIFO_PRIORITY
 
 
 def _fraction(text: str) -> float:

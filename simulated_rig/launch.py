@@ -120,7 +120,7 @@ def start_rig(
     (``--lockstep-patience``, ``--wake-us``, ``--realtime``, ``--link``; None: its default).
     Raises ``RigStartError`` with the rig's error output if it exits or stays silent.
     """
-    cmd = [sys.executable, "-m", "simulated_rig"]
+    cmd = [sys.executable, "-m", "clampcore.simulated_rig"]
     if experiment_path is not None:
         cmd.append(os.fspath(experiment_path))
     cmd += ["--clock", clock, "--seed", str(seed)]

@@ -29,7 +29,7 @@ import pytest
 
 def missing_prerequisites() -> list[str]:
     """What the C tests need and this machine lacks, each with what to install."""
-    from firmware_protocol.cboard import find_c_compiler, sanitizers_work
+    from clampcore.firmware_protocol.cboard import find_c_compiler, sanitizers_work
 
     missing = []
     if find_c_compiler() is None:

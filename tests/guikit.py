@@ -11,9 +11,10 @@ from pathlib import Path
 
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")  # before pytest-qt makes the app
 
+from clampcore.gui.window import TuningWindow
+
 from clampcore.engine import RunOptions
 from clampcore.nwb import read_nwb_summary
-from gui.window import TuningWindow
 
 ROOT = Path(__file__).resolve().parents[1]
 RATE_HZ = 20000.0

@@ -24,6 +24,14 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from clampcore.firmware_protocol import boardlaw as bl
+from clampcore.firmware_protocol.cboard import (
+    C_SOURCE_DIR,
+    STRICT_FLAGS,
+    build_law_library,
+    find_c_compiler,
+)
+from clampcore.firmware_protocol.claw import Law, LawLibrary, LawParams, LawState
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
@@ -37,9 +45,6 @@ from clampcore.calibration import (
 from clampcore.law import LAW_MODE, block_table, board_arrays, law_scale, law_to_counts
 from clampcore.program import build_program
 from clampcore.step import LS_CELL_SPIKED, step
-from firmware_protocol import boardlaw as bl
-from firmware_protocol.cboard import C_SOURCE_DIR, STRICT_FLAGS, build_law_library, find_c_compiler
-from firmware_protocol.claw import Law, LawLibrary, LawParams, LawState
 
 ROOT = Path(__file__).resolve().parents[1]
 VECTOR_DIR = ROOT / "firmware_protocol" / "vectors"

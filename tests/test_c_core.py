@@ -18,13 +18,9 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
-from cobs import cobs
-from hypothesis import given, settings
-from hypothesis import strategies as st
-
-from firmware_protocol import codec
-from firmware_protocol.cbinding import CoreLibrary, MemoryRig, fnv1a_digest
-from firmware_protocol.cboard import (
+from clampcore.firmware_protocol import codec
+from clampcore.firmware_protocol.cbinding import CoreLibrary, MemoryRig, fnv1a_digest
+from clampcore.firmware_protocol.cboard import (
     BUILD_VARIANTS,
     C_SOURCE_DIR,
     LAW_FLAGS,
@@ -32,7 +28,10 @@ from firmware_protocol.cboard import (
     build_core_library,
     find_c_compiler,
 )
-from firmware_protocol.fuzz import reference_deframe
+from clampcore.firmware_protocol.fuzz import reference_deframe
+from cobs import cobs
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 VECTORS = json.loads((C_SOURCE_DIR.parent / "vectors" / "protocol_v1.json").read_text())
 _SETTINGS = settings(derandomize=True, deadline=None, max_examples=150)

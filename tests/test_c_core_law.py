@@ -21,6 +21,16 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from clampcore.firmware_protocol import boardlaw as bl
+from clampcore.firmware_protocol import codec, lawmsg
+from clampcore.firmware_protocol.cbinding import CoreLibrary
+from clampcore.firmware_protocol.cboard import (
+    BUILD_VARIANTS,
+    C_SOURCE_DIR,
+    build_core_library,
+)
+from clampcore.firmware_protocol.fuzz import reference_deframe
+from clampcore.simulated_rig.board import board_hello
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -28,16 +38,6 @@ from clampcore.calibration import DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, conversi
 from clampcore.experiment import load_experiment
 from clampcore.law import LAW_MODE, board_arrays, law_scale, law_to_counts
 from clampcore.program import build_program
-from firmware_protocol import boardlaw as bl
-from firmware_protocol import codec, lawmsg
-from firmware_protocol.cbinding import CoreLibrary
-from firmware_protocol.cboard import (
-    BUILD_VARIANTS,
-    C_SOURCE_DIR,
-    build_core_library,
-)
-from firmware_protocol.fuzz import reference_deframe
-from simulated_rig.board import board_hello
 
 HELLO = board_hello()  # the rig's own board: 16-bit ±10 V converters, one in, one out
 RATE_HZ = 10_000
@@ -699,9 +699,10 @@ def test_the_whole_core_reproduces_the_shared_vectors(core: CoreLibrary, case: d
 def test_the_host_runs_the_c_board_in_law_mode(tmp_path: Path) -> None:
     """Engine -> pseudo-terminal -> the C core (ports/pty_board.c, its passive cell C 100 pF,
     g_L 5 nS, E_L -70 mV): law mode, recorded, a valid NWB file (pynwb's validator)."""
+    from clampcore.firmware_protocol.cboard import build_pty_board, start_pty_board
+
     from clampcore.engine import Engine, RunOptions
     from clampcore.nwb import read_nwb_summary, validate_nwb
-    from firmware_protocol.cboard import build_pty_board, start_pty_board
 
     exp = {
         "loop": {"rate_hz": 10_000, "max_current_pA": 400.0, "mode": "law"},

@@ -18,9 +18,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
-from firmware_protocol import codec
-from firmware_protocol.cboard import (
+from clampcore.firmware_protocol import codec
+from clampcore.firmware_protocol.cboard import (
     PtyBoard,
     build_pty_board,
     start_pty_board,

@@ -19,9 +19,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from scipy.integrate import solve_ivp
-
-from simulated_rig.cells import (
+from clampcore.simulated_rig.cells import (
     CELL_HH,
     CELL_PASSIVE,
     P_AREA_CM2,
@@ -32,6 +30,7 @@ from simulated_rig.cells import (
     cell_v_true_mV,
     make_cell,
 )
+from scipy.integrate import solve_ivp
 
 DT_MS = 0.05  # 20 kHz, the loop's usual rate
 UA_PER_CM2_TO_PA_PER_CM2 = 1e6  # 1 µA = 1e6 pA

@@ -211,8 +211,9 @@ def test_demo_writes_a_valid_recording_and_a_plot(tmp_path: Path, capsys) -> Non
 
 
 def test_rig_serves_a_board_that_answers_the_handshake(tmp_path: Path) -> None:
+    from clampcore.simulated_rig.board import BOARD_IDENTITY, MAX_RATE_HZ
+
     from clampcore.board_link import BoardLink
-    from simulated_rig.board import BOARD_IDENTITY, MAX_RATE_HZ
 
     proc = subprocess.Popen(
         [sys.executable, "-m", "clampcore", "rig", str(EXAMPLES / "imposed_lif.toml")],

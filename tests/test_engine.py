@@ -14,6 +14,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from clampcore.simulated_rig import start_rig
 
 import clampcore
 from clampcore.engine import Engine, RunOptions
@@ -40,7 +41,7 @@ def _wait_for(engine: Engine, samples: int, timeout_s: float = 60.0) -> None:
 
 
 def test_a_live_change_reaches_the_cell_and_the_recording(tmp_path: Path) -> None:
-    engine = Engine(LEAK_EXPERIMENT, "sim", RunOptions(rig_clock="lockstep"))
+    engine = Engine(LEAK_EXPERIMENT, "sim", RunOptions(rig_clock="lockstep"), rig_factory=start_rig)
     engine.start(out=tmp_path / "change.nwb")
     try:
         _wait_for(engine, 2000)
@@ -69,7 +70,7 @@ def test_a_live_change_reaches_the_cell_and_the_recording(tmp_path: Path) -> Non
 
 
 def test_a_change_that_is_not_live_is_refused_before_the_mailbox(tmp_path: Path) -> None:
-    engine = Engine(LEAK_EXPERIMENT, "sim", RunOptions(rig_clock="lockstep"))
+    engine = Engine(LEAK_EXPERIMENT, "sim", RunOptions(rig_clock="lockstep"), rig_factory=start_rig)
     engine.start(out=tmp_path / "refused.nwb")
     try:
         _wait_for(engine, 100)
@@ -87,7 +88,7 @@ def test_a_change_that_is_not_live_is_refused_before_the_mailbox(tmp_path: Path)
 def test_refuses_a_rate_above_the_boards_maximum(tmp_path: Path) -> None:
     """PROTOCOL.md §4.1: HELLO.max_rate_hz is the board's highest rate; the host refuses
     more before configuring (the C board on a pty, told its maximum is 5 kHz)."""
-    from firmware_protocol.cboard import build_pty_board, start_pty_board
+    from clampcore.firmware_protocol.cboard import build_pty_board, start_pty_board
 
     binary = build_pty_board(tmp_path)
     with start_pty_board(binary, "--max-rate-hz", "5000") as board:

@@ -28,6 +28,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from clampcore.simulated_rig import start_rig
+from clampcore.simulated_rig.groundtruth import NO_COMMAND, read_log
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -43,8 +45,6 @@ from clampcore.experiment import ExperimentError, load_experiment
 from clampcore.journal import Journal, JournalError, read_journal
 from clampcore.nwb import read_nwb_summary
 from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, KINDS, SECTION_FIELDS
-from simulated_rig import start_rig
-from simulated_rig.groundtruth import NO_COMMAND, read_log
 
 ROOT = Path(__file__).resolve().parent.parent
 EXAMPLE = ROOT / "examples" / "imposed_lif.toml"
@@ -309,7 +309,7 @@ def test_disk_fills_up_mid_run(capsys, tmp_path, kind, fill):
         out = folder / "full.nwb"
         journal = folder / "full.journal"
         options = RunOptions(rig_clock="wall", rig_log=log, keep_journal=True)
-        engine = Engine(EXAMPLE, "sim", options)
+        engine = Engine(EXAMPLE, "sim", options, rig_factory=start_rig)
         engine.start(duration_s=3.0, out=out)  # 3 s fit in 32 MB: the start-up check passes
         _wait_for_rows(engine, 2000)
         flushed = read_journal(journal).n_samples  # on disk before the disk fills
@@ -366,7 +366,9 @@ def test_a_run_that_cannot_fit_is_refused(capsys, tmp_path, monkeypatch):
 
 
 def test_port_vanishes_mid_run(tmp_path):
-    engine = Engine(EXAMPLE, "sim", RunOptions(rig_clock="wall", keep_journal=True))
+    engine = Engine(
+        EXAMPLE, "sim", RunOptions(rig_clock="wall", keep_journal=True), rig_factory=start_rig
+    )
     engine.start(duration_s=None, out=tmp_path / "vanished.nwb")
     _wait_for_rows(engine, 3000)
     engine._rig.kill()  # the board disappears (USB unplugged): no log to read afterwards
@@ -534,7 +536,7 @@ def test_gui_without_a_display_says_so_and_does_not_abort(tmp_path):
 
 
 def test_display_problem_rules():
-    from gui.app import display_problem
+    from clampcore.gui.app import display_problem
 
     if sys.platform != "linux":
         pytest.skip("the check applies to Linux")
@@ -571,7 +573,7 @@ def test_status_line_has_no_nan_and_shows_the_histograms_last_bin():
 
 
 def test_timing_warning_once_past_the_threshold():
-    from clampcore.cli import TimingWatch
+    from clampcore.console import TimingWatch
 
     watch = TimingWatch(late_percent=5.0, latency_samples=8)
     assert watch.check(_stats(10000, 0, 1), 10000.0) is None  # first status: no interval yet
@@ -588,7 +590,12 @@ def test_rejected_commands_show_live(tmp_path):
     """Commands corrupted on the way to the board: it flags RX_ERROR in its samples, the
     live status counts them."""
     faults = {"corrupt_rx": 0.01}
-    engine = Engine(EXAMPLE, "sim", RunOptions(rig_clock="wall", rig_faults=faults, seed=2))
+    engine = Engine(
+        EXAMPLE,
+        "sim",
+        RunOptions(rig_clock="wall", rig_faults=faults, seed=2),
+        rig_factory=start_rig,
+    )
     engine.start(duration_s=1.0, out=tmp_path / "rx.nwb")
     assert engine.wait(120.0)
     result = engine.finish()
@@ -629,7 +636,7 @@ def test_low_disk_space_is_warned_once_while_the_run_goes_on(tmp_path, monkeypat
         return usage._replace(free=int(per_s * (3600 if len(calls) == 1 else 60)))
 
     monkeypatch.setattr(recorder.shutil, "disk_usage", fake_usage)
-    engine = Engine(EXAMPLE, "sim", RunOptions(rig_clock="wall"))
+    engine = Engine(EXAMPLE, "sim", RunOptions(rig_clock="wall"), rig_factory=start_rig)
     engine.start(duration_s=None, out=tmp_path / "low.nwb")
     _wait_for_rows(engine, 5000)
     deadline = time.monotonic() + 30

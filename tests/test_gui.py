@@ -22,6 +22,10 @@ pytest.importorskip("PySide6", reason="the window needs PySide6 (the 'gui' extra
 pytest.importorskip("pyqtgraph", reason="the window needs pyqtgraph (the 'gui' extra)")
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")  # before pytest-qt makes the app
 
+from clampcore.gui.editor import parse_value, unit_of
+from clampcore.gui.traces import PeakDecimator, SpikeTimes
+from clampcore.gui.window import ZERO_SHORTCUT, TuningWindow
+from clampcore.simulated_rig.groundtruth import LOG_FAULT_OUTPUT, NO_COMMAND, read_log
 from guikit import LEAK_EXPERIMENT, RATE_HZ, ROOT
 from guikit import make_window as _window
 from guikit import start as _start
@@ -41,10 +45,6 @@ from clampcore.shared import (
     ST_TURN_HIST,
     TURN_BIN_US,
 )
-from gui.editor import parse_value, unit_of
-from gui.traces import PeakDecimator, SpikeTimes
-from gui.window import ZERO_SHORTCUT, TuningWindow
-from simulated_rig.groundtruth import LOG_FAULT_OUTPUT, NO_COMMAND, read_log
 
 pytestmark = pytest.mark.gui
 

@@ -20,12 +20,12 @@ import pytest
 pytest.importorskip("PySide6", reason="the window needs PySide6 (the 'gui' extra)")
 pytest.importorskip("pyqtgraph", reason="the window needs pyqtgraph (the 'gui' extra)")
 
+from clampcore.firmware_protocol.codec import STATUS_WATCHDOG
+from clampcore.gui.events import EPISODE_GAP_S, EventScanner
 from guikit import LEAK_EXPERIMENT, RATE_HZ, make_window, start, stop, wait_samples, written
 
 from clampcore.hostloop import FLAG_ZEROED
 from clampcore.step import FAULT_BAD_V, FLAG_LIMITED
-from firmware_protocol.codec import STATUS_WATCHDOG
-from gui.events import EPISODE_GAP_S, EventScanner
 
 pytestmark = pytest.mark.gui
 

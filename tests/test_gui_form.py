@@ -17,12 +17,12 @@ import pytest
 pytest.importorskip("PySide6", reason="the window needs PySide6 (the 'gui' extra)")
 pytest.importorskip("pyqtgraph", reason="the window needs pyqtgraph (the 'gui' extra)")
 
+from clampcore.gui.editor import unit_label
 from guikit import ROOT, make_window
 from PySide6 import QtWidgets
 
 from clampcore.experiment import load_experiment
 from clampcore.schema import COMMON_FIELDS, ELEMENT_FIELDS, SECTION_FIELDS
-from gui.editor import unit_label
 
 pytestmark = pytest.mark.gui
 

@@ -13,11 +13,11 @@ import pytest
 pytest.importorskip("PySide6", reason="the window needs PySide6 (the 'gui' extra)")
 pytest.importorskip("pyqtgraph", reason="the window needs pyqtgraph (the 'gui' extra)")
 
+from clampcore.gui.window import TuningWindow, default_record_dir
 from guikit import LEAK_EXPERIMENT, start
 from PySide6 import QtWidgets
 
 from clampcore.engine import RunOptions
-from gui.window import TuningWindow, default_record_dir
 
 pytestmark = pytest.mark.gui
 

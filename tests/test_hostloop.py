@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from clampcore.firmware_protocol import codec
 
 from clampcore.calibration import (
     DEFAULT_BOARD_ADC,
@@ -34,7 +35,6 @@ from clampcore.shared import (
     RingLayout,
     SharedRun,
 )
-from firmware_protocol import codec
 
 EXPERIMENT = {
     "loop": {"rate_hz": 10000.0, "max_current_pA": 1000.0},

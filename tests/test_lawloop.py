@@ -15,6 +15,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from clampcore.firmware_protocol import lawmsg
+from clampcore.firmware_protocol.boardlaw import BF_FLAG_SPIKE
+from clampcore.firmware_protocol.codec import MAX_WIRE
+from clampcore.simulated_rig import start_rig
+from clampcore.simulated_rig.groundtruth import read_log
 
 import clampcore
 from clampcore import linksim
@@ -31,10 +36,6 @@ from clampcore.lawloop import LW_HI, new_law_link, process_rx_law, top_up_laws
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.program import build_program
 from clampcore.shared import CTRL_WRITTEN, ST_LATE_SPIKES, RingLayout, SharedRun
-from firmware_protocol import lawmsg
-from firmware_protocol.boardlaw import BF_FLAG_SPIKE
-from firmware_protocol.codec import MAX_WIRE
-from simulated_rig.groundtruth import read_log
 
 ROOT = Path(__file__).resolve().parent.parent
 EXAMPLE = ROOT / "examples" / "imposed_lif.toml"
@@ -75,7 +76,9 @@ def test_lockstep_law_mode_equals_the_ideal_clamp(tmp_path):
     pseudo-terminal, and the sample-time simulation of every law on time (with the Mg
     block table on the board)."""
     options = RunOptions(rig_clock="lockstep", watchdog_ms=5000)
-    rec = _run(Engine(SUBTHRESHOLD, "sim", options), 0.3, tmp_path / "law.nwb")
+    rec = _run(
+        Engine(SUBTHRESHOLD, "sim", options, rig_factory=start_rig), 0.3, tmp_path / "law.nwb"
+    )
     ideal = linksim.run(SUBTHRESHOLD, 0.3, mode="ideal")
     np.testing.assert_array_equal(rec["i_pA"], ideal.i_pA)
     # Conductances are recorded as float32 (clampcore.nwb): equal after that rounding.
@@ -92,7 +95,7 @@ def test_lockstep_law_mode_equals_the_ideal_clamp(tmp_path):
 def test_lockstep_law_mode_with_threshold_reset_and_a_delayed_cell_synapse(tmp_path):
     exp = load_experiment(EXAMPLE)
     options = RunOptions(rig_clock="lockstep", watchdog_ms=5000, mode="law")
-    rec = _run(Engine(EXAMPLE, "sim", options), 0.5, tmp_path / "lif.nwb")
+    rec = _run(Engine(EXAMPLE, "sim", options, rig_factory=start_rig), 0.5, tmp_path / "lif.nwb")
     ideal = linksim.run(EXAMPLE, 0.5, mode="ideal")
     np.testing.assert_array_equal(rec["i_pA"], ideal.i_pA)
     spikes = np.flatnonzero(rec["columns"]["spike/cell"])
@@ -111,7 +114,12 @@ def test_a_stalled_host_gets_zero_current_after_lead_and_lifetime(tmp_path):
     exp = copy.deepcopy(SUBTHRESHOLD)
     exp["loop"]["lead_ms"] = 5.0
     log = tmp_path / "rig.log"
-    engine = Engine(exp, "sim", RunOptions(rig_clock="wall", rig_log=log, watchdog_ms=10_000))
+    engine = Engine(
+        exp,
+        "sim",
+        RunOptions(rig_clock="wall", rig_log=log, watchdog_ms=10_000),
+        rig_factory=start_rig,
+    )
     engine.start(duration_s=None, out=tmp_path / "stall.nwb")
     deadline = time.monotonic() + 60
     while engine.status().get("samples", 0) < 3000:
@@ -142,7 +150,9 @@ def test_a_stalled_host_gets_zero_current_after_lead_and_lifetime(tmp_path):
 
 def test_zero_request_acts_at_once_and_teardown_leaves_zero(tmp_path):
     log = tmp_path / "rig.log"
-    engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall", rig_log=log))
+    engine = Engine(
+        SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall", rig_log=log), rig_factory=start_rig
+    )
     engine.start(duration_s=None, out=tmp_path / "zero.nwb")
     deadline = time.monotonic() + 60
     while engine.status().get("samples", 0) < 2000:
@@ -171,7 +181,7 @@ def test_zero_request_acts_at_once_and_teardown_leaves_zero(tmp_path):
 def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
     """A version-1 board ignores BOARD_RULES (PROTOCOL.md §5.5): the host falls back to
     current mode and says so. The C core built without law mode (CCB_LAW_QUEUE=0) is one."""
-    from firmware_protocol.cboard import BUILD_VARIANTS, build_pty_board, start_pty_board
+    from clampcore.firmware_protocol.cboard import BUILD_VARIANTS, build_pty_board, start_pty_board
 
     binary = build_pty_board(tmp_path, BUILD_VARIANTS["no-law"])
     exp = copy.deepcopy(SUBTHRESHOLD)
@@ -191,7 +201,7 @@ def test_live_changes_in_law_mode_reach_the_law_or_are_refused(tmp_path):
     """A conductance change is part of the law: applied from the sample the host is making
     laws for, and logged with it. A rule the board applies itself (the current limit) cannot
     change behind the board's back, so it is refused with the reason."""
-    engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall"))
+    engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall"), rig_factory=start_rig)
     engine.start(duration_s=None, out=tmp_path / "live.nwb")
     deadline = time.monotonic() + 60
     while engine.status().get("samples", 0) < 2000:
@@ -297,7 +307,7 @@ def test_lockstep_law_mode_delivers_late_spikes_at_the_next_law_and_counts_them(
     and says so in its summary and in the recording's metadata."""
     lead = 50
     options = RunOptions(rig_clock="lockstep", watchdog_ms=5000, mode="law", lead_samples=lead)
-    engine = Engine(EXAMPLE, "sim", options)
+    engine = Engine(EXAMPLE, "sim", options, rig_factory=start_rig)
     engine.start(duration_s=0.5, out=tmp_path / "late.nwb")
     assert engine.wait(120.0), "the run did not end"
     result = engine.finish()

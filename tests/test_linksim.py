@@ -9,6 +9,8 @@ import copy
 
 import numpy as np
 import pytest
+from clampcore.firmware_protocol import boardlaw as bl
+from clampcore.simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
 
 from clampcore import linksim
 from clampcore.calibration import (
@@ -22,8 +24,6 @@ from clampcore.law import LAW_MODE, board_arrays, law_scale, law_to_counts
 from clampcore.links import LINKS, schedule
 from clampcore.offline import simulate
 from clampcore.program import build_program
-from firmware_protocol import boardlaw as bl
-from simulated_rig.cells import cell_advance, cell_measure_mV, make_cell
 
 RATE_HZ = 20000
 CELL = {"model": "passive", "capacitance_pF": 100.0, "leak_nS": 5.0, "rest_mV": -70.0, "seed": 1}

@@ -21,6 +21,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from clampcore.simulated_rig import start_rig
+from clampcore.simulated_rig.groundtruth import NO_COMMAND, read_log
 
 import clampcore
 from clampcore.board_link import BoardLink
@@ -35,8 +37,6 @@ from clampcore.engine import Engine, RunOptions
 from clampcore.experiment import load_experiment
 from clampcore.nwb import journal_to_nwb, read_nwb_summary, validate_nwb
 from clampcore.realtime import LOOP_FIFO_PRIORITY, fifo_scheduling
-from simulated_rig import start_rig
-from simulated_rig.groundtruth import NO_COMMAND, read_log
 
 ROOT = Path(__file__).resolve().parent.parent
 EXAMPLES = ROOT / "examples"
@@ -94,7 +94,7 @@ def test_lockstep_run_equals_offline_simulation(tmp_path, in_thread):
     """Same experiment and seed: the serial path equals clampcore.simulate sample for sample."""
     exp = EXAMPLES / "slice_background.toml"  # HH cell, noise, Poisson synapses: all seeded
     options = RunOptions(rig_clock="lockstep", seed=3, realtime_priority=LOOP_FIFO_PRIORITY)
-    result = _run(Engine(exp, "sim", options), 0.5, tmp_path / "run.nwb")
+    result = _run(Engine(exp, "sim", options, rig_factory=start_rig), 0.5, tmp_path / "run.nwb")
     assert result.error is None, result.error
     rec = _valid(result.nwb_path)
     offline = clampcore.simulate(exp, 0.5, seed=3)
@@ -119,7 +119,9 @@ def test_passive_physics_through_the_serial_path(tmp_path):
     """RC step response with a virtual leak: V(t) = E + R I (1 - exp(-t/tau)),
     R = 1/(g_L + g_v), tau = C/(g_L + g_v) (closed form of the RC membrane)."""
     result = _run(
-        Engine(PASSIVE_STEP, "sim", RunOptions(rig_clock="lockstep")), 0.12, tmp_path / "rc.nwb"
+        Engine(PASSIVE_STEP, "sim", RunOptions(rig_clock="lockstep"), rig_factory=start_rig),
+        0.12,
+        tmp_path / "rc.nwb",
     )
     assert result.error is None, result.error
     rec = _valid(result.nwb_path)
@@ -139,14 +141,14 @@ def test_passive_physics_through_the_serial_path(tmp_path):
 
 @pytest.fixture(scope="module")
 def c_board_binary(tmp_path_factory):
-    from firmware_protocol.cboard import build_pty_board
+    from clampcore.firmware_protocol.cboard import build_pty_board
 
     return build_pty_board(tmp_path_factory.mktemp("cboard"))
 
 
 def test_host_against_the_c_board_core(tmp_path, c_board_binary):
     """Handshake, samples and commands with the portable C core on a pty, then its watchdog."""
-    from firmware_protocol.cboard import start_pty_board
+    from clampcore.firmware_protocol.cboard import start_pty_board
 
     # The C board's own passive cell: C 100 pF, g_L 5 nS, E_L -70 mV; the same amplifier scaling.
     exp = PASSIVE_STEP.replace(
@@ -204,7 +206,11 @@ def test_the_output_is_0_pA_by_the_hosts_command_before_stop(tmp_path):
     for clock in ("lockstep", "wall"):
         log = tmp_path / f"{clock}.log"
         options = RunOptions(rig_clock=clock, rig_log=log, watchdog_ms=500)
-        result = _run(Engine(CONSTANT_100_PA, "sim", options), 0.05, tmp_path / f"{clock}.nwb")
+        result = _run(
+            Engine(CONSTANT_100_PA, "sim", options, rig_factory=start_rig),
+            0.05,
+            tmp_path / f"{clock}.nwb",
+        )
         assert result.error is None, result.error
         truth = read_log(log)
         stop = truth.events_of("stop")[-1]
@@ -238,7 +244,9 @@ def _zero_counts(experiment) -> int:
 def test_host_killed_midrun_the_rig_goes_to_zero_within_the_watchdog(tmp_path):
     exp = EXAMPLES / "imposed_lif.toml"
     log = tmp_path / "rig.log"
-    engine = Engine(exp, "sim", RunOptions(rig_clock="wall", rig_log=log, watchdog_ms=20))
+    engine = Engine(
+        exp, "sim", RunOptions(rig_clock="wall", rig_log=log, watchdog_ms=20), rig_factory=start_rig
+    )
     engine.start(duration_s=None, out=tmp_path / "killed.nwb")
     _wait_for_samples(engine, 10000)
     os.kill(engine.loop_pid, signal.SIGKILL)
@@ -268,7 +276,10 @@ def test_corrupted_and_dropped_frames_are_counted_and_never_applied(tmp_path):
     log = tmp_path / "rig.log"
     faults = {"corrupt_rx": 0.01, "drop_rx": 0.01, "corrupt_tx": 0.01, "drop_tx": 0.01}
     engine = Engine(
-        exp, "sim", RunOptions(rig_clock="wall", rig_log=log, rig_faults=faults, seed=1)
+        exp,
+        "sim",
+        RunOptions(rig_clock="wall", rig_log=log, rig_faults=faults, seed=1),
+        rig_factory=start_rig,
     )
     result = _run(engine, 1.0, tmp_path / "faulty.nwb")
     assert result.error is None, result.error  # the run goes on
@@ -299,7 +310,7 @@ def test_corrupted_and_dropped_frames_are_counted_and_never_applied(tmp_path):
 
 def test_vanished_port_stops_cleanly_and_keeps_the_recording(tmp_path):
     exp = EXAMPLES / "imposed_lif.toml"
-    engine = Engine(exp, "sim", RunOptions(rig_clock="wall"))
+    engine = Engine(exp, "sim", RunOptions(rig_clock="wall"), rig_factory=start_rig)
     engine.start(duration_s=None, out=tmp_path / "vanished.nwb")
     _wait_for_samples(engine, 5000)
     engine._rig.kill()  # the board disappears (USB unplugged)
@@ -360,7 +371,11 @@ def test_refuses_to_start_without_calibration_on_a_real_port(tmp_path):
 def test_refuses_a_limit_the_board_cannot_represent(tmp_path):
     # 400 pA/V over +-10 V reaches +-4000 pA; ask for 5000.
     exp = PASSIVE_STEP.replace("max_current_pA = 400", "max_current_pA = 5000")
-    result = _run(Engine(exp, "sim", RunOptions(rig_clock="lockstep")), 1.0, tmp_path / "lim.nwb")
+    result = _run(
+        Engine(exp, "sim", RunOptions(rig_clock="lockstep"), rig_factory=start_rig),
+        1.0,
+        tmp_path / "lim.nwb",
+    )
     assert result.error and "cannot represent" in result.error
     assert result.samples == 0
 

@@ -18,12 +18,11 @@ from pathlib import Path
 import crcmod.predefined
 import numpy as np
 import pytest
+from clampcore.firmware_protocol import codec
+from clampcore.firmware_protocol.fuzz import reference_deframe
 from cobs import cobs
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
-
-from firmware_protocol import codec
-from firmware_protocol.fuzz import reference_deframe
 
 ROOT = Path(__file__).resolve().parents[1]
 _SETTINGS = settings(derandomize=True, deadline=None, max_examples=150)
@@ -386,7 +385,7 @@ def test_the_codec_runs_without_the_jit() -> None:
     script = r"""
 import json, sys
 import numpy as np
-from firmware_protocol import codec
+from clampcore.firmware_protocol import codec
 v = json.load(open(sys.argv[1]))
 assert codec.crc16(np.frombuffer(b"123456789", np.uint8), 0, 9) == 0x29B1
 for m in v["messages"]:

@@ -15,10 +15,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
-from firmware_protocol import fuzz
-from firmware_protocol.cbinding import fnv1a_digest
-from firmware_protocol.cboard import build_fuzz_binary
+from clampcore.firmware_protocol import fuzz
+from clampcore.firmware_protocol.cbinding import fnv1a_digest
+from clampcore.firmware_protocol.cboard import build_fuzz_binary
 
 N_FRAMES = 1_000_000
 SEED = 20261201  # fixed

@@ -13,9 +13,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from clampcore.firmware_protocol import codec
 from cobs import cobs
-
-from firmware_protocol import codec
 
 VECTOR_DIR = Path(codec.__file__).resolve().parent / "vectors"
 VECTORS = json.loads((VECTOR_DIR / "protocol_v1.json").read_text())

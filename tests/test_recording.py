@@ -19,13 +19,14 @@ from pathlib import Path
 import h5py
 import numpy as np
 import pytest
+from clampcore.simulated_rig import start_rig
+from clampcore.simulated_rig.groundtruth import NO_COMMAND, read_log
 
 import clampcore
 from clampcore.cli import main
 from clampcore.engine import Engine, RunOptions
 from clampcore.journal import read_journal
 from clampcore.nwb import convert_journal, read_nwb_summary, validate_nwb
-from simulated_rig.groundtruth import NO_COMMAND, read_log
 
 ROOT = Path(__file__).resolve().parent.parent
 EXAMPLES = ROOT / "examples"
@@ -49,7 +50,7 @@ def lockstep_run(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("lockstep")
     log = tmp / "rig.log"
     options = RunOptions(rig_clock="lockstep", seed=2, rig_log=log, keep_journal=True)
-    engine = Engine(EXAMPLES / "slice_background.toml", "sim", options)
+    engine = Engine(EXAMPLES / "slice_background.toml", "sim", options, rig_factory=start_rig)
     engine.start(duration_s=0.3, out=tmp / "run.nwb")
     assert engine.wait(120), "the run did not end"
     result = engine.finish()
@@ -138,7 +139,12 @@ def test_run_simulate_recover_pass_validator_and_inspector(lockstep_run, tmp_pat
 
 def test_one_copy_journal_removed_only_after_a_check(tmp_path, monkeypatch):
     result, _ = None, None
-    engine = Engine(EXAMPLES / "imposed_lif.toml", "sim", RunOptions(rig_clock="lockstep"))
+    engine = Engine(
+        EXAMPLES / "imposed_lif.toml",
+        "sim",
+        RunOptions(rig_clock="lockstep"),
+        rig_factory=start_rig,
+    )
     engine.start(duration_s=0.05, out=tmp_path / "a.nwb")
     engine.wait(120)
     result = engine.finish()
@@ -147,7 +153,12 @@ def test_one_copy_journal_removed_only_after_a_check(tmp_path, monkeypatch):
     import clampcore.nwb as nwb
 
     monkeypatch.setattr(nwb, "check_against_journal", lambda path, data: ["forced mismatch"])
-    engine = Engine(EXAMPLES / "imposed_lif.toml", "sim", RunOptions(rig_clock="lockstep"))
+    engine = Engine(
+        EXAMPLES / "imposed_lif.toml",
+        "sim",
+        RunOptions(rig_clock="lockstep"),
+        rig_factory=start_rig,
+    )
     engine.start(duration_s=0.05, out=tmp_path / "b.nwb")
     engine.wait(120)
     result = engine.finish()  # no exception: the run's result says it (issue #11)

@@ -33,11 +33,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from cobs import cobs
-
-from firmware_protocol import codec
-from simulated_rig import start_rig
-from simulated_rig.groundtruth import (
+from clampcore.firmware_protocol import codec
+from clampcore.simulated_rig import start_rig
+from clampcore.simulated_rig.groundtruth import (
     LOG_BEHIND,
     LOG_DTYPE,
     LOG_FAULT_OUTPUT,
@@ -47,6 +45,7 @@ from simulated_rig.groundtruth import (
     NO_COMMAND,
     read_log,
 )
+from cobs import cobs
 
 ROOT = Path(__file__).resolve().parent.parent
 
@@ -355,7 +354,7 @@ def test_watchdog_on_the_wall_clock_trips_reports_and_recovers(
 CLIENT_SCRIPT = textwrap.dedent(
     """
     import os, sys, tty
-    from firmware_protocol import codec
+    from clampcore.firmware_protocol import codec
     codec.decode_message(codec.encode_message(codec.Command(0, (1,)), 0))  # load the codec now
     fd = os.open(sys.argv[1], os.O_RDWR | os.O_NOCTTY)
     tty.setraw(fd)
@@ -609,7 +608,7 @@ def test_stdin_closing_stops_the_rig(exp_path: Path) -> None:
 def test_bad_options_give_a_clear_error(tmp_path: Path) -> None:
     def run(*args: str) -> subprocess.CompletedProcess[str]:
         return subprocess.run(
-            [sys.executable, "-m", "simulated_rig", *args],
+            [sys.executable, "-m", "clampcore.simulated_rig", *args],
             capture_output=True,
             text=True,
             cwd=ROOT,
@@ -639,7 +638,7 @@ def test_without_a_c_compiler_the_rig_says_so_in_one_line(tmp_path: Path) -> Non
     env = {k: v for k, v in os.environ.items() if k != "CC"}
     env["PATH"] = str(tmp_path)  # an empty folder: no cc, gcc or clang to find
     result = subprocess.run(
-        [sys.executable, "-m", "simulated_rig"],
+        [sys.executable, "-m", "clampcore.simulated_rig"],
         capture_output=True,
         text=True,
         cwd=ROOT,
@@ -710,8 +709,9 @@ def test_the_serial_bridge_on_the_wall_clock_follows_the_sample_time_model() -> 
     (``clampcore.links._bridge_up``: full 62-byte packets, the 16 ms latency timer, 921,600
     baud, 1 ms USB frames), for batches handed over at 20 kHz and, slower, at 500 Hz.
     Times are given to the kernels, not read from a clock: behaviour, not timing."""
+    from clampcore.simulated_rig.board import Q_TAIL, _link_flush, _link_put, new_link_shape
+
     from clampcore.links import LINKS, _bridge_up
-    from simulated_rig.board import Q_TAIL, _link_flush, _link_put, new_link_shape
 
     link = LINKS["bridge"]
     t0_ns = 5_000_000_000  # any board time; the models count from the first batch

@@ -8,6 +8,7 @@ import math
 
 import numpy as np
 import pytest
+from clampcore.simulated_rig import start_rig
 
 import clampcore
 from clampcore.cli import main
@@ -129,7 +130,12 @@ def test_bound_holds_on_the_simulated_rig_in_lockstep(tmp_path):
     devs = {}
     for factor in (0.9, 1.1):
         g = factor * g_max
-        engine = Engine(_feedback_experiment(g, 1), "sim", RunOptions(rig_clock="lockstep"))
+        engine = Engine(
+            _feedback_experiment(g, 1),
+            "sim",
+            RunOptions(rig_clock="lockstep"),
+            rig_factory=start_rig,
+        )
         engine.start(duration_s=0.05, out=tmp_path / f"f{factor}.nwb")
         assert engine.wait(120.0)
         result = engine.finish()

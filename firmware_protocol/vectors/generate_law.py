@@ -33,6 +33,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from clampcore.firmware_protocol import boardlaw as bl
 
 from clampcore.calibration import (
     DEFAULT_BOARD_ADC,
@@ -41,7 +42,6 @@ from clampcore.calibration import (
 )
 from clampcore.law import LAW_MODE, board_arrays, law_scale, law_to_counts
 from clampcore.program import build_program
-from firmware_protocol import boardlaw as bl
 
 OUT = Path(__file__).resolve().parent / "law_v2.json"
 
