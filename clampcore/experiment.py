@@ -229,7 +229,9 @@ def _coerce(f: Any, value: Any) -> Any:
 
 def _where(el: Any, index: int) -> str:
     name = el.get("name") if isinstance(el, dict) else None
-    return f"element '{name}'" if isinstance(name, str) else f"element #{index + 1}"
+    # A blank name identifies nothing: the element's place in the file does.
+    named = isinstance(name, str) and name.strip()
+    return f"element '{name}'" if named else f"element #{index + 1}"
 
 
 def validate_element(el: Any, index: int, dt_ms: float) -> dict[str, Any]:

@@ -9,7 +9,7 @@ Compiled, per sample (``clampcore.jit.kernel``; no allocation, runnable under
 * ``decode_laws(frame, n, fields) -> int``: a LAWS payload's header into ``fields``
   (``LAWS_SEEN``, ``LAWS_FIRST``, ``LAWS_COUNT``, ``LAWS_BLOCKED``); returns count or
   an ``ERR_*``; ``law_word(frame, i, j)`` is word j of law i as float32 bits.
-* ``encode_samples(seq, first, clock_us, status, count, adc, dac, flags, out) -> int``
+* ``encode_samples(seq, first, clock_us, status, adc, dac, flags, out) -> int``
   and ``decode_samples(frame, n, fields, adc, dac, flags) -> int`` (``SAMPLES_*``).
 
 Plain Python for the rare ones: ``frame_bytes(msg_type, seq, body)`` (any frame),
@@ -130,13 +130,14 @@ def encode_samples(
     first: int,
     clock_us: int,
     status: int,
-    count: int,
     adc: np.ndarray,
     dac: np.ndarray,
     flags: np.ndarray,
     out: np.ndarray,
 ) -> int:
-    """One SAMPLES frame (board side) of ``count`` samples from ``first``; wire length."""
+    """One SAMPLES frame (board side) of the samples in ``adc``/``dac``/``flags`` (as many
+    as ``adc`` holds) from ``first``; wire length."""
+    count = adc.shape[0]
     payload_len = _HEADER + _SAMPLES_FIXED + 1 + _PER_SAMPLE * count + 2
     if payload_len > MAX_PAYLOAD or out.shape[0] < payload_len + 2 or count < 1:
         return ERR_BAD_ARGUMENT

@@ -277,8 +277,25 @@ def test_installed_names_all_live_under_clampcore():
     wanted = set()
     for folder, name in FOLDERS.items():
         for d in [ROOT / folder, *sorted((ROOT / folder).rglob("*"))]:
-            if d.is_dir() and d.name != "__pycache__" and any(
-                f.suffix in {".py", ".c", ".h", ".json", ".md"} for f in d.iterdir()
+            if (
+                d.is_dir()
+                and d.name != "__pycache__"
+                and any(f.suffix in {".py", ".c", ".h", ".json", ".md"} for f in d.iterdir())
             ):
                 wanted.add(".".join([name, *d.relative_to(ROOT / folder).parts]))
     assert set(packages) == wanted
+
+
+def test_compiled_functions_take_at_most_eight_parameters():
+    """Arrays travel in named bundles (NamedTuples named after their owner), not as long
+    positional lists (DEVELOPERS.md, "Rules of the house")."""
+    compiled = {"kernel", "njit", "jit"}
+    long = []
+    for module, path in MODULES.items():
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if not isinstance(node, ast.FunctionDef):
+                continue
+            names = {ast.unparse(d).split("(")[0].rpartition(".")[2] for d in node.decorator_list}
+            if names & compiled and len(node.args.args) > 8:
+                long.append(f"{module}.{node.name}: {len(node.args.args)} parameters")
+    assert not long, long

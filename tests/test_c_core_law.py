@@ -234,7 +234,7 @@ class ReferenceBoard:
         self.flags = 0
         one = np.array([adc, self.dac, out_flags], dtype=np.int64)
         tx = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
-        n = lawmsg.encode_samples(self.tx_seq, k, now_us, status, 1, one[0:1], one[1:2],
+        n = lawmsg.encode_samples(self.tx_seq, k, now_us, status, one[0:1], one[1:2],
                                   one[2:3], tx)  # fmt: skip
         self.tx_seq = (self.tx_seq + 1) & 0xFFFF
         self.out += tx[:n].tobytes()
@@ -643,7 +643,7 @@ def test_samples_encoder_equals_the_hosts(core: CoreLibrary, count: int) -> None
     adc, dac = (rng.integers(0, 65536, count) for _ in range(2))
     flags = rng.integers(0, 256, count)
     out = np.zeros(codec.MAX_WIRE, dtype=np.uint8)
-    n = lawmsg.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, count, adc, dac, flags, out)
+    n = lawmsg.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, adc, dac, flags, out)
     c = core.encode_samples(0xBEEF, 2**32 - 2, 123456789, 0x0F, adc, dac, flags)
     assert c == out[:n].tobytes()
 
