@@ -139,6 +139,8 @@ class BoardLink:
                     continue
                 try:
                     yield codec.decode_message(wire)
+                except codec.VersionError as exc:  # a HELLO of another version (§9)
+                    raise BoardError(self.port, "unsupported board", str(exc)) from None
                 except codec.FrameError:
                     continue  # dropped, like the loop's decoder does
             try:
@@ -169,6 +171,7 @@ class BoardLink:
         )
 
     def handshake(self) -> codec.Hello:
+        """Ask for HELLO; refuses (``BoardError``) a board of another protocol version."""
         self.serial.reset_input_buffer()
         self.hello = self.request(codec.GetHello(), codec.Hello, tries=4)
         return self.hello

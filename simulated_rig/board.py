@@ -1091,6 +1091,10 @@ def board_hello(max_rate_hz: int = MAX_RATE_HZ) -> codec.Hello:
         max_rate_hz=max_rate_hz,
         watchdog_min_us=WATCHDOG_MIN_US,
         watchdog_max_us=WATCHDOG_MAX_US,
+        capabilities=codec.CAP_LAW,
+        law_queue=LAW_QUEUE,
+        mg_groups=1,  # one Mg block table (PROTOCOL.md §10.2)
+        max_samples=1,  # one sample per SAMPLES frame
     )
 
 

@@ -10,6 +10,7 @@ PROTOCOL.md, quoted by section beside each check.
 from __future__ import annotations
 
 import binascii
+import dataclasses
 import json
 import shutil
 import subprocess
@@ -34,7 +35,7 @@ from firmware_protocol.cboard import (
 )
 from firmware_protocol.fuzz import reference_deframe
 
-VECTORS = json.loads((C_SOURCE_DIR.parent / "vectors" / "protocol_v1.json").read_text())
+VECTORS = json.loads((C_SOURCE_DIR.parent / "vectors" / "protocol_v2.json").read_text())
 _SETTINGS = settings(derandomize=True, deadline=None, max_examples=150)
 _REASONS = {
     "cobs": codec.FRAME_ERR_COBS,
@@ -247,7 +248,7 @@ def test_parsers_refuse_what_is_not_theirs(core: CoreLibrary) -> None:
     cmd = codec.decode_wire(codec.encode_message(codec.Command(1, (2,)), 3))
     with pytest.raises(codec.FrameError, match="status 4"):  # CCB_E_TYPE
         core.parse_configure(cmd)
-    cfg = codec.decode_wire(codec.encode_message(codec.Configure(1, 1, 1, (1,), version=2), 3))
+    cfg = codec.decode_wire(codec.encode_message(codec.Configure(1, 1, 1, (1,), version=1), 3))
     with pytest.raises(codec.FrameError, match="status 6"):  # CCB_E_VERSION
         core.parse_configure(cfg)
     with pytest.raises(codec.FrameError, match="status 5"):  # CCB_E_LENGTH
@@ -313,8 +314,30 @@ def test_hello_handshake(core: CoreLibrary) -> None:
     assert rig.state() == codec.STATE_UNCONFIGURED and rig.rate_hz() == 0
     Host(rig).send(codec.GetHello())
     frames = _frames(rig)
-    assert frames == [(0, BOARD)]  # the board's own frame counter starts at 0
+    # The board's own frame counter starts at 0; HELLO states what the build can do
+    # (PROTOCOL.md §4.1): law mode, the default queue of ccb.h, one Mg group, one sample
+    # per SAMPLES frame.
+    build = {"capabilities": codec.CAP_LAW, "law_queue": 1024, "mg_groups": 1, "max_samples": 1}
+    assert frames == [(0, dataclasses.replace(BOARD, **build))]
     assert rig.dac_writes() == 0  # nothing is written before CONFIGURE (§5)
+
+
+@pytest.mark.parametrize(
+    ("variant", "build"),
+    [
+        ("no-law", {"capabilities": 0, "law_queue": 0, "mg_groups": 0, "max_samples": 0}),
+        ("small-law", {"capabilities": codec.CAP_LAW, "law_queue": 8, "mg_groups": 1}),
+    ],
+)
+def test_hello_states_what_each_build_can_do(tmp_path: Path, variant: str, build: dict) -> None:
+    """PROTOCOL.md §4.1: a build without law mode is still a version-2 board, with the law
+    capability off and no queue; a small law build states its own queue depth."""
+    small = CoreLibrary(build_core_library(tmp_path, BUILD_VARIANTS[variant]))
+    rig = small.rig(BOARD)
+    Host(rig).send(codec.GetHello())
+    ((_, hello),) = _frames(rig)
+    assert hello.version == 2 and hello.evaluates_laws == bool(build["capabilities"])
+    assert {k: getattr(hello, k) for k in build} == build
 
 
 @pytest.mark.parametrize(

@@ -25,6 +25,9 @@
 #if CCB_LAW_QUEUE > 0 && CCB_BLOCK_POINTS < 2
 #error "CCB_BLOCK_POINTS must be at least 2"
 #endif
+#if CCB_SAMPLES_PER_FRAME < 1 || CCB_SAMPLES_PAYLOAD(CCB_SAMPLES_PER_FRAME) > CCB_MAX_PAYLOAD
+#error "CCB_SAMPLES_PER_FRAME must lie between 1 and 47 (a SAMPLES payload of <= 254 bytes)"
+#endif
 /* Law bodies carry IEEE-754 binary32 numbers; the board's float must be one. */
 typedef char ccb_float_is_32_bits[sizeof(float) == 4u ? 1 : -1];
 
@@ -333,6 +336,10 @@ ccb_result ccb_encode_hello(uint16_t seq, const ccb_board_info *info, uint8_t *o
     put_u32(&p[37], info->max_rate_hz);
     put_u32(&p[41], info->watchdog_min_us);
     put_u32(&p[45], info->watchdog_max_us);
+    p[49] = info->capabilities;
+    put_u32(&p[50], info->law_queue);
+    p[54] = info->mg_groups;
+    p[55] = info->max_samples;
     return result(finish_frame(out, CCB_HELLO_PAYLOAD), CCB_OK);
 }
 
@@ -502,6 +509,18 @@ uint8_t ccb_init(ccb_board *b, const ccb_board_info *info, const ccb_port *port)
     }
     memset(b, 0, sizeof(*b));
     b->info = *info;
+    /* HELLO says what this build can do (§4.1), whatever the port wrote there. */
+#if CCB_LAW_QUEUE > 0
+    b->info.capabilities = CCB_CAP_LAW;
+    b->info.law_queue = CCB_LAW_QUEUE;
+    b->info.mg_groups = 1u; /* one blocked group: one table, one [Mg] (§10.2) */
+    b->info.max_samples = CCB_SAMPLES_PER_FRAME;
+#else
+    b->info.capabilities = 0u;
+    b->info.law_queue = 0u;
+    b->info.mg_groups = 0u;
+    b->info.max_samples = 0u;
+#endif
     b->port = *port;
     ccb_deframer_init(&b->rx);
     b->state = CCB_STATE_UNCONFIGURED;
