@@ -23,9 +23,10 @@ from clampcore.calibration import (
     conversion_array,
     pA_to_counts,
 )
-from clampcore.engine import Engine, EngineError, RunOptions, law_lead_samples
+from clampcore.engine import Engine, EngineError, RunOptions
 from clampcore.experiment import load_experiment
 from clampcore.nwb import read_nwb_summary, validate_nwb
+from clampcore.preflight import law_lead_samples
 from clampcore.program import build_program
 from clampcore.shared import CTRL_WRITTEN
 from simulated_rig.groundtruth import read_log
