@@ -331,17 +331,17 @@ def _law_setup(link: BoardLink, program: Program, plan: Plan, loop_args: tuple) 
     link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else [])
     lead = plan.lead_samples
     neurons = _neuron_rows(program)
-    arrays = new_law_link(lead, table.size > 0, len(program.names), neurons.size)
+    arrays = new_law_link(lead, table.size > 0, len(program.names), neurons.size, bf, bi)
     args = (conv, law_scale(conv), *loop_args[1:])
     a = arrays
     # Compile (or load) before the board starts, then send the first laws (samples 0..lead-1).
     # args: conv, scale, kind .. neuron_rows, ctrl, ring, mailbox, applied, stats
     length = top_up_laws(a.lw, a.laws, a.lawbits, a.ghist, a.tx, 0, *args[1:13], *args[14:])
-    process_rx_law(0, *a.arrays()[:14], *args)
+    process_rx_law(0, *a.arrays()[:14], *args, *a.rules())
     link.serial.write(a.tx[:length].tobytes())
     stopped = args[12].copy()
     stopped[CTRL_STOP] = 1
-    law_fd_loop(-1, 0.0, 0, 0, *a.arrays(), *args[:12], stopped, *args[13:])
+    law_fd_loop(-1, 0.0, 0, 0, *a.arrays(), *args[:12], stopped, *args[13:], *a.rules())
     return _LawRun(arrays, args)
 
 
@@ -353,9 +353,9 @@ def _law_loop(
     data = link.take_unread()
     if data:
         a.rx[: len(data)] = np.frombuffer(data, dtype=np.uint8)
-        length = process_rx_law(len(data), *a.arrays()[:14], *law.args)
+        length = process_rx_law(len(data), *a.arrays()[:14], *law.args, *a.rules())
         link.serial.write(a.tx[:length].tobytes())
-    return law_fd_loop(fd, spin_us, silent_ms, max_samples, *a.arrays(), *law.args)
+    return law_fd_loop(fd, spin_us, silent_ms, max_samples, *a.arrays(), *law.args, *a.rules())
 
 
 # [loop] fields a law-evaluating board applies itself (clampcore.law.board_arrays).
@@ -364,7 +364,9 @@ _BOARD_LOOP_FIELDS = ("max_current_pA", "spike_threshold_mV", "spike_hysteresis_
 
 def board_owns(program: Program, element: str, field_name: str) -> bool:
     """Whether ``element.field_name`` is a rule the board applies in law mode (the current
-    limit, spike detection, every threshold_reset field) rather than part of the law."""
+    limit, spike detection, every threshold_reset field) rather than part of the law: a live
+    change of one reaches the board as RULES_AT (PROTOCOL.md §10.4), from the sample the host
+    applies it at, as any change is logged (``clampcore.lawloop``)."""
     if element == "loop":
         return field_name in _BOARD_LOOP_FIELDS
     return program.kinds[program.row(element)] == "threshold_reset"
@@ -574,11 +576,6 @@ class Engine:
         slot = self.program.param_slot(element, field_name)
         if self.shared is None:
             raise EngineError("not running")
-        if self.law_mode_requested and board_owns(self.program, element, field_name):
-            raise EngineError(
-                f"{element}.{field_name} cannot change while running in law mode: the board "
-                "applies it from the rules it got at start (stop, change it, start again)"
-            )
         number = self.shared.post_change(MAIL_TARGETS[slot.array], slot.row, slot.col, stored)
         # Keep our copy of the experiment in step, for saving and for later validation.
         if element == "loop":

@@ -11,7 +11,9 @@ makes the laws up to newest + lead (``clampcore.step.element_conductances``, liv
 changes applied at the sample they take effect), and encodes them as LAWS frames,
 at least one per pass (a frame with no law still tells the board how far the host
 has got, which a lockstep rig waits for). A change of the zero-current control is
-sent as ZERO, which the board applies on arrival, ahead of any queued law.
+sent as ZERO, which the board applies on arrival, ahead of any queued law. A live change
+of a rule the board applies itself (current limit, spike detection, threshold_reset) is
+sent as RULES_AT, naming the sample it took effect at on the host (``_rules_frame``).
 ``law_fd_loop`` wraps it with read/write on a descriptor, like ``hostloop.fd_loop``.
 
 Real-time rules as in ``clampcore.hostloop``: compiled, preallocated, no I/O but one
@@ -45,8 +47,9 @@ from clampcore.hostloop import (
     _apply_mail,
 )
 from clampcore.jit import kernel
-from clampcore.law import make_law
+from clampcore.law import live_board_rules, make_law
 from clampcore.shared import (
+    APPLIED_SAMPLE,
     COL_COUNTER,
     COL_FLAGS,
     COL_I,
@@ -56,10 +59,13 @@ from clampcore.shared import (
     COL_V,
     CTRL_FIRST_COUNTER,
     CTRL_HEARTBEAT,
+    CTRL_MAIL_APPLIED,
     CTRL_STOP,
     CTRL_WRITTEN,
     CTRL_ZERO,
     LAT_BINS,
+    MAIL_TO_PARAMS,
+    MAILBOX_SLOTS,
     N_FIXED_COLUMNS,
     ST_BAD_FRAMES,
     ST_COMMANDS,
@@ -78,6 +84,9 @@ from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
     FLAG_LIMITED,
+    LP_MAX_CURRENT_PA,
+    LP_SPIKE_HYSTERESIS_MV,
+    LP_SPIKE_THRESHOLD_MV,
     cell_currents,
     hist_record_cell_spike,
 )
@@ -103,7 +112,8 @@ LW_SAMPLES = 4  # samples processed (ring rows written)
 LW_LEAD = 5  # look-ahead, samples
 LW_BLOCKED = 6  # 1: laws carry the Mg-blocked part
 LW_ZERO_SENT = 7  # the zero-current state last sent to the board
-N_LW = 8
+LW_MAIL_SEEN = 8  # live changes checked for board rules so far (ctrl[CTRL_MAIL_APPLIED])
+N_LW = 9
 
 FLAG_STALE = 16  # ring flags bit: the board had no law young enough and output 0 pA
 
@@ -130,6 +140,14 @@ class LawLinkArrays:
     body: np.ndarray
     timespec: np.ndarray
     pollfd: np.ndarray
+    # The board's rules as last sent (boardlaw bf, its uint32 bits, bi): RULES_AT's source.
+    rules_bf: np.ndarray
+    rules_bits: np.ndarray
+    rules_bi: np.ndarray
+
+    def rules(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The arrays ``process_rx_law`` and ``law_fd_loop`` take last."""
+        return self.rules_bf, self.rules_bits, self.rules_bi
 
     def arrays(self) -> tuple[np.ndarray, ...]:
         return (
@@ -152,8 +170,20 @@ class LawLinkArrays:
         )
 
 
-def new_law_link(lead: int, blocked: bool, n_elements: int, n_neurons: int) -> LawLinkArrays:
-    """Buffers for a run with look-ahead ``lead`` samples."""
+def new_law_link(
+    lead: int,
+    blocked: bool,
+    n_elements: int,
+    n_neurons: int,
+    bf: np.ndarray | None = None,
+    bi: np.ndarray | None = None,
+) -> LawLinkArrays:
+    """Buffers for a run with look-ahead ``lead`` samples; ``bf``, ``bi``: the board's rules
+    as sent with BOARD_RULES (``clampcore.law.board_arrays``)."""
+    rules_bf, rules_bi = bl.new_board_arrays()[:2]
+    if bf is not None and bi is not None:
+        rules_bf[:] = bf
+        rules_bi[:] = bi
     dstate, dbuf = new_deframer()
     rows = 1 << (2 * lead + 64).bit_length()  # the laws in flight and the samples to come
     lw = np.zeros(N_LW, dtype=np.int64)
@@ -181,6 +211,9 @@ def new_law_link(lead: int, blocked: bool, n_elements: int, n_neurons: int) -> L
         body=np.zeros(MAX_PAYLOAD, dtype=np.uint8),
         timespec=np.zeros(2, dtype=np.int64),
         pollfd=np.zeros(2, dtype=np.int32),
+        rules_bf=rules_bf,
+        rules_bits=rules_bf.view(np.uint32),
+        rules_bi=rules_bi,
     )
 
 
@@ -305,6 +338,50 @@ def _zero_frame(lw: np.ndarray, ctrl: np.ndarray, body: np.ndarray, tx: np.ndarr
 
 
 @kernel
+def _board_owned(kind: np.ndarray, target: float, row: int, col: int) -> bool:
+    """Whether a live change (mailbox target, row, column) is a rule the board applies itself
+    in law mode (``clampcore.engine.board_owns`` for names)."""
+    if target == MAIL_TO_PARAMS:
+        return 0 <= row < kind.shape[0] and kind[row] == KIND_THRESHOLD_RESET
+    return col in (LP_MAX_CURRENT_PA, LP_SPIKE_THRESHOLD_MV, LP_SPIKE_HYSTERESIS_MV)
+
+
+@kernel
+def _rules_frame(
+    lw: np.ndarray,
+    ctrl: np.ndarray,
+    applied: np.ndarray,
+    conv: np.ndarray,
+    scale: np.ndarray,
+    kind: np.ndarray,
+    params: np.ndarray,
+    loop_p: np.ndarray,
+    rules_bf: np.ndarray,
+    rules_bits: np.ndarray,
+    rules_bi: np.ndarray,
+    body: np.ndarray,
+    tx: np.ndarray,
+    at: int,
+) -> int:
+    """A RULES_AT frame at tx[at:] when live changes applied since the last call touch a rule
+    the board applies itself: the board's rules from the parameters now, in force from the
+    sample the newest such change took effect at (the law front); new end of tx."""
+    done = ctrl[CTRL_MAIL_APPLIED]
+    first = max(lw[LW_MAIL_SEEN], done - MAILBOX_SLOTS)
+    lw[LW_MAIL_SEEN] = done
+    sample = -1
+    for k in range(first, done):
+        slot = k % MAILBOX_SLOTS
+        if _board_owned(kind, applied[slot, 0], int(applied[slot, 1]), int(applied[slot, 2])):
+            sample = max(sample, int(applied[slot, APPLIED_SAMPLE]))
+    if sample < 0:
+        return at
+    live_board_rules(conv, scale, kind, params, loop_p, True, rules_bf, rules_bi)
+    nb = lawmsg.encode_rules_at(_next_seq(lw), sample, rules_bits, rules_bi, body, tx[at:])
+    return at + nb if nb > 0 else at
+
+
+@kernel
 def process_rx_law(
     nbytes: int,
     lw: np.ndarray,
@@ -338,6 +415,9 @@ def process_rx_law(
     mailbox: np.ndarray,
     applied: np.ndarray,
     stats: np.ndarray,
+    rules_bf: np.ndarray,
+    rules_bits: np.ndarray,
+    rules_bi: np.ndarray,
 ) -> int:
     """Handle ``rx[:nbytes]``; return the length of the frames left in ``tx`` (or 0)."""
     n_el = kind.shape[0]
@@ -423,9 +503,14 @@ def process_rx_law(
     at = _zero_frame(lw, ctrl, body, tx, 0)
     if not got_samples:
         return at
-    return top_up_laws(
-        lw, laws, lawbits, ghist, tx, at, scale, kind, params, state, rng, trains, g_out,
-        i_out, loop_p, loop_s, neuron_rows, ctrl, mailbox, applied, stats,
+    # The laws leave room for a RULES_AT frame after them.
+    at = top_up_laws(
+        lw, laws, lawbits, ghist, tx[: tx.shape[0] - MAX_WIRE], at, scale, kind, params, state,
+        rng, trains, g_out, i_out, loop_p, loop_s, neuron_rows, ctrl, mailbox, applied, stats,
+    )  # fmt: skip
+    return _rules_frame(
+        lw, ctrl, applied, conv, scale, kind, params, loop_p, rules_bf, rules_bits, rules_bi,
+        body, tx, at,
     )  # fmt: skip
 
 
@@ -468,6 +553,9 @@ def law_fd_loop(
     mailbox: np.ndarray,
     applied: np.ndarray,
     stats: np.ndarray,
+    rules_bf: np.ndarray,
+    rules_bits: np.ndarray,
+    rules_bi: np.ndarray,
 ) -> int:
     """Serve a law-evaluating board on ``fd`` until a stop condition; an ``EXIT_*`` code."""
     idle_ms = 0
@@ -500,6 +588,7 @@ def law_fd_loop(
                 got, lw, dstate, dbuf, frame, fields, s_adc, s_dac, s_flags, rx, tx, laws,
                 lawbits, ghist, body, conv, scale, kind, params, state, rng, trains, g_out,
                 i_out, loop_p, loop_s, neuron_rows, ctrl, ring, mailbox, applied, stats,
+                rules_bf, rules_bits, rules_bi,
             )  # fmt: skip
         done = 0
         while done < length:

@@ -436,6 +436,7 @@ def _link_read(fd: int, ln: LinkShape, chunk: np.ndarray, now: int) -> int:
 # default 10 ms is 500 samples at 50 kHz).
 LAW_QUEUE = 1024
 BLOCK_POINTS = 1025  # room for clampcore.law.block_table on a 16-bit ADC
+RULES_QUEUE = 4  # live rule changes (RULES_AT) held until their sample, as the C core's default
 
 
 class LawBoard(NamedTuple):
@@ -451,11 +452,18 @@ class LawBoard(NamedTuple):
     qdue: np.ndarray  # int64[LAW_QUEUE]: the sample each slot's law is for (-1: empty)
     fields: np.ndarray  # int64[lawmsg.N_FIELDS]
     one: np.ndarray  # int64[3]: adc, dac, flags of the sample being sent
+    rq_bits: np.ndarray  # uint32[RULES_QUEUE + 1, N_BF]: RULES_AT float rules (bits) waiting
+    # (row RULES_QUEUE: the one being read)
+    rq_f: np.ndarray  # float32 view of rq_bits
+    rq_i: np.ndarray  # int64[RULES_QUEUE + 1, N_BI]: their integer rules
+    rq_at: np.ndarray  # int64[RULES_QUEUE]: the sample each takes effect at
+    rq_n: np.ndarray  # int64[2]: head, count (arrival order)
 
 
 def new_law_board() -> LawBoard:
     bf, bi, bs, law, _ = boardlaw.new_board_arrays()
     qbits = np.zeros((LAW_QUEUE, 4), dtype=np.uint32)
+    rq_bits = np.zeros((RULES_QUEUE + 1, boardlaw.N_BF), dtype=np.uint32)
     return LawBoard(
         bf,
         bi,
@@ -467,7 +475,58 @@ def new_law_board() -> LawBoard:
         np.full(LAW_QUEUE, -1, dtype=np.int64),
         np.zeros(lawmsg.N_FIELDS, dtype=np.int64),
         np.zeros(3, dtype=np.int64),
+        rq_bits,
+        rq_bits.view(np.float32),
+        np.zeros((RULES_QUEUE + 1, boardlaw.N_BI), dtype=np.int64),
+        np.zeros(RULES_QUEUE, dtype=np.int64),
+        np.zeros(2, dtype=np.int64),
     )
+
+
+@kernel
+def _on_rules_at(frame: np.ndarray, n: int, st: np.ndarray, lb: LawBoard) -> None:
+    """RULES_AT (PROTOCOL.md §10.4), as the C core: held until its sample; late ones counted
+    and applied at the next tick; malformed unknown; outside a running law-mode board, with
+    another block_shift or with the holding queue full, rejected."""
+    r = RULES_QUEUE  # read into the spare row, kept only when accepted
+    at = lawmsg.decode_rules_at(frame, n, lb.rq_bits[r], lb.rq_i[r])
+    shift = lb.rq_i[r, boardlaw.BI_BLOCK_SHIFT]
+    if at < 0 or shift < -1 or shift > 16:
+        st[S_UNKNOWN] += 1
+        st[S_FLAGS] |= STATUS_RX_ERROR
+        return
+    if (
+        st[S_STATE] != STATE_RUNNING
+        or st[S_LAW_MODE] == 0
+        or shift != lb.bi[boardlaw.BI_BLOCK_SHIFT]
+        or lb.rq_n[1] >= RULES_QUEUE
+    ):
+        st[S_REJECTED] += 1
+        st[S_FLAGS] |= STATUS_RX_ERROR
+        return
+    if at < st[S_COUNTER]:
+        st[S_LAWS_LATE] += 1
+        st[S_FLAGS] |= STATUS_LATE
+    q = (lb.rq_n[0] + lb.rq_n[1]) % RULES_QUEUE
+    lb.rq_bits[q] = lb.rq_bits[r]
+    lb.rq_i[q] = lb.rq_i[r]
+    lb.rq_i[q, boardlaw.BI_DAC_TOP] = lb.bi[boardlaw.BI_DAC_TOP]
+    lb.rq_i[q, boardlaw.BI_FAULT_COUNTS] = lb.bi[boardlaw.BI_FAULT_COUNTS]
+    lb.rq_at[q] = at
+    lb.rq_n[1] += 1
+
+
+@kernel
+def _apply_due_rules(k: int, lb: LawBoard) -> None:
+    """Put in force every held rule change due at or before sample ``k``."""
+    while lb.rq_n[1] > 0 and lb.rq_at[lb.rq_n[0]] <= k:
+        h = lb.rq_n[0]
+        for j in range(boardlaw.N_BF):
+            lb.bf[j] = lb.rq_f[h, j]
+        for j in range(boardlaw.N_BI):
+            lb.bi[j] = lb.rq_i[h, j]
+        lb.rq_n[0] = (h + 1) % RULES_QUEUE
+        lb.rq_n[1] -= 1
 
 
 @kernel
@@ -710,6 +769,9 @@ def _on_raw_frame(
     if typ == lawmsg.MSG_LAWS:
         _on_laws(frame, m, st, lb, ts)
         return False
+    if typ == lawmsg.MSG_RULES_AT:
+        _on_rules_at(frame, m, st, lb)
+        return False
     if typ == lawmsg.MSG_ZERO and m == MIN_PAYLOAD + 1:
         lb.bs[boardlaw.BS_HOLD_ZERO] = 1 if frame[3] != 0 else 0  # on arrival, ahead of laws
         return False
@@ -838,6 +900,7 @@ def _tick(
     v_mV = cell_measure_mV(cell_kind, cell_p, cell_s, cell_rng, i_pA)
     adc[0] = mV_to_counts(conv, v_mV)
     if law_mode:
+        _apply_due_rules(k, lb)
         slot = k & (LAW_QUEUE - 1)
         if lb.qdue[slot] == k:
             boardlaw.board_set_law(lb.bs, lb.law, lb.qlaw[slot], k)
@@ -1408,6 +1471,7 @@ class Board:
             st[S_TRIPPED] = 0
             st[S_LAW_MODE] = 0  # until BOARD_RULES come again
             self.law_board.qdue[:] = -1
+            self.law_board.rq_n[1] = 0
         self._log_events(
             [
                 self._event(
@@ -1461,6 +1525,7 @@ class Board:
             st[i] = 0  # counters cover one run
         lb = self.law_board
         lb.bs[:] = boardlaw.new_board_arrays()[2]  # detector disarmed, no law, zero request off
+        lb.rq_n[1] = 0  # a rule change of the last run never acts in this one
         st[S_CMD_COUNTS] = st[S_FAULT_COUNTS]  # laws queued in READY for samples 0.. stay
         st[S_RUN] += 1
         self._log_events(
@@ -1488,6 +1553,7 @@ class Board:
     def _on_stop(self, seq: int) -> None:
         st = self.st
         self.law_board.qdue[:] = -1  # a stopped run's laws never act in the next one
+        self.law_board.rq_n[1] = 0
         if st[S_STATE] == STATE_RUNNING:
             self._log_events([self._stop_event("STOP")])
             st[S_STATE] = STATE_READY

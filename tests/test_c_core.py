@@ -616,3 +616,85 @@ def test_board_output_is_always_well_formed(core: CoreLibrary) -> None:
         binascii.crc_hqx(p[:-2], 0xFFFF) == int.from_bytes(p[-2:], "little") for p in payloads
     )
     assert crcs_ok
+
+
+# ------------------------------------------------------------ settled rules (§5.7) ---
+def _tick_at(rig: MemoryRig, t_us: int) -> None:
+    rig.set_clock(t_us)
+    rig.tick()
+
+
+def test_only_commands_laws_and_keepalives_restart_the_watchdog(core: CoreLibrary) -> None:
+    """§5.7 rule 1: GET_STATUS (an empty body, answered) does not hold the watchdog off."""
+    rig, host = _running(core, watchdog_us=3_000)
+    _tick_at(rig, 1_000)
+    host.send(codec.Command(0, (42,)))
+    for k in range(2, 8):
+        _tick_at(rig, 1_000 * k)
+        host.send(codec.GetStatus())
+    assert rig.status().watchdog_trips == 1 and rig.dac(0) == FAULT
+
+
+def test_a_silent_host_trips_the_watchdog_once_per_silence(core: CoreLibrary) -> None:
+    """§5.7 rule 2: one trip and one REPORT per silence, however many timeouts it lasts;
+    the next applied COMMAND lifts it, and a new silence trips it again."""
+    rig, host = _running(core, watchdog_us=2_000)
+    _tick_at(rig, 1_000)
+    host.send(codec.Command(0, (42,)))
+    _frames(rig)
+    for k in range(2, 12):  # 10 ms of silence: five timeouts
+        _tick_at(rig, 1_000 * k)
+    reports = _only(rig, codec.Status)
+    assert len(reports) == 1 and rig.status().watchdog_trips == 1
+    host.send(codec.Command(10, (43,)))
+    for k in range(12, 16):
+        _tick_at(rig, 1_000 * k)
+    assert rig.status().watchdog_trips == 2
+
+
+def test_after_a_trip_cmd_seq_names_the_last_command_and_missing_counts_from_it(
+    core: CoreLibrary,
+) -> None:
+    """§5.7 rules 3 and 4: while tripped, SAMPLE.cmd_seq still names the last applied
+    COMMAND (no longer in force: FAULT_OUTPUT is set); the next COMMAND's missing samples
+    are counted from the one that last answered."""
+    rig, host = _running(core, watchdog_us=2_000)
+    _tick_at(rig, 1_000)
+    seq = host.send(codec.Command(0, (42,)))
+    _frames(rig)
+    for k in range(2, 7):  # samples 1..5, the watchdog trips at sample 3
+        _tick_at(rig, 1_000 * k)
+    last = _only(rig, codec.Sample)[-1]
+    assert last.cmd_seq == seq and last.status & codec.STATUS_FAULT_OUTPUT
+    host.send(codec.Command(5, (43,)))  # samples 1..4 were never answered
+    assert rig.status().missing_commands == 4 and rig.dac(0) == 43
+
+
+@pytest.mark.parametrize(
+    ("back", "applied"), [(2**31, False), (2**31 - 1, True)], ids=["2^31 back", "2^31-1 back"]
+)
+def test_the_modulo_window_of_answers(core: CoreLibrary, back: int, applied: bool) -> None:
+    """§5.7 rule 5: `answers` is a sample already sent when (next − answers) mod 2^32 lies in
+    1 .. 2^31 − 1 (serial-number arithmetic, RFC 1982); 2^31 back reads as the future."""
+    rig, host = _running(core)
+    for k in range(4):
+        _tick_at(rig, 1_000 * (k + 1))
+    host.send(codec.Command((4 - back) % 2**32, (77,)))
+    assert (rig.dac(0) == 77) == applied
+    assert rig.status().rejected == (0 if applied else 1)
+
+
+def test_start_and_stop_clear_the_watchdog_bit(core: CoreLibrary) -> None:
+    """§5.7 rule 6: STATUS carries FAULT_OUTPUT and WATCHDOG only; STOP and START clear
+    WATCHDOG (and the trip), FAULT_OUTPUT stays until a COMMAND is applied."""
+    rig, host = _running(core, watchdog_us=2_000)
+    for k in range(1, 5):
+        _tick_at(rig, 1_000 * k)
+    assert rig.status().status == codec.STATUS_FAULT_OUTPUT | codec.STATUS_WATCHDOG
+    _frames(rig)  # the samples and the trip's REPORT
+    host.send(codec.Stop())
+    (stopped,) = _only(rig, codec.Status)
+    assert stopped.status == codec.STATUS_FAULT_OUTPUT
+    host.send(codec.Start())
+    (started,) = _only(rig, codec.Status)
+    assert started.status == codec.STATUS_FAULT_OUTPUT and started.watchdog_trips == 0

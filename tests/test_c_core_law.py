@@ -125,6 +125,9 @@ class RigLaw:
                 self.last_rx_us = now_us  # the rig restarts the watchdog on its own clock
         elif typ == lawmsg.MSG_ZERO and len(body) == 1:
             lb.bs[bl.BS_HOLD_ZERO] = 1 if body[0] != 0 else 0
+        elif typ == lawmsg.MSG_RULES_AT:  # _on_raw_frame
+            frame = np.frombuffer(payload, dtype=np.uint8).copy()
+            rb._on_rules_at(frame, frame.size, st, lb)
         elif typ in (lawmsg.MSG_BOARD_RULES, lawmsg.MSG_BLOCK_TABLE):  # Board._on_law_setup
             if st[rb.S_STATE] != codec.STATE_READY:
                 self._reply(seq, codec.RESULT_BAD_STATE)
@@ -152,6 +155,7 @@ class RigLaw:
             st[rb.S_TRIPPED] = 0
             st[rb.S_LAW_MODE] = 0
             lb.qdue[:] = -1
+            lb.rq_n[1] = 0
             self._reply(seq, codec.RESULT_OK)
         elif typ == codec.MSG_START:  # Board._on_start
             for i in (
@@ -168,6 +172,7 @@ class RigLaw:
             ):
                 st[i] = 0  # fmt: skip
             lb.bs[:] = bl.new_board_arrays()[2]
+            lb.rq_n[1] = 0
             st[rb.S_CMD_COUNTS] = st[rb.S_FAULT_COUNTS]
             st[rb.S_STATE] = codec.STATE_RUNNING
             self._reply(seq, codec.RESULT_OK)
@@ -188,6 +193,7 @@ class RigLaw:
             st[rb.S_TRIPPED] = 1
             st[rb.S_TRIPS] += 1
             self._status(0, codec.RESULT_REPORT)
+        rb._apply_due_rules(k, lb)
         slot = k & (rb.LAW_QUEUE - 1)
         if lb.qdue[slot] == k:
             bl.board_set_law(lb.bs, lb.law, lb.qlaw[slot], k)
@@ -371,6 +377,8 @@ _events = st.lists(
         ),
         st.tuples(st.just("zero"), st.booleans()),
         st.tuples(st.just("wait"), st.integers(0, 2 * WATCHDOG_US)),
+        # a live rule change: late, due, ahead (held, or refused when 4 are held)
+        st.tuples(st.just("rules_rel"), st.tuples(st.integers(-4, 12), st.sampled_from([0, 1]))),
     ),
     min_size=20,
     max_size=80,
@@ -389,6 +397,10 @@ def test_any_run_gives_the_rigs_bytes_and_dac_counts(core: CoreLibrary, events: 
             offset, laws, blocked = arg
             first = max(0, int(pair.ref.st[rb.S_COUNTER]) + offset)
             pair.send(lawmsg.MSG_LAWS, laws_body(first, laws, blocked))
+        elif kind == "rules_rel":
+            offset, which = arg
+            at = max(0, int(pair.ref.st[rb.S_COUNTER]) + offset)
+            pair.send(lawmsg.MSG_RULES_AT, struct.pack("<I", at) + _RULE_CHANGES[which])
         else:
             _play_one(pair, kind, arg)
     assert pair.c.law_counts() == (pair.ref.st[rb.S_LAWS_LATE], pair.ref.st[rb.S_LAWS_AHEAD])
@@ -401,6 +413,79 @@ def _play_one(pair: Pair, kind: str, arg: object) -> bytes:
         return pair.send(lawmsg.MSG_ZERO, lawmsg.ZERO_ON if arg else lawmsg.ZERO_OFF)
     pair.wait(int(arg))
     return b""
+
+
+def _rules_at(at: int, **loop: object) -> bytes:
+    """RULES_AT body: the sample, then the host's board rules for EXPERIMENT with ``loop``
+    fields changed (``clampcore.law.board_arrays``, as the host's live change makes them)."""
+    exp = load_experiment(EXPERIMENT)
+    exp.loop.update(loop)
+    bf, bi, *_ = board_arrays(build_program(exp), CONV, LAW_MODE, LIFETIME)
+    return struct.pack("<I", at) + lawmsg.rules_body(bf, bi)
+
+
+def _dac_for(i_pA: float) -> int:
+    """PROTOCOL.md §6: the DAC count of a current through 400 pA/V and a ±10 V, 16-bit DAC,
+    floor(x + 1/2) of x = (V + 10 V)/20 V · 65535."""
+    return math.floor((i_pA / 400.0 + 10.0) / 20.0 * 65535 + 0.5)
+
+
+# Two rule changes for the random runs: a lower limit with spike detection moved, and the
+# threshold_reset at another threshold and conductance.
+_RULE_CHANGES = [
+    _rules_at(0, max_current_pA=150.0, spike_threshold_mV=-60.0)[4:],
+    lawmsg.rules_body(*board_arrays(build_program({**EXPERIMENT, "element": [
+        *EXPERIMENT["element"][:2],
+        {**EXPERIMENT["element"][2], "threshold_mV": -55.0, "g_nS": 30.0},
+    ]}), CONV, LAW_MODE, LIFETIME)[:2]),
+]  # fmt: skip
+
+
+def test_a_rule_change_acts_from_its_sample_as_on_the_rig(core: CoreLibrary) -> None:
+    """PROTOCOL.md §10.4 RULES_AT: a lower current limit named for sample 5 clips from
+    sample 5 on, not before; the C core and the rig send the same bytes throughout."""
+    pair = Pair(core)
+    pair.setup([law_bits(1000.0, 0.0)] * 12, blocked=False)  # 1000 pA: beyond either limit
+    rest = adc_at(-70.0)
+    sent = pair.tick(rest)
+    sent += pair.send(lawmsg.MSG_RULES_AT, _rules_at(5, max_current_pA=200.0))
+    assert sent.count(b"\x00") == 1  # RULES_AT has no reply
+    for _ in range(9):
+        sent += pair.tick(rest)
+    dacs = [s[3] for s in _samples(sent)]
+    assert dacs == [_dac_for(400.0)] * 5 + [_dac_for(200.0)] * 5  # 36044, then 34406
+    assert all(s[4] & bl.BF_FLAG_LIMITED for s in _samples(sent))
+
+
+def test_late_full_and_misplaced_rule_changes(core: CoreLibrary) -> None:
+    """A change for a sample already taken acts at the next tick, counted with the late laws
+    and flagged LATE; beyond the board's holding queue, in READY, or with another block
+    table shift it is rejected; a wrong length is unknown (PROTOCOL.md §10.4, §5.5)."""
+    pair = Pair(core)
+    pair.setup([law_bits(1000.0, 0.0)] * 20, blocked=False)
+    rest = adc_at(-70.0)
+    for _ in range(3):
+        pair.tick(rest)
+    pair.send(lawmsg.MSG_RULES_AT, _rules_at(1, max_current_pA=300.0))
+    (_, status, _, dac, _) = _samples(pair.tick(rest))[0]
+    assert dac == _dac_for(300.0) and status & codec.STATUS_LATE
+    assert pair.c.law_counts()[0] == 1
+    for at in range(10, 16):  # a queue of 4 (ccb.h CCB_RULES_QUEUE): the last two refused
+        pair.send(lawmsg.MSG_RULES_AT, _rules_at(at, max_current_pA=250.0))
+    status_of = pair.send_message(codec.GetStatus())
+    (_, reply), *_ = [codec.parse_payload(p) for p in reference_deframe(status_of)[0]]
+    assert reply.rejected == 2
+    pair.send(lawmsg.MSG_RULES_AT, _rules_at(30)[:-1])  # one byte short
+    bad_shift = bytearray(_rules_at(30))
+    bad_shift[4 + 44 : 4 + 48] = struct.pack("<i", -1)  # block_shift: no table
+    pair.send(lawmsg.MSG_RULES_AT, bytes(bad_shift))
+    c = pair.c  # STOP and READY on the C core alone (the rig's model runs one run)
+    c.feed(codec.encode_message(codec.Stop(), 90))
+    c.feed(lawmsg.frame_bytes(lawmsg.MSG_RULES_AT, 91, _rules_at(30)))  # READY: rejected
+    c.take_tx()
+    c.feed(codec.encode_message(codec.GetStatus(), 92))
+    ((_, reply),) = [codec.parse_payload(p) for p in reference_deframe(c.take_tx())[0]]
+    assert (reply.unknown_messages, reply.rejected) == (1, 4)
 
 
 # ------------------------------------------------------------------ rules, one by one ---

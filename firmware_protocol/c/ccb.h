@@ -32,6 +32,8 @@
  *                       runs it in current mode.
  *   CCB_BLOCK_POINTS    float32 points of the Mg block table (default 1025 = 4.0 KiB,
  *                       what the host sends for any ADC of 10 bits or more; 2 or more).
+ *   CCB_RULES_QUEUE     law mode: live rule changes (RULES_AT) the board holds until their
+ *                       sample (default 4, at least 1; 52 bytes each).
  *   CCB_SAMPLES_PER_FRAME  law mode: samples per SAMPLES frame (default 1, at most 47;
  *                       §10.7's byte budget).  A board sends a frame when it holds this
  *                       many samples, and at once when one of them carries a flag the
@@ -94,6 +96,7 @@ extern "C" {
 /* Law mode's payloads (§10.4): SAMPLES of n samples, the BOARD_RULES body. */
 #define CCB_SAMPLES_PAYLOAD(n) (15u + 5u * (n))
 #define CCB_BOARD_RULES_BODY 48u
+#define CCB_RULES_AT_BODY (4u + CCB_BOARD_RULES_BODY) /* the sample, u32, then the rules */
 
 /* HELLO.capabilities bits (§4.1). */
 #define CCB_CAP_LAW 0x01u /* evaluates the current law (§10): built with CCB_LAW_QUEUE > 0 */
@@ -151,6 +154,9 @@ extern "C" {
 #endif
 #ifndef CCB_SAMPLES_PER_FRAME
 #define CCB_SAMPLES_PER_FRAME 1u
+#endif
+#ifndef CCB_RULES_QUEUE
+#define CCB_RULES_QUEUE 4u
 #endif
 /* The board sends HELLO, STATUS, SAMPLE and SAMPLES (of CCB_SAMPLES_PER_FRAME). */
 #define CCB_TX_BUF_MIN CCB_WIRE_LEN(CCB_HELLO_PAYLOAD)
@@ -265,6 +271,9 @@ typedef struct ccb_law_board { /* law mode (§10); private */
     uint32_t due[CCB_LAW_QUEUE];    /* sample number (modulo 2^32) of each slot's law */
     ccb_law queue[CCB_LAW_QUEUE];   /* slot = sample mod CCB_LAW_QUEUE */
     float table[CCB_BLOCK_POINTS];  /* Mg block table from BLOCK_TABLE */
+    ccb_law_params next[CCB_RULES_QUEUE]; /* RULES_AT waiting for their sample, in arrival order */
+    uint32_t next_at[CCB_RULES_QUEUE];
+    uint8_t next_head, next_n;
 } ccb_law_board;
 #endif
 

@@ -25,6 +25,9 @@
 #if CCB_LAW_QUEUE > 0 && CCB_BLOCK_POINTS < 2
 #error "CCB_BLOCK_POINTS must be at least 2"
 #endif
+#if CCB_LAW_QUEUE > 0 && (CCB_RULES_QUEUE < 1 || CCB_RULES_QUEUE > 255)
+#error "CCB_RULES_QUEUE must lie between 1 and 255"
+#endif
 #if CCB_SAMPLES_PER_FRAME < 1 || CCB_SAMPLES_PAYLOAD(CCB_SAMPLES_PER_FRAME) > CCB_MAX_PAYLOAD
 #error "CCB_SAMPLES_PER_FRAME must lie between 1 and 47 (a SAMPLES payload of <= 254 bytes)"
 #endif
@@ -657,6 +660,7 @@ static void on_configure(ccb_board *b, const uint8_t *payload, size_t len, uint1
 #if CCB_LAW_QUEUE > 0
         b->law.on = 0; /* until BOARD_RULES come again */
         memset(b->law.queued, 0, sizeof(b->law.queued));
+        b->law.next_n = 0;
 #endif
         output_fault(b);
     }
@@ -683,6 +687,7 @@ static void on_start(ccb_board *b, uint16_t seq)
     b->law.k = 0;
     b->law.late = 0;
     b->law.ahead = 0;
+    b->law.next_n = 0; /* a rule change of the last run never acts in this one */
 #endif
     output_fault(b);
     b->last_rx_us = b->port.micros(b->port.ctx);
@@ -698,6 +703,7 @@ static void on_stop(ccb_board *b, uint16_t seq)
         b->tripped = 0;
 #if CCB_LAW_QUEUE > 0
         memset(b->law.queued, 0, sizeof(b->law.queued)); /* no law of this run may act in the next */
+        b->law.next_n = 0;
 #endif
         output_fault(b);
     }
@@ -903,6 +909,37 @@ static void on_laws(ccb_board *b, const uint8_t *payload, size_t len)
     }
 }
 
+/* RULES_AT (RUNNING, law mode): new board rules from a named sample on, held until that
+ * sample's tick.  One for a sample already taken is late: counted with the late laws, the
+ * LATE bit set, and applied at the next tick.  Malformed (length, ranges): unknown.  In
+ * another state, with another block_shift (the table is READY's), or with the holding queue
+ * full: rejected (counted, RX_ERROR). */
+static void on_rules_at(ccb_board *b, const uint8_t *payload, size_t len)
+{
+    ccb_law_board *L = &b->law;
+    const uint8_t *body = &payload[CCB_HEADER];
+    ccb_law_params p;
+    uint32_t at;
+    if (len != CCB_MIN_PAYLOAD + CCB_RULES_AT_BODY ||
+        !parse_rules(b, &body[4], CCB_BOARD_RULES_BODY, &p)) {
+        unknown(b);
+        return;
+    }
+    if (b->state != CCB_STATE_RUNNING || !L->on || p.block_shift != L->params.block_shift ||
+        L->next_n >= CCB_RULES_QUEUE) {
+        reject_quietly(b);
+        return;
+    }
+    at = get_u32(&body[0]);
+    if (newer(b->counter, at)) { /* sample `at` was taken already (counter is the next one) */
+        L->late++;
+        b->flags |= CCB_STATUS_LATE;
+    }
+    L->next[(L->next_head + L->next_n) % CCB_RULES_QUEUE] = p;
+    L->next_at[(L->next_head + L->next_n) % CCB_RULES_QUEUE] = at;
+    L->next_n++;
+}
+
 /* ZERO: the zero request, applied on arrival, ahead of any queued law. */
 static void on_zero(ccb_board *b, const uint8_t *payload, size_t len)
 {
@@ -922,6 +959,11 @@ static void law_tick(ccb_board *b, uint16_t *dac, uint8_t *flags)
     uint8_t bit = (uint8_t)(1u << (slot & 7u));
     uint16_t adc = b->adc[0];
     uint16_t adc_top = (uint16_t)((1uL << b->info.adc_bits) - 1u);
+    while (L->next_n > 0u && !newer(L->next_at[L->next_head], b->counter)) {
+        L->params = L->next[L->next_head]; /* a rule change due at (or before) this sample */
+        L->next_head = (uint8_t)((L->next_head + 1u) % CCB_RULES_QUEUE);
+        L->next_n--;
+    }
     if ((L->queued[slot >> 3] & bit) && L->due[slot] == b->counter) {
         ccb_law_set(&L->state, &L->queue[slot], L->k);
         L->queued[slot >> 3] = (uint8_t)(L->queued[slot >> 3] & ~bit);
@@ -962,6 +1004,9 @@ static void on_frame(ccb_board *b, const uint8_t *p, size_t len)
         return;
     case CCB_MSG_ZERO:
         on_zero(b, p, len);
+        return;
+    case CCB_MSG_RULES_AT:
+        on_rules_at(b, p, len);
         return;
 #endif
     default:
