@@ -23,7 +23,7 @@ from clampcore.calibration import (
     conversion_array,
     pA_to_counts,
 )
-from clampcore.engine import Engine, EngineError, RunOptions
+from clampcore.engine import Engine, RunOptions
 from clampcore.experiment import load_experiment
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.preflight import law_lead_samples
