@@ -508,8 +508,10 @@ def _on_rules_at(frame: np.ndarray, n: int, st: np.ndarray, lb: LawBoard) -> Non
         st[S_LAWS_LATE] += 1
         st[S_FLAGS] |= STATUS_LATE
     q = (lb.rq_n[0] + lb.rq_n[1]) % RULES_QUEUE
-    lb.rq_bits[q] = lb.rq_bits[r]
-    lb.rq_i[q] = lb.rq_i[r]
+    for j in range(boardlaw.N_BF):
+        lb.rq_bits[q, j] = lb.rq_bits[r, j]
+    for j in range(boardlaw.N_BI):
+        lb.rq_i[q, j] = lb.rq_i[r, j]
     lb.rq_i[q, boardlaw.BI_DAC_TOP] = lb.bi[boardlaw.BI_DAC_TOP]
     lb.rq_i[q, boardlaw.BI_FAULT_COUNTS] = lb.bi[boardlaw.BI_FAULT_COUNTS]
     lb.rq_at[q] = at

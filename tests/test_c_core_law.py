@@ -488,6 +488,53 @@ def test_late_full_and_misplaced_rule_changes(core: CoreLibrary) -> None:
     assert (reply.unknown_messages, reply.rejected) == (1, 4)
 
 
+def test_a_batched_board_sends_the_same_samples_in_fewer_frames(
+    core: CoreLibrary, tmp_path_factory: pytest.TempPathFactory
+) -> None:
+    """CCB_SAMPLES_PER_FRAME=8 (PROTOCOL.md §10.4): the same samples, DAC counts and flags
+    as one sample to a frame, 8 to a SAMPLES frame, the rest sent before STOP's reply;
+    HELLO says 8."""
+    batched = CoreLibrary(
+        build_core_library(tmp_path_factory.mktemp("b8"), BUILD_VARIANTS["batched"])
+    )
+    sent = {}
+    for name, lib in (("one", core), ("eight", batched)):
+        rig = lib.rig(HELLO)
+        rig.feed(codec.encode_message(codec.GetHello(), 1))
+        hello = codec.parse_payload(reference_deframe(rig.take_tx())[0][0])[1]
+        assert hello.max_samples == (8 if name == "eight" else 1)
+        for wire in _setup_wires():
+            rig.feed(wire)
+        laws = [law_bits(100.0 * i, 5.0) for i in range(20)]
+        rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 50, laws_body(0, laws, False)))
+        rig.feed(codec.encode_message(codec.Start(), 51))
+        rig.take_tx()
+        for k in range(20):
+            rig.set_clock(PERIOD_US * (k + 1))
+            rig.set_adc(0, adc_at(-70.0 + 2.0 * k))  # crosses spike detection at -50 mV
+            rig.tick()
+        rig.feed(codec.encode_message(codec.Stop(), 52))
+        sent[name] = reference_deframe(rig.take_tx())[0]
+    fields = np.zeros(lawmsg.N_FIELDS, dtype=np.int64)
+    adc, dac, flags = (np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64) for _ in range(3))
+
+    def samples(payloads: list[bytes]) -> tuple[list[int], list[tuple[int, int, int, int]]]:
+        counts, rows = [], []
+        for p in payloads:
+            frame = np.frombuffer(p, dtype=np.uint8)
+            n = lawmsg.decode_samples(frame, frame.size, fields, adc, dac, flags)
+            if n > 0:
+                counts.append(n)
+                first = int(fields[lawmsg.SAMPLES_FIRST])
+                rows += [(first + i, int(adc[i]), int(dac[i]), int(flags[i])) for i in range(n)]
+        return counts, rows
+
+    one, eight = samples(sent["one"]), samples(sent["eight"])
+    assert one[0] == [1] * 20 and eight[0] == [8, 8, 4]
+    assert eight[1] == one[1] and [r[0] for r in one[1]] == list(range(20))
+    assert any(r[3] & bl.BF_FLAG_SPIKE for r in one[1])  # the comparison covered a spike
+
+
 # ------------------------------------------------------------------ rules, one by one ---
 def test_the_watchdog_in_law_mode(core: CoreLibrary) -> None:
     """PROTOCOL.md §5.3 in law mode: silence for the watchdog's time gives the fault value

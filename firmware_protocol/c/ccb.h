@@ -35,9 +35,10 @@
  *   CCB_RULES_QUEUE     law mode: live rule changes (RULES_AT) the board holds until their
  *                       sample (default 4, at least 1; 52 bytes each).
  *   CCB_SAMPLES_PER_FRAME  law mode: samples per SAMPLES frame (default 1, at most 47;
- *                       §10.7's byte budget).  A board sends a frame when it holds this
- *                       many samples, and at once when one of them carries a flag the
- *                       host must hear without delay (FAULT, SPIKE, RESET) or a status bit.
+ *                       the byte budget of PROTOCOL.md §10.4).  The board sends a frame
+ *                       when it holds this many samples, and what it holds before the
+ *                       STATUS reply to STOP.  Each sample waits up to n - 1 periods:
+ *                       the host's look-ahead must cover that too.
  *
  * Law mode needs <math.h>'s floorf (link with -lm) and ccb_law.c compiled without fused
  * multiply-add (gcc/clang: -ffp-contract=off), so that its results equal the host's.
@@ -274,6 +275,11 @@ typedef struct ccb_law_board { /* law mode (§10); private */
     ccb_law_params next[CCB_RULES_QUEUE]; /* RULES_AT waiting for their sample, in arrival order */
     uint32_t next_at[CCB_RULES_QUEUE];
     uint8_t next_head, next_n;
+    /* samples taken but not sent yet (CCB_SAMPLES_PER_FRAME to a SAMPLES frame) */
+    uint16_t out_adc[CCB_SAMPLES_PER_FRAME], out_dac[CCB_SAMPLES_PER_FRAME];
+    uint8_t out_flags[CCB_SAMPLES_PER_FRAME];
+    uint8_t out_n, out_events;
+    uint32_t out_first, out_clock_us;
 } ccb_law_board;
 #endif
 

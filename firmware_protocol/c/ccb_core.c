@@ -582,6 +582,23 @@ static void send_status(ccb_board *b, uint16_t ack_seq, uint8_t res)
     send(b, ccb_encode_status(b->tx_seq, &st, b->tx, sizeof(b->tx)));
 }
 
+#if CCB_LAW_QUEUE > 0
+/* Send the samples held for the next SAMPLES frame (law mode), if any. */
+static void send_samples(ccb_board *b)
+{
+    ccb_law_board *L = &b->law;
+    uint8_t status;
+    if (L->out_n == 0u) {
+        return;
+    }
+    status = (uint8_t)(sticky_bits(b) | L->out_events);
+    send(b, ccb_encode_samples(b->tx_seq, L->out_first, L->out_clock_us, status, L->out_n,
+                               L->out_adc, L->out_dac, L->out_flags, b->tx, sizeof(b->tx)));
+    L->out_n = 0;
+    L->out_events = 0;
+}
+#endif
+
 static void output_fault(ccb_board *b)
 {
     uint8_t i;
@@ -688,6 +705,8 @@ static void on_start(ccb_board *b, uint16_t seq)
     b->law.late = 0;
     b->law.ahead = 0;
     b->law.next_n = 0; /* a rule change of the last run never acts in this one */
+    b->law.out_n = 0;
+    b->law.out_events = 0;
 #endif
     output_fault(b);
     b->last_rx_us = b->port.micros(b->port.ctx);
@@ -697,6 +716,11 @@ static void on_start(ccb_board *b, uint16_t seq)
 
 static void on_stop(ccb_board *b, uint16_t seq)
 {
+#if CCB_LAW_QUEUE > 0
+    if (b->state == CCB_STATE_RUNNING) {
+        send_samples(b); /* every sample taken reaches the host, before the reply */
+    }
+#endif
     if (b->state == CCB_STATE_RUNNING) {
         b->state = CCB_STATE_READY;
         b->have_command = 0;
@@ -931,7 +955,7 @@ static void on_rules_at(ccb_board *b, const uint8_t *payload, size_t len)
         return;
     }
     at = get_u32(&body[0]);
-    if (newer(b->counter, at)) { /* sample `at` was taken already (counter is the next one) */
+    if ((uint32_t)(at - b->counter) >= 0x80000000u) { /* taken already, as a late law (§5.7) */
         L->late++;
         b->flags |= CCB_STATUS_LATE;
     }
@@ -1081,11 +1105,23 @@ void ccb_tick(ccb_board *b)
     if (law_mode) {
         uint16_t dac;
         uint8_t flags;
+        ccb_law_board *L = &b->law;
         law_tick(b, &dac, &flags);
-        status = (uint8_t)(sticky_bits(b) | b->flags);
+        if (L->out_n == 0u) {
+            L->out_first = b->counter;
+            L->out_clock_us = now;
+        }
+        if (L->out_n < CCB_SAMPLES_PER_FRAME) { /* always: a full batch was sent below */
+            L->out_adc[L->out_n] = b->adc[0];
+            L->out_dac[L->out_n] = dac;
+            L->out_flags[L->out_n] = flags;
+            L->out_n++;
+        }
+        L->out_events = (uint8_t)(L->out_events | b->flags); /* LATE, RX_ERROR since the last frame */
         b->flags = 0;
-        send(b, ccb_encode_samples(b->tx_seq, b->counter, now, status, 1u, b->adc, &dac, &flags,
-                                   b->tx, sizeof(b->tx)));
+        if (L->out_n >= CCB_SAMPLES_PER_FRAME) {
+            send_samples(b);
+        }
         b->counter++;
         return;
     }
