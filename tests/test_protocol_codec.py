@@ -441,3 +441,11 @@ print("ok", codec.crc16.__class__.__name__)
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.split() == ["ok", "function"]  # plain functions, not dispatchers
     assert json.loads((vectors).read_text())["protocol_version"] == codec.PROTOCOL_VERSION
+
+
+def test_a_hello_of_another_version_is_refused_by_name() -> None:
+    """PROTOCOL.md §4.1 and §9: the host reads the version byte first and says which
+    version the board speaks; a version-1 HELLO (49 bytes, no capabilities) is one."""
+    v1_body = bytes([1]) + bytes(48)
+    with pytest.raises(codec.VersionError, match=r"speaks protocol version 1; .* only version 2"):
+        codec.Hello.from_body(v1_body)
