@@ -159,18 +159,24 @@ MUTANTS: tuple[Mutant, ...] = (
     Mutant(
         "refuse-rate",
         "a rate above the board's maximum is not refused",
-        "clampcore/engine.py",
-        "        if rate > hello.max_rate_hz:",
-        "        if rate > 10 * hello.max_rate_hz:",
-        ("tests/test_engine.py::test_refuses_a_rate_above_the_boards_maximum",),
+        "clampcore/preflight.py",
+        "    if rate > hello.max_rate_hz:",
+        "    if rate > 10 * hello.max_rate_hz:",
+        (
+            "tests/test_preflight.py::test_rate_above_the_boards_maximum_is_refused_naming_both",
+            "tests/test_engine.py::test_refuses_a_rate_above_the_boards_maximum",
+        ),
     ),
     Mutant(
         "refuse-calibration",
         "a run without calibration on a real port is not refused",
-        "clampcore/engine.py",
-        "if not exp.amplifier_given and not allow_default_calibration:",
+        "clampcore/preflight.py",
+        "if not exp.amplifier_given and not simulated:",
         "if False:",
-        (f"{E2E}::test_refuses_to_start_without_calibration_on_a_real_port",),
+        (
+            "tests/test_preflight.py::test_a_missing_calibration_is_refused_except_on_the_simulated_rig",
+            f"{E2E}::test_refuses_to_start_without_calibration_on_a_real_port",
+        ),
     ),
     Mutant(
         "refuse-limit",
@@ -179,6 +185,34 @@ MUTANTS: tuple[Mutant, ...] = (
         "        if lo > -limit or hi < limit:",
         "        if False:",
         (f"{E2E}::test_refuses_a_limit_the_board_cannot_represent",),
+    ),
+    Mutant(
+        "refuse-lead",
+        "a look-ahead beyond the board's law queue is not refused",
+        "clampcore/preflight.py",
+        "if law_queue is not None and lead > law_queue:",
+        "if False:",
+        (
+            "tests/test_preflight.py::test_a_lead_beyond_the_boards_queue_is_refused_with_the_longest_it_allows",
+        ),
+    ),
+    Mutant(
+        "refuse-mg-groups",
+        "more Mg-blocked groups than the board evaluates are not refused",
+        "clampcore/preflight.py",
+        "    if len(groups) > hello.mg_groups:",
+        "    if False:",
+        (
+            "tests/test_preflight.py::test_more_mg_groups_than_the_board_evaluates_is_refused_naming_the_synapses",
+        ),
+    ),
+    Mutant(
+        "rules-at-ignored",
+        "the C core never puts a live rule change in force",
+        "firmware_protocol/c/ccb_core.c",
+        "        L->params = L->next[L->next_head];",
+        "        (void)L->next[L->next_head];",
+        ("tests/test_c_core_law.py::test_a_rule_change_acts_from_its_sample_as_on_the_rig",),
     ),
     # ---- calibration
     Mutant(
