@@ -244,6 +244,7 @@ def test_law_mode_rules_of_the_board_change_live_and_zero_still_works(qtbot, tmp
     assert ed.enter_text("loop", "max_current_pA", "20") is None
     assert _mail(window) == mail + 1 and window.engine.experiment.loop["max_current_pA"] == 20
     wait_samples(qtbot, window, 4000)
+    esc = written(window)  # the zero request acts at the board on arrival: from here on
     # Esc holds 0 pA in law mode too (the loop turns it into the board's zero request).
     QTest.keyClick(ed.widget("extra_leak", "g_nS"), QtCore.Qt.Key.Key_Escape)
     assert window.zero_held and int(window.engine.shared.ctrl[CTRL_ZERO]) == 1
@@ -256,6 +257,6 @@ def test_law_mode_rules_of_the_board_change_live_and_zero_still_works(qtbot, tmp
     half_step_pA = 400.0 * 20.0 / 65535 / 2
     assert np.all(i[changed - 1000 : changed] > 40.0)  # the leak's 42.9 pA, unclipped
     # From the change on (after the look-ahead of 10 ms = 200 samples): clipped to 20 pA.
-    clipped = i[changed + 1000 : before]
-    assert np.all(np.abs(clipped - 20.0) <= half_step_pA + 1e-9)
+    clipped = i[changed + 1000 : esc]
+    assert clipped.size > 2000 and np.all(np.abs(clipped - 20.0) <= half_step_pA + 1e-9)
     assert np.all(np.abs(i[before + 2000 :]) <= half_step_pA + 1e-12)
