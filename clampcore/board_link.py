@@ -139,6 +139,8 @@ class BoardLink:
                     continue
                 try:
                     yield codec.decode_message(wire)
+                except codec.VersionError as exc:  # a HELLO of another version (§9)
+                    raise BoardError(self.port, "unsupported board", str(exc)) from None
                 except codec.FrameError:
                     continue  # dropped, like the loop's decoder does
             try:
@@ -169,6 +171,7 @@ class BoardLink:
         )
 
     def handshake(self) -> codec.Hello:
+        """Ask for HELLO; refuses (``BoardError``) a board of another protocol version."""
         self.serial.reset_input_buffer()
         self.hello = self.request(codec.GetHello(), codec.Hello, tries=4)
         return self.hello
@@ -191,20 +194,16 @@ class BoardLink:
         """Send one COMMAND at once."""
         self.send(codec.Command(answers_counter % 2**32, (dac_counts,)), seq=seq % 0x10000)
 
-    def law_setup(self, rules: bytes, tables: list[bytes]) -> bool:
-        """Give the board its rules and Mg block table (PROTOCOL.md §10); False when the
-        board does not evaluate laws (a version-1 board ignores both, §5.5)."""
-        try:
-            reply = self.request((lawmsg.MSG_BOARD_RULES, rules), codec.Status, timeout_s=0.5)
-        except BoardError:
-            return False
-        if reply.result != codec.RESULT_OK:
-            raise BoardError(self.port, "board rules refused", f"board result code {reply.result}")
-        for body in tables:
-            reply = self.request((lawmsg.MSG_BLOCK_TABLE, body), codec.Status)
+    def law_setup(self, rules: bytes, tables: list[bytes]) -> None:
+        """Give a law-evaluating board (HELLO's law capability) its rules and Mg block
+        table (PROTOCOL.md §10); ``BoardError`` when it refuses or does not answer."""
+        for what, msg_type, body in [
+            ("board rules", lawmsg.MSG_BOARD_RULES, rules),
+            *(("block table", lawmsg.MSG_BLOCK_TABLE, b) for b in tables),
+        ]:
+            reply = self.request((msg_type, body), codec.Status)
             if reply.result != codec.RESULT_OK:
-                raise BoardError(self.port, "block table refused", f"result {reply.result}")
-        return True
+                raise BoardError(self.port, f"{what} refused", f"board result code {reply.result}")
 
     def zero_now(self, confirm_s: float = 0.2) -> bool:
         """Ask a law-evaluating board for 0 pA at once, ahead of any queued law, and wait

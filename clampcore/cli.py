@@ -206,6 +206,10 @@ def _run(args: argparse.Namespace) -> int:
     print("\n".join(report.lines()[1:]))
     options = RunOptions(
         mode=args.mode,
+        delay_samples=args.delay_samples,
+        cell_c_pF=args.cell_c_pF,
+        cell_g_nS=args.cell_g_nS,
+        override_stability=args.override_stability,
         rig_link=args.link,
         seed=args.seed,
         watchdog_ms=args.watchdog_ms,

@@ -46,12 +46,9 @@ from typing import Any
 
 import numpy as np
 
-from clampcore.board_link import BoardError, BoardLink, board_converters
+from clampcore.board_link import BoardError, BoardLink
 from clampcore.calibration import (
-    conversion_array,
-    current_limit_problem,
     current_range_pA,
-    pA_to_counts,
 )
 from clampcore.experiment import Experiment, ExperimentError, load_experiment
 from clampcore.firmware_protocol.lawmsg import rules_body, table_bodies
@@ -81,13 +78,13 @@ from clampcore.lawloop import (
     process_rx_law,
     top_up_laws,
 )
+from clampcore.preflight import Plan, PreflightError, preflight
 from clampcore.program import (
     MAIL_TARGETS,
     Program,
     ProgramArrays,
     build_program,
     check_live_change,
-    delay_samples,
 )
 from clampcore.realtime import fifo_scheduling, hold_cpu_dma_latency_zero
 from clampcore.recorder import Recorder, check_free_space, recording_meta
@@ -164,6 +161,13 @@ class RunOptions:
     # Law mode: this look-ahead in samples instead of law_lead_samples' (None). One longer
     # than a cell-driven synapse's delay allows makes its spikes late (delivered late, counted).
     lead_samples: int | None = None
+    # The stability guard at start (clampcore.preflight, clampcore.stability): the loop delay
+    # in samples (None: that of the mode that runs), measured cell values (None: [cell]),
+    # and whether to start above the stable limit anyway (logged).
+    delay_samples: int | None = None
+    cell_c_pF: float | None = None
+    cell_g_nS: float | None = None
+    override_stability: bool = False
     # Extra fields for the recording's metadata (e.g. the stability guard's "stability"),
     # written at start and again at the end (a window may update them during the run).
     extra_meta: dict[str, Any] = field(default_factory=dict)
@@ -192,10 +196,6 @@ class RunResult:
 # spin left the window 11 redraws/s, capped about 22; bench_gui.py --realtime 50
 # --rig-realtime 60).
 SPIN_SHARE = 0.25
-# Law mode's shortest look-ahead: covers a pseudo-terminal's measured turnaround (median
-# 2.7 µs, p99.9 33 µs; README, Benchmarks) and a high-speed USB board's 125 µs microframes
-# many times over; a full-speed USB board needs about 2 ms (1 ms frames both ways).
-MIN_LEAD_MS = 1.0
 
 
 def nwb_path_for(out: Path | str) -> Path:
@@ -255,41 +255,18 @@ def _loop_process(
         hello = link.handshake()
         report["board"] = {k: getattr(hello, k) for k in hello.__dataclass_fields__}
         shared.publish_board(report["board"])  # the journal's header: any board's counts
-        if not exp.amplifier_given and not allow_default_calibration:
-            raise EngineError(
-                "refusing to start: the experiment has no [amplifier] section, so ADC/DAC counts "
-                "cannot be converted to mV and pA (give vm_mV_per_V and command_pA_per_V)"
-            )
-        adc, dac = board_converters(hello)
-        conv = conversion_array(adc, dac, exp.amplifier)
-        problem = current_limit_problem(conv, exp.loop["max_current_pA"])
-        if problem:
-            raise EngineError(f"refusing to start: {problem}")
+        plan = preflight(hello, exp, options, simulated=allow_default_calibration)
+        conv, rate, zero = plan.conv, plan.rate_hz, plan.zero_counts
+        report["notice"] = plan.notice
         shared.publish_current_range(*current_range_pA(conv))  # live changes: the same rule
-        rate = round(exp.loop["rate_hz"])
-        if rate > hello.max_rate_hz:
-            raise EngineError(
-                f"refusing to start: rate_hz {rate} > the board's {hello.max_rate_hz}"
-            )
-        zero = pA_to_counts(conv, 0.0)
-        watchdog_us = int(
-            np.clip(options.watchdog_ms * 1000, hello.watchdog_min_us, hello.watchdog_max_us)
-        )
-        link.configure(rate, watchdog_us, zero)
+        link.configure(rate, plan.watchdog_us, zero)
         arrays = new_link(conv)
         pa, sh = program.arrays(), shared.loop(program.spike_rows())
         law = None
-        report["mode"] = CURRENT_MODE
-        if (options.mode or exp.loop["mode"]) == LAW_MODE:
-            law = _law_setup(link, program, conv, sh, options)
-            report["mode"] = LAW_MODE if law is not None else CURRENT_MODE
-            if law is None:
-                report["notice"] = (
-                    "the board does not evaluate the current law (it ignored BOARD_RULES): "
-                    "running in current mode, where every current is computed from a V one "
-                    "link round trip old (PROTOCOL.md §10)"
-                )
-        if law is None:
+        report["mode"] = plan.mode
+        if plan.mode == LAW_MODE:
+            law = _law_setup(link, program, plan, sh)
+        else:
             _compile_before_start(arrays, pa, sh)
         report["realtime"] = fifo_scheduling(options.realtime_priority)
         spin_us = min(options.spin_us, SPIN_SHARE * 1e6 / rate)
@@ -315,7 +292,7 @@ def _loop_process(
         shared.ctrl[CTRL_STATE] = STATE_STOPPING
         if code in (EXIT_PORT_CLOSED, EXIT_PORT_ERROR, EXIT_BOARD_SILENT):
             report["error"] = EXIT_MESSAGES[code]
-    except (BoardError, EngineError, OSError) as exc:
+    except (BoardError, EngineError, PreflightError, OSError) as exc:
         report["error"] = str(exc)
     except Exception:
         report["error"] = traceback.format_exc()
@@ -358,18 +335,13 @@ class _LawRun:
     sh: LoopShared
 
 
-def _law_setup(
-    link: BoardLink, program: Program, conv: np.ndarray, sh: LoopShared, options: RunOptions
-) -> _LawRun | None:
-    """Give the board its rules and the first laws; None when it cannot evaluate laws."""
-    exp = program.experiment
-    rate = float(exp.loop["rate_hz"])
-    lead = options.lead_samples or law_lead_samples(program)
-    lifetime = max(1, round(exp.loop["lifetime_ms"] * rate / 1000.0))
-    bf, bi, _bs, _law, table = board_arrays(program, conv, LAW_MODE, lifetime)
-    if not link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else []):
-        return None
-    a = new_law_link(lead, table.size > 0, len(program.names), sh.neuron_rows.size, conv)
+def _law_setup(link: BoardLink, program: Program, plan: Plan, sh: LoopShared) -> _LawRun:
+    """Give the board its rules and the first laws (its HELLO said it evaluates laws)."""
+    conv = plan.conv
+    bf, bi, _bs, _law, table = board_arrays(program, conv, LAW_MODE, plan.lifetime_samples)
+    link.law_setup(rules_body(bf, bi), table_bodies(table) if table.size else [])
+    n_neurons = sh.neuron_rows.size
+    a = new_law_link(plan.lead_samples, table.size > 0, len(program.names), n_neurons, conv, bf, bi)
     pa = program.arrays()
     # Compile (or load) before the board starts, then send the first laws (samples 0..lead-1).
     length = top_up_laws(a, 0, pa, sh)
@@ -398,32 +370,12 @@ _BOARD_LOOP_FIELDS = ("max_current_pA", "spike_threshold_mV", "spike_hysteresis_
 
 def board_owns(program: Program, element: str, field_name: str) -> bool:
     """Whether ``element.field_name`` is a rule the board applies in law mode (the current
-    limit, spike detection, every threshold_reset field) rather than part of the law."""
+    limit, spike detection, every threshold_reset field) rather than part of the law: a live
+    change of one reaches the board as RULES_AT (PROTOCOL.md §10.4), from the sample the host
+    applies it at, as any change is logged (``clampcore.lawloop``)."""
     if element == "loop":
         return field_name in _BOARD_LOOP_FIELDS
     return program.kinds[program.row(element)] == "threshold_reset"
-
-
-def law_lead_samples(program: Program) -> int:
-    """Law mode's look-ahead for ``program``: ``lead_ms``, shortened to fit every cell-driven
-    synapse's delay (at least lead + 1 samples: the minimum-delay rule). Raises
-    ``EngineError`` naming the synapse when a delay leaves less than ``MIN_LEAD_MS``."""
-    exp = program.experiment
-    rate = float(exp.loop["rate_hz"])
-    lead = max(1, round(exp.loop["lead_ms"] * rate / 1000.0))
-    floor = max(1, math.ceil(MIN_LEAD_MS * rate / 1000.0))
-    for e in exp.elements:
-        if e["kind"] == "synapse" and e["source"] == "cell":
-            d = delay_samples(e["delay_ms"], program.dt_ms)
-            if d - 1 < floor:
-                shortest = (floor + 1) * 1000.0 / rate
-                raise EngineError(
-                    f"refusing to start: synapse '{e['name']}': delay_ms = {e['delay_ms']:g} is "
-                    f"too short for law mode on this link; the shortest it allows is "
-                    f"{shortest:g} ms (the look-ahead must cover the link's round trip)"
-                )
-            lead = min(lead, d - 1)
-    return lead
 
 
 def _stop_requested(sh: LoopShared) -> LoopShared:
@@ -643,11 +595,6 @@ class Engine:
         slot = self.program.param_slot(element, field_name)
         if self.shared is None:
             raise EngineError("not running")
-        if self.law_mode_requested and board_owns(self.program, element, field_name):
-            raise EngineError(
-                f"{element}.{field_name} cannot change while running in law mode: the board "
-                "applies it from the rules it got at start (stop, change it, start again)"
-            )
         number = self.shared.post_change(MAIL_TARGETS[slot.array], slot.row, slot.col, stored)
         # Keep our copy of the experiment in step, for saving and for later validation.
         if element == "loop":

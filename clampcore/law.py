@@ -21,7 +21,8 @@ guard, spike detection, one threshold_reset element, the law's lifetime, the blo
 table) into the board's parameter arrays.
 
 Public names: ``LAW_MODE``, ``CURRENT_MODE``, ``law_scale``, ``law_to_counts``, ``make_law``,
-``current_to_law``, ``board_arrays``, ``BoardArrays``, ``first_count_at_or_above``, ``block_table``.
+``current_to_law``, ``board_arrays``, ``BoardArrays``, ``live_board_rules``,
+``first_count_at_or_above``, ``block_table``.
 """
 
 from __future__ import annotations
@@ -39,7 +40,11 @@ from clampcore.firmware_protocol import boardlaw as bl
 from clampcore.jit import kernel
 from clampcore.program import Program, ProgramArrays
 from clampcore.step import (
+    LP_DT_MS,
+    LP_MAX_CURRENT_PA,
     LP_MG_MM,
+    LP_SPIKE_HYSTERESIS_MV,
+    LP_SPIKE_THRESHOLD_MV,
     LS_LAW_A_PA,
     LS_LAW_AB_PA,
     LS_LAW_G_NS,
@@ -107,14 +112,15 @@ def current_to_law(scale: np.ndarray, i_pA: float, out: np.ndarray) -> None:
     law_to_counts(scale, i_pA, 0.0, 0.0, 0.0, out)
 
 
+@kernel
 def first_count_at_or_above(conv: np.ndarray, v_mV: float) -> int:
     """The smallest ADC count whose membrane potential is >= ``v_mV`` (top + 1: none).
 
     Found by bisection on the host's own ``counts_to_mV``, so a board comparing counts
     decides exactly as the host comparing quantised potentials would.
     """
-    top = int(conv[C_ADC_TOP])
-    lo, hi = 0, top + 1
+    top = np.int64(conv[C_ADC_TOP])
+    lo, hi = np.int64(0), top + 1
     while lo < hi:
         mid = (lo + hi) // 2
         if counts_to_mV(conv, float(mid)) >= v_mV:
@@ -134,6 +140,45 @@ def block_table(conv: np.ndarray, mg_mM: float) -> tuple[np.ndarray, int]:
         dtype=np.float32,
     )
     return table, shift
+
+
+@kernel
+def live_board_rules(
+    conv: np.ndarray,
+    scale: np.ndarray,
+    kind: np.ndarray,
+    params: np.ndarray,
+    loop_p: np.ndarray,
+    law_mode: bool,
+    bf: np.ndarray,
+    bi: np.ndarray,
+) -> None:
+    """The board's rules that a live change may touch, from the loop's and the elements'
+    parameters: the current limit, spike detection and the (first) threshold_reset element
+    (in current mode the host runs it, so the board's is off). The run's fixed rules
+    (implausible V, lifetime, block table, DAC top, fault count) are left as they are."""
+    limit = loop_p[LP_MAX_CURRENT_PA]
+    a = (limit - scale[SC_I0_PA]) * scale[SC_K]
+    b = (-limit - scale[SC_I0_PA]) * scale[SC_K]
+    bf[bl.BF_LIMIT_LO] = min(a, b)
+    bf[bl.BF_LIMIT_HI] = max(a, b)
+    threshold = loop_p[LP_SPIKE_THRESHOLD_MV]
+    bi[bl.BI_SPIKE_ADC] = first_count_at_or_above(conv, threshold)
+    bi[bl.BI_REARM_ADC] = first_count_at_or_above(conv, threshold - loop_p[LP_SPIKE_HYSTERESIS_MV])
+    bi[bl.BI_TR_ADC] = np.int64(conv[C_ADC_TOP]) + 1  # above the ADC's top: off
+    bi[bl.BI_TR_SAMPLES] = 0
+    bf[bl.BF_TR_ALPHA] = 0.0
+    bf[bl.BF_TR_BETA] = 0.0
+    for r in range(kind.shape[0]):
+        if kind[r] != KIND_THRESHOLD_RESET:
+            continue
+        if law_mode and params[r, P_ENABLED] != 0.0:
+            bi[bl.BI_TR_ADC] = first_count_at_or_above(conv, params[r, _tr.P_THRESHOLD])
+            bi[bl.BI_TR_SAMPLES] = math.ceil(params[r, _tr.P_REFRACTORY] / loop_p[LP_DT_MS] - 1e-9)
+            g = params[r, _tr.P_G]
+            bf[bl.BF_TR_ALPHA] = scale[SC_K] * g * (params[r, _tr.P_RESET] - scale[SC_MV0])
+            bf[bl.BF_TR_BETA] = scale[SC_K] * g * scale[SC_MV1]
+        return
 
 
 class BoardArrays(NamedTuple):
@@ -163,22 +208,12 @@ def board_arrays(
     mg = float(program.loop_p[LP_MG_MM])
     table, shift = block_table(conv, mg) if mg > 0 else (np.ones(0, np.float32), -1)
     bf, bi, bs, law, _ = bl.new_board_arrays()
-    top_adc = int(conv[C_ADC_TOP])
-    limit = float(loop["max_current_pA"])
-    ends = sorted(
-        ((limit - scale[SC_I0_PA]) * scale[SC_K], (-limit - scale[SC_I0_PA]) * scale[SC_K])
-    )
-    bf[bl.BF_LIMIT_LO], bf[bl.BF_LIMIT_HI] = ends
     bi[bl.BI_DAC_TOP] = int(conv[C_DAC_TOP])
     bi[bl.BI_FAULT_COUNTS] = pA_to_counts(conv, 0.0)
     v_fault = float(loop["v_fault_mV"])
     bi[bl.BI_ADC_OK_LO] = first_count_at_or_above(conv, -v_fault)
     # |V| > v_fault is implausible: the last count at or below +v_fault is the top of the range.
     bi[bl.BI_ADC_OK_HI] = first_count_at_or_above(conv, math.nextafter(v_fault, math.inf)) - 1
-    threshold = float(loop["spike_threshold_mV"])
-    bi[bl.BI_SPIKE_ADC] = first_count_at_or_above(conv, threshold)
-    bi[bl.BI_REARM_ADC] = first_count_at_or_above(conv, threshold - loop["spike_hysteresis_mV"])
-    bi[bl.BI_TR_ADC] = top_adc + 1
     bi[bl.BI_LIFETIME] = lifetime_samples
     bi[bl.BI_BLOCK_SHIFT] = shift
     rows = [r for r, k in enumerate(program.kind) if k == KIND_THRESHOLD_RESET]
@@ -187,11 +222,7 @@ def board_arrays(
         raise ValueError(
             f"a board evaluates one threshold_reset element, not {len(rows)} ({names})"
         )
-    if rows and mode == LAW_MODE and program.params[rows[0], P_ENABLED] != 0.0:
-        p = program.params[rows[0]]
-        bi[bl.BI_TR_ADC] = first_count_at_or_above(conv, p[_tr.P_THRESHOLD])
-        bi[bl.BI_TR_SAMPLES] = math.ceil(p[_tr.P_REFRACTORY] / program.dt_ms - 1e-9)
-        g = p[_tr.P_G]
-        bf[bl.BF_TR_ALPHA] = scale[SC_K] * g * (p[_tr.P_RESET] - scale[SC_MV0])
-        bf[bl.BF_TR_BETA] = scale[SC_K] * g * scale[SC_MV1]
+    live_board_rules(
+        conv, scale, program.kind, program.params, program.loop_p, mode == LAW_MODE, bf, bi
+    )
     return BoardArrays(bf, bi, bs, law, table)

@@ -11,7 +11,9 @@ makes the laws up to newest + lead (``clampcore.step.element_conductances``, liv
 changes applied at the sample they take effect), and encodes them as LAWS frames,
 at least one per pass (a frame with no law still tells the board how far the host
 has got, which a lockstep rig waits for). A change of the zero-current control is
-sent as ZERO, which the board applies on arrival, ahead of any queued law.
+sent as ZERO, which the board applies on arrival, ahead of any queued law. A live change
+of a rule the board applies itself (current limit, spike detection, threshold_reset) is
+sent as RULES_AT, naming the sample it took effect at on the host (``_rules_frame``).
 ``law_fd_loop`` wraps it with read/write on a descriptor, with ``hostloop``'s
 ``next_input`` and ``write_all`` as ``hostloop.fd_loop`` does.
 
@@ -57,9 +59,10 @@ from clampcore.hostloop import (
     write_all,
 )
 from clampcore.jit import kernel
-from clampcore.law import law_scale, make_law
+from clampcore.law import law_scale, live_board_rules, make_law
 from clampcore.program import ProgramArrays
 from clampcore.shared import (
+    APPLIED_SAMPLE,
     COL_COUNTER,
     COL_FLAGS,
     COL_I,
@@ -68,9 +71,12 @@ from clampcore.shared import (
     COL_TURNAROUND,
     COL_V,
     CTRL_FIRST_COUNTER,
+    CTRL_MAIL_APPLIED,
     CTRL_WRITTEN,
     CTRL_ZERO,
     LAT_BINS,
+    MAIL_TO_PARAMS,
+    MAILBOX_SLOTS,
     N_FIXED_COLUMNS,
     ST_BAD_FRAMES,
     ST_COMMANDS,
@@ -91,6 +97,9 @@ from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
     FLAG_LIMITED,
+    LP_MAX_CURRENT_PA,
+    LP_SPIKE_HYSTERESIS_MV,
+    LP_SPIKE_THRESHOLD_MV,
     cell_currents,
     hist_record_cell_spike,
     queue_late_cell_spike,
@@ -104,7 +113,8 @@ LW_SAMPLES = 4  # samples processed (ring rows written)
 LW_LEAD = 5  # look-ahead, samples
 LW_BLOCKED = 6  # 1: laws carry the Mg-blocked part
 LW_ZERO_SENT = 7  # the zero-current state last sent to the board
-N_LW = 8
+LW_MAIL_SEEN = 8  # live changes checked for board rules so far (ctrl[CTRL_MAIL_APPLIED])
+N_LW = 9
 
 FLAG_STALE = 16  # ring flags bit: the board had no law young enough and output 0 pA
 
@@ -129,12 +139,27 @@ class LawLinkArrays(NamedTuple):
     conv: np.ndarray  # the board's converters and the amplifier (clampcore.calibration)
     scale: np.ndarray  # the law's units for conv (clampcore.law.law_scale)
     io: PortIo
+    # The board's rules as last sent (boardlaw bf, its uint32 bits, bi): RULES_AT's source.
+    rules_bf: np.ndarray
+    rules_bits: np.ndarray
+    rules_bi: np.ndarray
 
 
 def new_law_link(
-    lead: int, blocked: bool, n_elements: int, n_neurons: int, conv: np.ndarray
+    lead: int,
+    blocked: bool,
+    n_elements: int,
+    n_neurons: int,
+    conv: np.ndarray,
+    bf: np.ndarray | None = None,
+    bi: np.ndarray | None = None,
 ) -> LawLinkArrays:
-    """Buffers for a run with look-ahead ``lead`` samples on a board with converters ``conv``."""
+    """Buffers for a run with look-ahead ``lead`` samples on a board with converters ``conv``;
+    ``bf``, ``bi``: the board's rules as sent with BOARD_RULES (``clampcore.law.board_arrays``)."""
+    rules_bf, rules_bi = bl.new_board_arrays()[:2]
+    if bf is not None and bi is not None:
+        rules_bf[:] = bf
+        rules_bi[:] = bi
     dstate, dbuf = new_deframer()
     rows = 1 << (2 * lead + 64).bit_length()  # the laws in flight and the samples to come
     lw = np.zeros(N_LW, dtype=np.int64)
@@ -161,6 +186,9 @@ def new_law_link(
         conv=conv,
         scale=law_scale(conv),
         io=new_port_io(_TX_BYTES),
+        rules_bf=rules_bf,
+        rules_bits=rules_bf.view(np.uint32),
+        rules_bi=rules_bi,
     )
 
 
@@ -238,7 +266,7 @@ def top_up_laws(ll: LawLinkArrays, at: int, pa: ProgramArrays, sh: LoopShared) -
     s = first
     while True:  # at least one frame: it says how far the host has got
         count = min(per_frame, target + 1 - s) if target >= s else 0
-        if at + MAX_WIRE > tx.shape[0]:
+        if at + 2 * MAX_WIRE > tx.shape[0]:  # room left for a RULES_AT frame after them
             break
         nb = lawmsg.encode_laws(_next_seq(lw), lw[LW_SEEN], s, count, blocked, lawbits, tx, at)
         at += nb
@@ -261,6 +289,38 @@ def _zero_frame(lw: np.ndarray, ctrl: np.ndarray, body: np.ndarray, tx: np.ndarr
         lw[LW_ZERO_SENT] = want
         at += nb
     return at
+
+
+@kernel
+def _board_owned(kind: np.ndarray, target: float, row: int, col: int) -> bool:
+    """Whether a live change (mailbox target, row, column) is a rule the board applies itself
+    in law mode (``clampcore.engine.board_owns`` for names)."""
+    if target == MAIL_TO_PARAMS:
+        return 0 <= row < kind.shape[0] and kind[row] == KIND_THRESHOLD_RESET
+    return col in (LP_MAX_CURRENT_PA, LP_SPIKE_THRESHOLD_MV, LP_SPIKE_HYSTERESIS_MV)
+
+
+@kernel
+def _rules_frame(ll: LawLinkArrays, pa: ProgramArrays, sh: LoopShared, at: int) -> int:
+    """A RULES_AT frame at tx[at:] when live changes applied since the last call touch a rule
+    the board applies itself: the board's rules from the parameters now, in force from the
+    sample the newest such change took effect at (the law front); new end of tx."""
+    lw, applied, kind = ll.lw, sh.applied, pa.kind
+    done = sh.ctrl[CTRL_MAIL_APPLIED]
+    first = max(lw[LW_MAIL_SEEN], done - MAILBOX_SLOTS)
+    lw[LW_MAIL_SEEN] = done
+    sample = -1
+    for k in range(first, done):
+        slot = k % MAILBOX_SLOTS
+        if _board_owned(kind, applied[slot, 0], int(applied[slot, 1]), int(applied[slot, 2])):
+            sample = max(sample, int(applied[slot, APPLIED_SAMPLE]))
+    if sample < 0:
+        return at
+    live_board_rules(ll.conv, ll.scale, kind, pa.params, pa.loop_p, True, ll.rules_bf, ll.rules_bi)
+    nb = lawmsg.encode_rules_at(
+        _next_seq(lw), sample, ll.rules_bits, ll.rules_bi, ll.body, ll.io.tx[at:]
+    )
+    return at + nb if nb > 0 else at
 
 
 @kernel
@@ -353,7 +413,7 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
     at = _zero_frame(lw, ctrl, body, tx, 0)
     if not got_samples:
         return at
-    return top_up_laws(ll, at, pa, sh)
+    return _rules_frame(ll, pa, sh, top_up_laws(ll, at, pa, sh))
 
 
 @kernel
@@ -368,4 +428,5 @@ def law_fd_loop(port: PortRun, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSha
         else:  # the zero request cannot wait for the board
             length = _zero_frame(ll.lw, sh.ctrl, ll.body, ll.io.tx, 0)
         if not write_all(port.fd, ll.io, length):
+            return EXIT_PORT_ERROR
             return EXIT_PORT_ERROR

@@ -138,16 +138,22 @@ class Program:
         return out
 
 
+def mg_groups(exp: Experiment) -> dict[float, list[str]]:
+    """The cell's Mg-blocked groups: each distinct ``mg_mM`` with the synapses that use it."""
+    groups: dict[float, list[str]] = {}
+    for e in exp.elements:
+        if e["kind"] == "synapse" and e["target"] == "cell" and e["mg_mM"] > 0:
+            groups.setdefault(float(e["mg_mM"]), []).append(e["name"])
+    return groups
+
+
 def blocked_group_mg_mM(exp: Experiment) -> float:
     """The one [Mg2+] of the cell's Mg-blocked synapses (0 when there are none).
 
     A board evaluates one blocked law, B(V) (a_b - g_b V), whose B is a table made for one
     [Mg2+]; synapses on the cell with different ``mg_mM`` are refused, named.
     """
-    groups: dict[float, list[str]] = {}
-    for e in exp.elements:
-        if e["kind"] == "synapse" and e["target"] == "cell" and e["mg_mM"] > 0:
-            groups.setdefault(float(e["mg_mM"]), []).append(e["name"])
+    groups = mg_groups(exp)
     if len(groups) > 1:
         names = "; ".join(f"{mg:g} mM: {', '.join(n)}" for mg, n in sorted(groups.items()))
         first = min(groups)

@@ -69,6 +69,10 @@ class _BoardInfo(ctypes.Structure):
         ("max_rate_hz", _u32),
         ("watchdog_min_us", _u32),
         ("watchdog_max_us", _u32),
+        ("capabilities", _u8),
+        ("law_queue", _u32),
+        ("mg_groups", _u8),
+        ("max_samples", _u8),
     )
 
 

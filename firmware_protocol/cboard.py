@@ -74,13 +74,14 @@ def _core_sources() -> list[str]:
 
 # The build variants a board may choose (ccb.h): the default, the CRC bit by bit instead
 # of with a table, small receive and channel buffers, law mode left out (a board that only
-# converts), and the smallest law mode.
+# converts), the smallest law mode, and law mode with 8 samples to a SAMPLES frame.
 BUILD_VARIANTS: dict[str, tuple[str, ...]] = {
     "default": (),
     "crc-bitwise": ("-DCCB_CRC_BITWISE",),
     "small-buffers": ("-DCCB_RX_MAX_PAYLOAD=64", "-DCCB_MAX_INPUTS=4"),
     "no-law": ("-DCCB_LAW_QUEUE=0",),
     "small-law": ("-DCCB_LAW_QUEUE=8", "-DCCB_BLOCK_POINTS=2"),
+    "batched": ("-DCCB_SAMPLES_PER_FRAME=8",),
 }
 
 

@@ -1,4 +1,4 @@
-"""Host-side codec for the clampcore wire protocol, version 1 (see PROTOCOL.md).
+"""Host-side codec for the clampcore wire protocol, version 2 (see PROTOCOL.md).
 
 Two layers:
 
@@ -60,7 +60,7 @@ from numba import njit
 # ---------------------------------------------------------------------------
 # Protocol constants (PROTOCOL.md is the normative text; keep both in step).
 # ---------------------------------------------------------------------------
-PROTOCOL_VERSION = 1
+PROTOCOL_VERSION = 2
 MAX_PAYLOAD = 254  # PROTOCOL.md §2: at most 254 bytes, so COBS adds exactly one byte
 MAX_WIRE = MAX_PAYLOAD + 2  # one COBS code byte + one 0x00 delimiter
 MIN_PAYLOAD = 5  # type (1) + seq (2) + CRC (2)
@@ -548,6 +548,10 @@ class FrameError(ValueError):
     """Bad bytes or bad field values given to the plain Python helpers."""
 
 
+class VersionError(FrameError):
+    """A HELLO of a protocol version this host does not speak (PROTOCOL.md §9)."""
+
+
 def _check_int(name: str, value: int, lo: int, hi: int) -> None:
     if isinstance(value, bool) or not isinstance(value, int | np.integer):
         raise FrameError(f"{name} must be an integer, got {value!r}")
@@ -624,7 +628,8 @@ class GetStatus(_Empty):
     MSG_TYPE: ClassVar[int] = MSG_GET_STATUS
 
 
-_HELLO_FMT = struct.Struct(f"<B{IDENTITY_BYTES}sBBBBiiiiIII")
+_HELLO_FMT = struct.Struct(f"<B{IDENTITY_BYTES}sBBBBiiiiIIIBIBB")
+CAP_LAW = 0x01  # HELLO.capabilities: the board evaluates the current law (PROTOCOL.md §10)
 
 
 @dataclass(frozen=True)
@@ -645,6 +650,16 @@ class Hello:
     watchdog_min_us: int
     watchdog_max_us: int
     version: int = PROTOCOL_VERSION
+    # What the board can do (§4.1); the defaults describe a board that only converts.
+    capabilities: int = 0
+    law_queue: int = 0  # laws held ahead (the longest look-ahead, in samples)
+    mg_groups: int = 0  # Mg-blocked groups evaluated (distinct [Mg] values)
+    max_samples: int = 0  # most samples per SAMPLES frame
+
+    @property
+    def evaluates_laws(self) -> bool:
+        """Whether the board evaluates the current law (PROTOCOL.md §10)."""
+        return bool(self.capabilities & CAP_LAW)
 
     def __post_init__(self) -> None:
         if not isinstance(self.identity, str):
@@ -667,6 +682,10 @@ class Hello:
         _check_int("max_rate_hz", self.max_rate_hz, 1, 2**32 - 1)
         _check_int("watchdog_min_us", self.watchdog_min_us, 1, 2**32 - 1)
         _check_int("watchdog_max_us", self.watchdog_max_us, self.watchdog_min_us, 2**32 - 1)
+        _check_int("capabilities", self.capabilities, 0, 0xFF)
+        _check_int("law_queue", self.law_queue, 0, 2**32 - 1)
+        _check_int("mg_groups", self.mg_groups, 0, 0xFF)
+        _check_int("max_samples", self.max_samples, 0, 0xFF)
 
     def to_body(self) -> bytes:
         return _HELLO_FMT.pack(
@@ -683,19 +702,27 @@ class Hello:
             self.max_rate_hz,
             self.watchdog_min_us,
             self.watchdog_max_us,
+            self.capabilities,
+            self.law_queue,
+            self.mg_groups,
+            self.max_samples,
         )
 
     @classmethod
     def from_body(cls, body: bytes) -> Hello:
+        # The version byte first: another version may have another length (§9).
+        if body and body[0] != PROTOCOL_VERSION:
+            raise VersionError(
+                f"the board speaks protocol version {body[0]}; this host speaks only version "
+                f"{PROTOCOL_VERSION} (update the board's firmware)"
+            )
         _expect_len("HELLO", body, _HELLO_FMT.size)
         v = _HELLO_FMT.unpack(body)
-        if v[0] != PROTOCOL_VERSION:
-            raise FrameError(f"HELLO reports protocol version {v[0]}, expected {PROTOCOL_VERSION}")
         try:
             identity = v[1].rstrip(b"\x00").decode("ascii")
         except UnicodeDecodeError as exc:
             raise FrameError(f"HELLO identity {v[1]!r} is not ASCII") from exc
-        return cls(identity, *v[2:], version=v[0])
+        return cls(identity, *v[2:13], v[0], *v[13:])
 
 
 _SAMPLE_FMT = struct.Struct("<IIHB")

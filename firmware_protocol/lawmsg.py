@@ -12,12 +12,19 @@ Compiled, per sample (``clampcore.jit.kernel``; no allocation, runnable under
 * ``encode_samples(seq, first, clock_us, status, adc, dac, flags, out) -> int``
   and ``decode_samples(frame, n, fields, adc, dac, flags) -> int`` (``SAMPLES_*``).
 
+* ``encode_rules_at(seq, at, bfbits, bi, body, out) -> int``: one RULES_AT frame (board
+  rules ``bf`` as uint32 bits and ``bi``, in force from sample ``at``) onto ``out``;
+  ``decode_rules_at(frame, n, rbits, ri) -> int``: its sample (or ``ERR_*``), the rules'
+  float bits into ``rbits`` and integers into ``ri`` (``bi`` columns; the board's DAC top
+  and fault count are not sent and left as they are).
+
 Plain Python for the rare ones: ``frame_bytes(msg_type, seq, body)`` (any frame),
 ``rules_body(bf, bi)`` / ``parse_rules(body)`` (BOARD_RULES), ``table_bodies(table)`` /
 ``parse_table(body)`` (BLOCK_TABLE), ``ZERO_ON`` / ``ZERO_OFF`` bodies.
 
 Public names: the above, ``MSG_LAWS``, ``MSG_BOARD_RULES``, ``MSG_BLOCK_TABLE``,
-``MSG_ZERO``, ``MSG_SAMPLES``, ``MAX_LAWS``, ``MAX_LAWS_BLOCKED``, ``MAX_TABLE_POINTS``.
+``MSG_ZERO``, ``MSG_RULES_AT``, ``MSG_SAMPLES``, ``MAX_LAWS``, ``MAX_LAWS_BLOCKED``,
+``MAX_TABLE_POINTS``, ``RULES_INTS``, ``RULES_BODY``, ``RULES_AT_BODY``.
 """
 
 from __future__ import annotations
@@ -45,6 +52,7 @@ MSG_LAWS = 0x08
 MSG_BOARD_RULES = 0x09
 MSG_BLOCK_TABLE = 0x0A
 MSG_ZERO = 0x0B
+MSG_RULES_AT = 0x0C  # new board rules from a named sample on (PROTOCOL.md §10.4)
 MSG_SAMPLES = 0x84
 
 _HEADER = 3  # type + seq
@@ -195,6 +203,49 @@ def decode_samples(
 # knows its DAC; the fault value came with CONFIGURE).
 _RULES_INTS = tuple(c for c in range(bl.N_BI) if c not in (bl.BI_DAC_TOP, bl.BI_FAULT_COUNTS))
 _RULES = struct.Struct(f"<{bl.N_BF}f{len(_RULES_INTS)}i")
+
+
+RULES_INTS = np.array(_RULES_INTS, dtype=np.int64)  # bi columns in BOARD_RULES order
+RULES_BODY = _RULES.size  # 48 bytes
+RULES_AT_BODY = 4 + RULES_BODY  # the sample it takes effect at, u32, then the rules
+
+
+@kernel
+def encode_rules_at(
+    seq: int,
+    at: int,
+    bfbits: np.ndarray,
+    bi: np.ndarray,
+    body: np.ndarray,
+    out: np.ndarray,
+) -> int:
+    """One RULES_AT frame onto ``out``: rules ``bf`` (as uint32 bits) and ``bi`` from sample
+    ``at``; ``body`` is scratch of at least ``RULES_AT_BODY`` bytes. Returns bytes written."""
+    _put_u32(body, 0, at & 0xFFFFFFFF)
+    for j in range(bl.N_BF):
+        _put_u32(body, 4 + 4 * j, np.int64(bfbits[j]))
+    for j in range(RULES_INTS.shape[0]):
+        _put_u32(body, 4 + 4 * bl.N_BF + 4 * j, np.int64(bi[RULES_INTS[j]]) & 0xFFFFFFFF)
+    return encode_frame(MSG_RULES_AT, seq & 0xFFFF, body, RULES_AT_BODY, out)
+
+
+@kernel
+def decode_rules_at(frame: np.ndarray, n: int, rbits: np.ndarray, ri: np.ndarray) -> int:
+    """A RULES_AT payload: returns its sample (u32) or ``ERR_*``; float bits into ``rbits``
+    (uint32[N_BF]), the integer rules into their ``bi`` columns of ``ri`` (int64[N_BI])."""
+    if frame[0] != MSG_RULES_AT:
+        return ERR_NOT_THIS_TYPE
+    if n != MIN_PAYLOAD + RULES_AT_BODY:
+        return ERR_BAD_LENGTH
+    at = _le32(frame[3], frame[4], frame[5], frame[6])
+    for j in range(bl.N_BF):
+        o = 7 + 4 * j
+        rbits[j] = _le32(frame[o], frame[o + 1], frame[o + 2], frame[o + 3])
+    for j in range(RULES_INTS.shape[0]):
+        o = 7 + 4 * bl.N_BF + 4 * j
+        v = _le32(frame[o], frame[o + 1], frame[o + 2], frame[o + 3])
+        ri[RULES_INTS[j]] = v - (1 << 32) if v >= (1 << 31) else v  # i32
+    return at
 
 
 def rules_body(bf: np.ndarray, bi: np.ndarray) -> bytes:

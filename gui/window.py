@@ -48,7 +48,7 @@ from clampcore.simulated_rig import start_rig
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from clampcore import stability
-from clampcore.engine import Engine, EngineError, RunOptions, board_owns
+from clampcore.engine import Engine, EngineError, RunOptions
 from clampcore.experiment import Experiment, ExperimentError, load_experiment, validate_element
 from clampcore.health import loop_health
 from clampcore.shared import STATE_FAILED, STATE_RUNNING, STATE_STARTING, STATE_STOPPED
@@ -449,7 +449,6 @@ class TuningWindow(QtWidgets.QMainWindow):
         assert engine.shared is not None
         self.traces.attach(engine.shared, engine.experiment)
         self.health.set_rate(engine.experiment.loop["rate_hz"])
-        self.editor.held_by_board = self._held_by_board
         self.editor.set_experiment(
             self.experiment, {e["name"] for e in engine.experiment.elements}, running=True
         )
@@ -533,19 +532,6 @@ class TuningWindow(QtWidgets.QMainWindow):
             f"{report.g_virtual_max_nS:.4g} nS, beyond its {report.g_stable_max_nS:.4g} nS "
             "(logged in the recording)"
         )
-
-    def _held_by_board(self, target: Target, field: str) -> str | None:
-        """In law mode the board applies some rules itself: those cannot change live."""
-        engine = self.engine
-        if engine is None or not engine.law_mode_requested:
-            return None
-        element = "loop" if target[0] == "section" else target[1]
-        if target[0] == "section" and target[1] != "loop":
-            return None
-        with contextlib.suppress(KeyError):
-            if board_owns(engine.program, element, field):
-                return "the board applies it from the rules it got at start (law mode)"
-        return None
 
     def _fail_start(self, why: str) -> None:
         self.last_error = why

@@ -522,7 +522,8 @@ def _link_read(fd: int, ln: LinkShape, chunk: np.ndarray, now: int) -> int:
 
 
 # Messages the compiled path hands to the core itself; every other one goes to Python.
-_PER_SAMPLE = (MSG_COMMAND, MSG_KEEPALIVE, lawmsg.MSG_LAWS, lawmsg.MSG_ZERO)
+# RULES_AT is here too: it names a sample, so it must not wait for Python (PROTOCOL.md §10.4).
+_PER_SAMPLE = (MSG_COMMAND, MSG_KEEPALIVE, lawmsg.MSG_LAWS, lawmsg.MSG_ZERO, lawmsg.MSG_RULES_AT)
 _SAMPLES_STATUS_AT = 11  # SAMPLES payload: type, seq, first u32, clock u32, status (lawmsg)
 _SAMPLE_STATUS_AT = 13  # SAMPLE payload: type, seq, counter, clock, cmd_seq u16, status
 
@@ -993,6 +994,8 @@ def board_hello(max_rate_hz: int = MAX_RATE_HZ) -> codec.Hello:
         max_rate_hz=max_rate_hz,
         watchdog_min_us=WATCHDOG_MIN_US,
         watchdog_max_us=WATCHDOG_MAX_US,
+        # capabilities, law_queue, mg_groups, max_samples: left at 0, as a port leaves them;
+        # the C core fills them from its build (ccb.h) in the HELLO it sends.
     )
 
 

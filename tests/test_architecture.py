@@ -73,7 +73,8 @@ LAYERS: list[tuple[str, list[str]]] = [
             "clampcore.recorder",
         ],
     ),
-    ("run engine", ["clampcore.engine"]),
+    # preflight: the engine's pure start/refuse decision (board's HELLO, experiment, options)
+    ("run engine", ["clampcore.preflight", "clampcore.engine"]),
     (
         "user interfaces and analysis",
         [

@@ -10,6 +10,7 @@ PROTOCOL.md, quoted by section beside each check.
 from __future__ import annotations
 
 import binascii
+import dataclasses
 import json
 import shutil
 import subprocess
@@ -33,7 +34,7 @@ from cobs import cobs
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-VECTORS = json.loads((C_SOURCE_DIR.parent / "vectors" / "protocol_v1.json").read_text())
+VECTORS = json.loads((C_SOURCE_DIR.parent / "vectors" / "protocol_v2.json").read_text())
 _SETTINGS = settings(derandomize=True, deadline=None, max_examples=150)
 _REASONS = {
     "cobs": codec.FRAME_ERR_COBS,
@@ -246,7 +247,7 @@ def test_parsers_refuse_what_is_not_theirs(core: CoreLibrary) -> None:
     cmd = codec.decode_wire(codec.encode_message(codec.Command(1, (2,)), 3))
     with pytest.raises(codec.FrameError, match="status 4"):  # CCB_E_TYPE
         core.parse_configure(cmd)
-    cfg = codec.decode_wire(codec.encode_message(codec.Configure(1, 1, 1, (1,), version=2), 3))
+    cfg = codec.decode_wire(codec.encode_message(codec.Configure(1, 1, 1, (1,), version=1), 3))
     with pytest.raises(codec.FrameError, match="status 6"):  # CCB_E_VERSION
         core.parse_configure(cfg)
     with pytest.raises(codec.FrameError, match="status 5"):  # CCB_E_LENGTH
@@ -312,8 +313,30 @@ def test_hello_handshake(core: CoreLibrary) -> None:
     assert rig.state() == codec.STATE_UNCONFIGURED and rig.rate_hz() == 0
     Host(rig).send(codec.GetHello())
     frames = _frames(rig)
-    assert frames == [(0, BOARD)]  # the board's own frame counter starts at 0
+    # The board's own frame counter starts at 0; HELLO states what the build can do
+    # (PROTOCOL.md §4.1): law mode, the default queue of ccb.h, one Mg group, one sample
+    # per SAMPLES frame.
+    build = {"capabilities": codec.CAP_LAW, "law_queue": 1024, "mg_groups": 1, "max_samples": 1}
+    assert frames == [(0, dataclasses.replace(BOARD, **build))]
     assert rig.dac_writes() == 0  # nothing is written before CONFIGURE (§5)
+
+
+@pytest.mark.parametrize(
+    ("variant", "build"),
+    [
+        ("no-law", {"capabilities": 0, "law_queue": 0, "mg_groups": 0, "max_samples": 0}),
+        ("small-law", {"capabilities": codec.CAP_LAW, "law_queue": 8, "mg_groups": 1}),
+    ],
+)
+def test_hello_states_what_each_build_can_do(tmp_path: Path, variant: str, build: dict) -> None:
+    """PROTOCOL.md §4.1: a build without law mode is still a version-2 board, with the law
+    capability off and no queue; a small law build states its own queue depth."""
+    small = CoreLibrary(build_core_library(tmp_path, BUILD_VARIANTS[variant]))
+    rig = small.rig(BOARD)
+    Host(rig).send(codec.GetHello())
+    ((_, hello),) = _frames(rig)
+    assert hello.version == 2 and hello.evaluates_laws == bool(build["capabilities"])
+    assert {k: getattr(hello, k) for k in build} == build
 
 
 @pytest.mark.parametrize(
@@ -592,3 +615,85 @@ def test_board_output_is_always_well_formed(core: CoreLibrary) -> None:
         binascii.crc_hqx(p[:-2], 0xFFFF) == int.from_bytes(p[-2:], "little") for p in payloads
     )
     assert crcs_ok
+
+
+# ------------------------------------------------------------ settled rules (§5.7) ---
+def _tick_at(rig: MemoryRig, t_us: int) -> None:
+    rig.set_clock(t_us)
+    rig.tick()
+
+
+def test_only_commands_laws_and_keepalives_restart_the_watchdog(core: CoreLibrary) -> None:
+    """§5.7 rule 1: GET_STATUS (an empty body, answered) does not hold the watchdog off."""
+    rig, host = _running(core, watchdog_us=3_000)
+    _tick_at(rig, 1_000)
+    host.send(codec.Command(0, (42,)))
+    for k in range(2, 8):
+        _tick_at(rig, 1_000 * k)
+        host.send(codec.GetStatus())
+    assert rig.status().watchdog_trips == 1 and rig.dac(0) == FAULT
+
+
+def test_a_silent_host_trips_the_watchdog_once_per_silence(core: CoreLibrary) -> None:
+    """§5.7 rule 2: one trip and one REPORT per silence, however many timeouts it lasts;
+    the next applied COMMAND lifts it, and a new silence trips it again."""
+    rig, host = _running(core, watchdog_us=2_000)
+    _tick_at(rig, 1_000)
+    host.send(codec.Command(0, (42,)))
+    _frames(rig)
+    for k in range(2, 12):  # 10 ms of silence: five timeouts
+        _tick_at(rig, 1_000 * k)
+    reports = _only(rig, codec.Status)
+    assert len(reports) == 1 and rig.status().watchdog_trips == 1
+    host.send(codec.Command(10, (43,)))
+    for k in range(12, 16):
+        _tick_at(rig, 1_000 * k)
+    assert rig.status().watchdog_trips == 2
+
+
+def test_after_a_trip_cmd_seq_names_the_last_command_and_missing_counts_from_it(
+    core: CoreLibrary,
+) -> None:
+    """§5.7 rules 3 and 4: while tripped, SAMPLE.cmd_seq still names the last applied
+    COMMAND (no longer in force: FAULT_OUTPUT is set); the next COMMAND's missing samples
+    are counted from the one that last answered."""
+    rig, host = _running(core, watchdog_us=2_000)
+    _tick_at(rig, 1_000)
+    seq = host.send(codec.Command(0, (42,)))
+    _frames(rig)
+    for k in range(2, 7):  # samples 1..5, the watchdog trips at sample 3
+        _tick_at(rig, 1_000 * k)
+    last = _only(rig, codec.Sample)[-1]
+    assert last.cmd_seq == seq and last.status & codec.STATUS_FAULT_OUTPUT
+    host.send(codec.Command(5, (43,)))  # samples 1..4 were never answered
+    assert rig.status().missing_commands == 4 and rig.dac(0) == 43
+
+
+@pytest.mark.parametrize(
+    ("back", "applied"), [(2**31, False), (2**31 - 1, True)], ids=["2^31 back", "2^31-1 back"]
+)
+def test_the_modulo_window_of_answers(core: CoreLibrary, back: int, applied: bool) -> None:
+    """§5.7 rule 5: `answers` is a sample already sent when (next − answers) mod 2^32 lies in
+    1 .. 2^31 − 1 (serial-number arithmetic, RFC 1982); 2^31 back reads as the future."""
+    rig, host = _running(core)
+    for k in range(4):
+        _tick_at(rig, 1_000 * (k + 1))
+    host.send(codec.Command((4 - back) % 2**32, (77,)))
+    assert (rig.dac(0) == 77) == applied
+    assert rig.status().rejected == (0 if applied else 1)
+
+
+def test_start_and_stop_clear_the_watchdog_bit(core: CoreLibrary) -> None:
+    """§5.7 rule 6: STATUS carries FAULT_OUTPUT and WATCHDOG only; STOP and START clear
+    WATCHDOG (and the trip), FAULT_OUTPUT stays until a COMMAND is applied."""
+    rig, host = _running(core, watchdog_us=2_000)
+    for k in range(1, 5):
+        _tick_at(rig, 1_000 * k)
+    assert rig.status().status == codec.STATUS_FAULT_OUTPUT | codec.STATUS_WATCHDOG
+    _frames(rig)  # the samples and the trip's REPORT
+    host.send(codec.Stop())
+    (stopped,) = _only(rig, codec.Status)
+    assert stopped.status == codec.STATUS_FAULT_OUTPUT
+    host.send(codec.Start())
+    (started,) = _only(rig, codec.Status)
+    assert started.status == codec.STATUS_FAULT_OUTPUT and started.watchdog_trips == 0

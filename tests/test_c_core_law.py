@@ -86,6 +86,7 @@ def laws_body(first: int, laws: list[np.ndarray], blocked: bool, seen: int = 0) 
 # ccb.h's defaults, which the rig's library is built with (simulated_rig.ccore).
 LAW_QUEUE = 1024
 BLOCK_POINTS = 1025
+RULES_QUEUE = 4
 
 
 class ReferenceBoard:
@@ -98,6 +99,8 @@ class ReferenceBoard:
         self.bf, self.bi, self.bs, self.law, _ = bl.new_board_arrays()
         self.table = np.zeros(BLOCK_POINTS, dtype=np.float32)
         self.queue: dict[int, tuple[int, np.ndarray]] = {}  # slot -> (sample, law)
+        # RULES_AT held until their sample, in arrival order: (sample, bf, bi)
+        self.rules_at: list[tuple[int, np.ndarray, np.ndarray]] = []
         self.state = codec.STATE_UNCONFIGURED
         self.rate_hz = self.n_inputs = self.watchdog_us = self.fault = 0
         self.have_cmd = self.tripped = self.flags = self.law_mode = 0
@@ -165,6 +168,36 @@ class ReferenceBoard:
             self.last_rx_us = now_us  # restarts the watchdog and lifts a trip
             self.tripped = 0
 
+    def _on_rules_at(self, body: bytes) -> None:
+        """§10.4 RULES_AT: the sample (u32), then a BOARD_RULES body; held until that
+        sample's tick. Malformed (length, block_shift outside -1..16): unknown. Not running
+        in law mode, another block_shift than the table's, or RULES_QUEUE held: rejected.
+        For a sample already taken: late (counted with the late laws), applied next tick."""
+        bf, bi = self.bf.copy(), self.bi.copy()  # DAC top and fault count are not sent
+        try:
+            lawmsg.parse_rules(body[4:], bf, bi)
+        except ValueError:
+            self._unknown()
+            return
+        shift = int(bi[bl.BI_BLOCK_SHIFT])
+        if len(body) != lawmsg.RULES_AT_BODY or not -1 <= shift <= 16:
+            self._unknown()
+            return
+        if (
+            self.state != codec.STATE_RUNNING
+            or not self.law_mode
+            or shift != self.bi[bl.BI_BLOCK_SHIFT]
+            or len(self.rules_at) >= RULES_QUEUE
+        ):
+            self.rejected += 1
+            self.flags |= codec.STATUS_RX_ERROR
+            return
+        (at,) = struct.unpack_from("<I", body)
+        if at < self.counter:
+            self.laws_late += 1
+            self.flags |= codec.STATUS_LATE
+        self.rules_at.append((at, bf, bi))
+
     def feed(self, payload: bytes, now_us: int) -> None:
         typ, seq = payload[0], payload[1] | payload[2] << 8
         body = payload[3:-2]
@@ -173,6 +206,8 @@ class ReferenceBoard:
             self._on_laws(payload, now_us)
         elif typ == lawmsg.MSG_ZERO and len(body) == 1:
             self.bs[bl.BS_HOLD_ZERO] = 1 if body[0] != 0 else 0  # on arrival
+        elif typ == lawmsg.MSG_RULES_AT:
+            self._on_rules_at(body)
         elif typ in (lawmsg.MSG_BOARD_RULES, lawmsg.MSG_BLOCK_TABLE):  # READY only
             if self.state != codec.STATE_READY:
                 self._reply(seq, codec.RESULT_BAD_STATE)
@@ -196,12 +231,14 @@ class ReferenceBoard:
             self.state = codec.STATE_READY
             self.have_cmd = self.tripped = self.law_mode = 0
             self.queue.clear()
+            self.rules_at.clear()
             self._reply(seq, codec.RESULT_OK)
         elif typ == codec.MSG_START:  # counters cover one run; laws queued in READY stay
             self.unknown = self.rejected = self.trips = self.applied = 0
             self.counter = self.have_cmd = self.tripped = self.flags = 0
             self.laws_late = self.laws_ahead = 0
             self.bs[:] = bl.new_board_arrays()[2]
+            self.rules_at.clear()  # a change of the last run never acts in this one
             self.state = codec.STATE_RUNNING
             self._reply(seq, codec.RESULT_OK)
             self.last_rx_us = now_us
@@ -220,6 +257,8 @@ class ReferenceBoard:
             self.tripped = 1
             self.trips += 1
             self._status(0, codec.RESULT_REPORT)
+        while self.rules_at and self.rules_at[0][0] <= k:  # changes due at or before k
+            _, self.bf, self.bi = self.rules_at.pop(0)
         due, law = self.queue.get(k % LAW_QUEUE, (-1, None))
         if due == k:
             bl.board_set_law(self.bs, self.law, law, k)
@@ -402,6 +441,8 @@ _events = st.lists(
         ),
         st.tuples(st.just("zero"), st.booleans()),
         st.tuples(st.just("wait"), st.integers(0, 2 * WATCHDOG_US)),
+        # a live rule change: late, due, ahead (held, or refused when 4 are held)
+        st.tuples(st.just("rules_rel"), st.tuples(st.integers(-4, 12), st.sampled_from([0, 1]))),
     ),
     min_size=20,
     max_size=80,
@@ -420,6 +461,10 @@ def test_any_run_gives_the_reference_bytes_and_dac_counts(core: CoreLibrary, eve
             offset, laws, blocked = arg
             first = max(0, pair.ref.counter + offset)
             pair.send(lawmsg.MSG_LAWS, laws_body(first, laws, blocked))
+        elif kind == "rules_rel":
+            offset, which = arg
+            at = max(0, pair.ref.counter + offset)
+            pair.send(lawmsg.MSG_RULES_AT, struct.pack("<I", at) + _RULE_CHANGES[which])
         else:
             _play_one(pair, kind, arg)
     assert pair.c.law_counts() == (pair.ref.laws_late, pair.ref.laws_ahead)
@@ -432,6 +477,126 @@ def _play_one(pair: Pair, kind: str, arg: object) -> bytes:
         return pair.send(lawmsg.MSG_ZERO, lawmsg.ZERO_ON if arg else lawmsg.ZERO_OFF)
     pair.wait(int(arg))
     return b""
+
+
+def _rules_at(at: int, **loop: object) -> bytes:
+    """RULES_AT body: the sample, then the host's board rules for EXPERIMENT with ``loop``
+    fields changed (``clampcore.law.board_arrays``, as the host's live change makes them)."""
+    exp = load_experiment(EXPERIMENT)
+    exp.loop.update(loop)
+    bf, bi, *_ = board_arrays(build_program(exp), CONV, LAW_MODE, LIFETIME)
+    return struct.pack("<I", at) + lawmsg.rules_body(bf, bi)
+
+
+def _dac_for(i_pA: float) -> int:
+    """PROTOCOL.md §6: the DAC count of a current through 400 pA/V and a ±10 V, 16-bit DAC,
+    floor(x + 1/2) of x = (V + 10 V)/20 V · 65535."""
+    return math.floor((i_pA / 400.0 + 10.0) / 20.0 * 65535 + 0.5)
+
+
+# Two rule changes for the random runs: a lower limit with spike detection moved, and the
+# threshold_reset at another threshold and conductance.
+_RULE_CHANGES = [
+    _rules_at(0, max_current_pA=150.0, spike_threshold_mV=-60.0)[4:],
+    lawmsg.rules_body(*board_arrays(build_program({**EXPERIMENT, "element": [
+        *EXPERIMENT["element"][:2],
+        {**EXPERIMENT["element"][2], "threshold_mV": -55.0, "g_nS": 30.0},
+    ]}), CONV, LAW_MODE, LIFETIME)[:2]),
+]  # fmt: skip
+
+
+def test_a_rule_change_acts_from_its_sample(core: CoreLibrary) -> None:
+    """PROTOCOL.md §10.4 RULES_AT: a lower current limit named for sample 5 clips from
+    sample 5 on, not before; the C core and the reference board send the same bytes."""
+    pair = Pair(core)
+    pair.setup([law_bits(1000.0, 0.0)] * 12, blocked=False)  # 1000 pA: beyond either limit
+    rest = adc_at(-70.0)
+    sent = pair.tick(rest)
+    sent += pair.send(lawmsg.MSG_RULES_AT, _rules_at(5, max_current_pA=200.0))
+    assert sent.count(b"\x00") == 1  # RULES_AT has no reply
+    for _ in range(9):
+        sent += pair.tick(rest)
+    dacs = [s[3] for s in _samples(sent)]
+    assert dacs == [_dac_for(400.0)] * 5 + [_dac_for(200.0)] * 5  # 36044, then 34406
+    assert all(s[4] & bl.BF_FLAG_LIMITED for s in _samples(sent))
+
+
+def test_late_full_and_misplaced_rule_changes(core: CoreLibrary) -> None:
+    """A change for a sample already taken acts at the next tick, counted with the late laws
+    and flagged LATE; beyond the board's holding queue, in READY, or with another block
+    table shift it is rejected; a wrong length is unknown (PROTOCOL.md §10.4, §5.5)."""
+    pair = Pair(core)
+    pair.setup([law_bits(1000.0, 0.0)] * 20, blocked=False)
+    rest = adc_at(-70.0)
+    for _ in range(3):
+        pair.tick(rest)
+    pair.send(lawmsg.MSG_RULES_AT, _rules_at(1, max_current_pA=300.0))
+    (_, status, _, dac, _) = _samples(pair.tick(rest))[0]
+    assert dac == _dac_for(300.0) and status & codec.STATUS_LATE
+    assert pair.c.law_counts()[0] == 1
+    for at in range(10, 16):  # a queue of 4 (ccb.h CCB_RULES_QUEUE): the last two refused
+        pair.send(lawmsg.MSG_RULES_AT, _rules_at(at, max_current_pA=250.0))
+    status_of = pair.send_message(codec.GetStatus())
+    (_, reply), *_ = [codec.parse_payload(p) for p in reference_deframe(status_of)[0]]
+    assert reply.rejected == 2
+    pair.send(lawmsg.MSG_RULES_AT, _rules_at(30)[:-1])  # one byte short
+    bad_shift = bytearray(_rules_at(30))
+    bad_shift[4 + 44 : 4 + 48] = struct.pack("<i", -1)  # block_shift: no table
+    pair.send(lawmsg.MSG_RULES_AT, bytes(bad_shift))
+    c = pair.c  # STOP and READY on the C core alone (the reference board runs one run)
+    c.feed(codec.encode_message(codec.Stop(), 90))
+    c.feed(lawmsg.frame_bytes(lawmsg.MSG_RULES_AT, 91, _rules_at(30)))  # READY: rejected
+    c.take_tx()
+    c.feed(codec.encode_message(codec.GetStatus(), 92))
+    ((_, reply),) = [codec.parse_payload(p) for p in reference_deframe(c.take_tx())[0]]
+    assert (reply.unknown_messages, reply.rejected) == (1, 4)
+
+
+def test_a_batched_board_sends_the_same_samples_in_fewer_frames(
+    core: CoreLibrary, tmp_path_factory: pytest.TempPathFactory
+) -> None:
+    """CCB_SAMPLES_PER_FRAME=8 (PROTOCOL.md §10.4): the same samples, DAC counts and flags
+    as one sample to a frame, 8 to a SAMPLES frame, the rest sent before STOP's reply;
+    HELLO says 8."""
+    batched = CoreLibrary(
+        build_core_library(tmp_path_factory.mktemp("b8"), BUILD_VARIANTS["batched"])
+    )
+    sent = {}
+    for name, lib in (("one", core), ("eight", batched)):
+        rig = lib.rig(HELLO)
+        rig.feed(codec.encode_message(codec.GetHello(), 1))
+        hello = codec.parse_payload(reference_deframe(rig.take_tx())[0][0])[1]
+        assert hello.max_samples == (8 if name == "eight" else 1)
+        for wire in _setup_wires():
+            rig.feed(wire)
+        laws = [law_bits(100.0 * i, 5.0) for i in range(20)]
+        rig.feed(lawmsg.frame_bytes(lawmsg.MSG_LAWS, 50, laws_body(0, laws, False)))
+        rig.feed(codec.encode_message(codec.Start(), 51))
+        rig.take_tx()
+        for k in range(20):
+            rig.set_clock(PERIOD_US * (k + 1))
+            rig.set_adc(0, adc_at(-70.0 + 2.0 * k))  # crosses spike detection at -50 mV
+            rig.tick()
+        rig.feed(codec.encode_message(codec.Stop(), 52))
+        sent[name] = reference_deframe(rig.take_tx())[0]
+    fields = np.zeros(lawmsg.N_FIELDS, dtype=np.int64)
+    adc, dac, flags = (np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64) for _ in range(3))
+
+    def samples(payloads: list[bytes]) -> tuple[list[int], list[tuple[int, int, int, int]]]:
+        counts, rows = [], []
+        for p in payloads:
+            frame = np.frombuffer(p, dtype=np.uint8)
+            n = lawmsg.decode_samples(frame, frame.size, fields, adc, dac, flags)
+            if n > 0:
+                counts.append(n)
+                first = int(fields[lawmsg.SAMPLES_FIRST])
+                rows += [(first + i, int(adc[i]), int(dac[i]), int(flags[i])) for i in range(n)]
+        return counts, rows
+
+    one, eight = samples(sent["one"]), samples(sent["eight"])
+    assert one[0] == [1] * 20 and eight[0] == [8, 8, 4]
+    assert eight[1] == one[1] and [r[0] for r in one[1]] == list(range(20))
+    assert any(r[3] & bl.BF_FLAG_SPIKE for r in one[1])  # the comparison covered a spike
 
 
 # ------------------------------------------------------------------ rules, one by one ---

@@ -96,7 +96,9 @@ def test_refuses_a_rate_above_the_boards_maximum(tmp_path: Path) -> None:
         engine.start(duration_s=0.1, out=tmp_path / "too_fast.nwb")
         assert engine.wait(30.0)
         result = engine.finish()
-    assert result.error == "refusing to start: rate_hz 10000 > the board's 5000"
+    assert result.error == (
+        "refusing to start: [loop] rate_hz = 10000 is above this board's maximum, 5000 Hz"
+    )
     assert result.samples == 0 and result.nwb_path is None
 
 

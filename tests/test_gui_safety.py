@@ -228,16 +228,23 @@ def test_open_during_a_run_or_with_edits_asks(qtbot, tmp_path):
     assert window.experiment.element("imposed_spike")["threshold_mV"] == -47.0
 
 
-def test_law_mode_rules_of_the_board_are_fixed_and_zero_still_works(qtbot, tmp_path):
+def test_law_mode_rules_of_the_board_change_live_and_zero_still_works(qtbot, tmp_path):
     experiment = {**LEAK_EXPERIMENT, "loop": {**LEAK_EXPERIMENT["loop"], "mode": "law"}}
     window = make_window(qtbot, tmp_path, experiment)
     start(qtbot, window)
     ed = window.editor
-    # The board applies the current limit and spike detection itself (PROTOCOL.md §10):
-    # not editable during the run, and the form says why; the leak's law still is.
+    # The board applies the current limit itself in law mode (PROTOCOL.md §10): a live
+    # change reaches it as RULES_AT (§10.4), so the form lets it be edited like a law's.
     limit = ed.widget("loop", "max_current_pA")
-    assert limit.isReadOnly() and "law mode" in ed._row("loop", "max_current_pA").note.toolTip()
-    assert not ed.widget("extra_leak", "g_nS").isReadOnly()
+    assert not limit.isReadOnly() and not ed.widget("extra_leak", "g_nS").isReadOnly()
+    # Before: the leak's own current, I = -g (V - E) at the passive steady state
+    # V = (5 nS x -70 mV + 2 nS x -40 mV) / 7 nS = -61.4 mV: 42.9 pA, well above 20 pA.
+    changed = written(window)
+    mail = _mail(window)
+    assert ed.enter_text("loop", "max_current_pA", "20") is None
+    assert _mail(window) == mail + 1 and window.engine.experiment.loop["max_current_pA"] == 20
+    wait_samples(qtbot, window, 4000)
+    esc = written(window)  # the zero request acts at the board on arrival: from here on
     # Esc holds 0 pA in law mode too (the loop turns it into the board's zero request).
     QTest.keyClick(ed.widget("extra_leak", "g_nS"), QtCore.Qt.Key.Key_Escape)
     assert window.zero_held and int(window.engine.shared.ctrl[CTRL_ZERO]) == 1
@@ -246,6 +253,10 @@ def test_law_mode_rules_of_the_board_are_fixed_and_zero_still_works(qtbot, tmp_p
     rec = stop(qtbot, window)
     i = rec["columns"]["i_pA"]
     assert i.size > before + 3000
-    # What the board applied: 0 pA to the nearest DAC step (16 bits over 20 V at 400 pA/V).
+    # What the board applied, to the nearest DAC step (16 bits over 20 V at 400 pA/V).
     half_step_pA = 400.0 * 20.0 / 65535 / 2
+    assert np.all(i[changed - 1000 : changed] > 40.0)  # the leak's 42.9 pA, unclipped
+    # From the change on (after the look-ahead of 10 ms = 200 samples): clipped to 20 pA.
+    clipped = i[changed + 1000 : esc]
+    assert clipped.size > 2000 and np.all(np.abs(clipped - 20.0) <= half_step_pA + 1e-9)
     assert np.all(np.abs(i[before + 2000 :]) <= half_step_pA + 1e-12)

@@ -29,11 +29,12 @@ from clampcore.calibration import (
     conversion_array,
     pA_to_counts,
 )
-from clampcore.engine import Engine, EngineError, RunOptions, law_lead_samples
+from clampcore.engine import Engine, RunOptions
 from clampcore.experiment import load_experiment
 from clampcore.health import loop_health
 from clampcore.lawloop import LW_HI, new_law_link, process_rx_law, top_up_laws
 from clampcore.nwb import read_nwb_summary, validate_nwb
+from clampcore.preflight import law_lead_samples
 from clampcore.program import build_program
 from clampcore.shared import CTRL_WRITTEN, ST_LATE_SPIKES, RingLayout, SharedRun
 
@@ -197,23 +198,22 @@ def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
     assert "current mode" in (result.notice or "")
 
 
-def test_live_changes_in_law_mode_reach_the_law_or_are_refused(tmp_path):
+def test_live_changes_in_law_mode_reach_the_law_and_the_boards_rules(tmp_path):
     """A conductance change is part of the law: applied from the sample the host is making
-    laws for, and logged with it. A rule the board applies itself (the current limit) cannot
-    change behind the board's back, so it is refused with the reason."""
+    laws for, and logged with it. A rule the board applies itself (the current limit) goes
+    to the board as RULES_AT naming that sample (PROTOCOL.md §10.4): the board clips from
+    exactly the logged sample on."""
     engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall"), rig_factory=start_rig)
     engine.start(duration_s=None, out=tmp_path / "live.nwb")
     deadline = time.monotonic() + 60
     while engine.status().get("samples", 0) < 2000:
         assert time.monotonic() < deadline and engine.running
         time.sleep(0.02)
-    try:
-        engine.change("loop", "max_current_pA", 300.0)
-    except EngineError as exc:
-        assert "law mode" in str(exc)
-    else:
-        raise AssertionError("a board-owned rule changed while running")
     engine.change("extra_leak", "g_nS", 12.0)
+    time.sleep(0.2)
+    # The background conductance (3 nS at 0 mV, the cell near -70 mV) injects about
+    # 3 nS x 70 mV = 210 pA: a 100 pA limit clips it.
+    engine.change("loop", "max_current_pA", 100.0)
     time.sleep(0.3)
     result = engine.finish()
     assert result.error is None, result.error
@@ -224,6 +224,12 @@ def test_live_changes_in_law_mode_reach_the_law_or_are_refused(tmp_path):
     first = int(np.flatnonzero(g == 12.0)[0])
     assert np.all(g[:first] == 5.0) and np.all(g[first:] == 12.0)
     assert counters[first] == change["sample"]
+    (limit,) = [c for c in rec["param_changes"] if c.get("field") == "max_current_pA"]
+    at = int(np.flatnonzero(counters == limit["sample"])[0])
+    step_pA = 400.0 * 20.0 / 65535  # one DAC count through 400 pA/V (PROTOCOL.md §6)
+    i_pA = rec["i_pA"]
+    assert np.all(np.abs(i_pA[at:]) <= 100.0 + step_pA / 2)  # the board's new limit
+    assert np.max(np.abs(i_pA[at - 200 : at])) > 100.0 + step_pA  # not before it
 
 
 def test_run_command_in_law_mode_says_so(tmp_path, capsys):

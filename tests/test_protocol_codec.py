@@ -281,7 +281,7 @@ def _payload(msg_type: int, body: bytes, seq: int = 1) -> bytes:
         (_payload(0x7F, b""), "unknown message type 0x7F"),
         (_payload(codec.MSG_START, b"\x01"), "body must be 0 bytes"),
         (_payload(codec.MSG_COMMAND, b"\x01\x00\x00\x00\x05"), "counts"),
-        (_payload(codec.MSG_CONFIGURE, bytes([2]) + bytes(11)), "version 2"),
+        (_payload(codec.MSG_CONFIGURE, bytes([1]) + bytes(11)), "version 1"),
         (_payload(codec.MSG_HELLO, bytes(49)), "version 0"),
         (_payload(codec.MSG_STATUS, bytes(45)), "46 bytes"),
         (_payload(codec.MSG_STATUS, bytes([7]) + bytes(45)), "state = 7"),
@@ -428,7 +428,7 @@ assert refused == len(junk) - 1  # no cut of it is a frame (its CRC never matche
 print("ok", codec.crc16.__class__.__name__)
 """
     env = dict(os.environ, NUMBA_DISABLE_JIT="1")
-    vectors = ROOT / "firmware_protocol" / "vectors" / "protocol_v1.json"
+    vectors = ROOT / "firmware_protocol" / "vectors" / "protocol_v2.json"
     proc = subprocess.run(
         [sys.executable, "-c", script, str(vectors)],
         capture_output=True,
@@ -440,3 +440,11 @@ print("ok", codec.crc16.__class__.__name__)
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.split() == ["ok", "function"]  # plain functions, not dispatchers
     assert json.loads((vectors).read_text())["protocol_version"] == codec.PROTOCOL_VERSION
+
+
+def test_a_hello_of_another_version_is_refused_by_name() -> None:
+    """PROTOCOL.md §4.1 and §9: the host reads the version byte first and says which
+    version the board speaks; a version-1 HELLO (49 bytes, no capabilities) is one."""
+    v1_body = bytes([1]) + bytes(48)
+    with pytest.raises(codec.VersionError, match=r"speaks protocol version 1; .* only version 2"):
+        codec.Hello.from_body(v1_body)

@@ -1,4 +1,4 @@
-"""The Python codec passes the shared vectors (firmware_protocol/vectors/protocol_v1.json).
+"""The Python codec passes the shared vectors (firmware_protocol/vectors/protocol_v2.json).
 
 The vector file is built from struct, binascii.crc_hqx and the `cobs` package only
 (firmware_protocol/vectors/generate.py), so it is an outside reference for the codec;
@@ -17,7 +17,7 @@ from clampcore.firmware_protocol import codec
 from cobs import cobs
 
 VECTOR_DIR = Path(codec.__file__).resolve().parent / "vectors"
-VECTORS = json.loads((VECTOR_DIR / "protocol_v1.json").read_text())
+VECTORS = json.loads((VECTOR_DIR / "protocol_v2.json").read_text())
 _REASONS = {
     "cobs": codec.FRAME_ERR_COBS,
     "short": codec.FRAME_ERR_SHORT,

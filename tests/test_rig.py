@@ -529,8 +529,8 @@ def test_unknown_messages_and_bad_frames_are_counted_and_ignored(exp_path: Path)
 
 
 def test_frames_a_board_must_ignore_from_the_shared_vectors(exp_path: Path) -> None:
-    """firmware_protocol/vectors/protocol_v1.json's ``board_ignores``: counted, never acted on."""
-    vectors = json.loads((ROOT / "firmware_protocol" / "vectors" / "protocol_v1.json").read_text())
+    """firmware_protocol/vectors/protocol_v2.json's ``board_ignores``: counted, never acted on."""
+    vectors = json.loads((ROOT / "firmware_protocol" / "vectors" / "protocol_v2.json").read_text())
     frames = [bytes.fromhex(v["wire"]) for v in vectors["board_ignores"]]
     assert frames
     with start_rig(exp_path, clock="lockstep") as rig:

@@ -130,12 +130,10 @@ def test_bound_holds_on_the_simulated_rig_in_lockstep(tmp_path):
     devs = {}
     for factor in (0.9, 1.1):
         g = factor * g_max
-        engine = Engine(
-            _feedback_experiment(g, 1),
-            "sim",
-            RunOptions(rig_clock="lockstep"),
-            rig_factory=start_rig,
-        )
+        # The engine guards stability at start (clampcore.preflight): the unstable case runs
+        # only with the override, as `run --override-stability` does.
+        options = RunOptions(rig_clock="lockstep", override_stability=True)
+        engine = Engine(_feedback_experiment(g, 1), "sim", options, rig_factory=start_rig)
         engine.start(duration_s=0.05, out=tmp_path / f"f{factor}.nwb")
         assert engine.wait(120.0)
         result = engine.finish()

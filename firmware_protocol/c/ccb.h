@@ -32,6 +32,13 @@
  *                       runs it in current mode.
  *   CCB_BLOCK_POINTS    float32 points of the Mg block table (default 1025 = 4.0 KiB,
  *                       what the host sends for any ADC of 10 bits or more; 2 or more).
+ *   CCB_RULES_QUEUE     law mode: live rule changes (RULES_AT) the board holds until their
+ *                       sample (default 4, at least 1; 52 bytes each).
+ *   CCB_SAMPLES_PER_FRAME  law mode: samples per SAMPLES frame (default 1, at most 47;
+ *                       the byte budget of PROTOCOL.md §10.4).  The board sends a frame
+ *                       when it holds this many samples, and what it holds before the
+ *                       STATUS reply to STOP.  Each sample waits up to n - 1 periods:
+ *                       the host's look-ahead must cover that too.
  *
  * Law mode needs <math.h>'s floorf (link with -lm) and ccb_law.c compiled without fused
  * multiply-add (gcc/clang: -ffp-contract=off), so that its results equal the host's.
@@ -49,7 +56,7 @@ extern "C" {
 #endif
 
 /* ---- Protocol constants (§2, §3) -------------------------------------- */
-#define CCB_PROTOCOL_VERSION 1u
+#define CCB_PROTOCOL_VERSION 2u
 #define CCB_MAX_PAYLOAD 254u   /* type + seq + body + CRC, so COBS adds 1 byte */
 #define CCB_MAX_WIRE (CCB_MAX_PAYLOAD + 2u) /* + COBS code byte + 0x00 delimiter */
 #define CCB_MIN_PAYLOAD 5u     /* type (1) + seq (2) + CRC (2) */
@@ -62,7 +69,7 @@ extern "C" {
 #define CCB_WIRE_LEN(p) ((p) + 2u)
 
 /* Payload lengths of each message (§4). */
-#define CCB_HELLO_PAYLOAD 54u
+#define CCB_HELLO_PAYLOAD 61u
 #define CCB_STATUS_PAYLOAD 51u
 #define CCB_SAMPLE_PAYLOAD(n_in) (16u + 2u * (n_in))
 #define CCB_CONFIGURE_PAYLOAD(n_out) (15u + 2u * (n_out))
@@ -81,6 +88,7 @@ extern "C" {
 #define CCB_MSG_BOARD_RULES 0x09u
 #define CCB_MSG_BLOCK_TABLE 0x0Au
 #define CCB_MSG_ZERO 0x0Bu
+#define CCB_MSG_RULES_AT 0x0Cu    /* new board rules from a named sample on, §10.4 */
 #define CCB_MSG_HELLO 0x81u
 #define CCB_MSG_SAMPLE 0x82u
 #define CCB_MSG_STATUS 0x83u
@@ -89,6 +97,10 @@ extern "C" {
 /* Law mode's payloads (§10.4): SAMPLES of n samples, the BOARD_RULES body. */
 #define CCB_SAMPLES_PAYLOAD(n) (15u + 5u * (n))
 #define CCB_BOARD_RULES_BODY 48u
+#define CCB_RULES_AT_BODY (4u + CCB_BOARD_RULES_BODY) /* the sample, u32, then the rules */
+
+/* HELLO.capabilities bits (§4.1). */
+#define CCB_CAP_LAW 0x01u /* evaluates the current law (§10): built with CCB_LAW_QUEUE > 0 */
 
 /* Status bits (§4.2). */
 #define CCB_STATUS_FAULT_OUTPUT 0x01u
@@ -141,9 +153,19 @@ extern "C" {
 #ifndef CCB_BLOCK_POINTS
 #define CCB_BLOCK_POINTS 1025u
 #endif
-/* The board sends HELLO, STATUS, SAMPLE and SAMPLES (of one sample); HELLO is the
- * longest for <= 19 inputs. */
-#define CCB_TX_BUF CCB_WIRE_LEN(CCB_HELLO_PAYLOAD)
+#ifndef CCB_SAMPLES_PER_FRAME
+#define CCB_SAMPLES_PER_FRAME 1u
+#endif
+#ifndef CCB_RULES_QUEUE
+#define CCB_RULES_QUEUE 4u
+#endif
+/* The board sends HELLO, STATUS, SAMPLE and SAMPLES (of CCB_SAMPLES_PER_FRAME). */
+#define CCB_TX_BUF_MIN CCB_WIRE_LEN(CCB_HELLO_PAYLOAD)
+#if CCB_LAW_QUEUE > 0 && CCB_WIRE_LEN(CCB_SAMPLES_PAYLOAD(CCB_SAMPLES_PER_FRAME)) > CCB_TX_BUF_MIN
+#define CCB_TX_BUF CCB_WIRE_LEN(CCB_SAMPLES_PAYLOAD(CCB_SAMPLES_PER_FRAME))
+#else
+#define CCB_TX_BUF CCB_TX_BUF_MIN
+#endif
 
 /* Result of the encoders: bytes written and a CCB_OK / CCB_E_* status. */
 typedef struct ccb_result {
@@ -186,6 +208,12 @@ typedef struct ccb_board_info { /* HELLO body */
     uint8_t adc_bits, dac_bits, n_inputs, n_outputs;
     int32_t adc_min_uV, adc_max_uV, dac_min_uV, dac_max_uV;
     uint32_t max_rate_hz, watchdog_min_us, watchdog_max_us;
+    /* What the build can do (§4.1); ccb_init fills these from the build options, so a
+     * port leaves them at 0: CCB_CAP_* bits, laws held ahead (CCB_LAW_QUEUE), Mg-blocked
+     * groups evaluated, most samples per SAMPLES frame (CCB_SAMPLES_PER_FRAME). */
+    uint8_t capabilities;
+    uint32_t law_queue;
+    uint8_t mg_groups, max_samples;
 } ccb_board_info;
 
 typedef struct ccb_status { /* STATUS body */
@@ -244,6 +272,14 @@ typedef struct ccb_law_board { /* law mode (§10); private */
     uint32_t due[CCB_LAW_QUEUE];    /* sample number (modulo 2^32) of each slot's law */
     ccb_law queue[CCB_LAW_QUEUE];   /* slot = sample mod CCB_LAW_QUEUE */
     float table[CCB_BLOCK_POINTS];  /* Mg block table from BLOCK_TABLE */
+    ccb_law_params next[CCB_RULES_QUEUE]; /* RULES_AT waiting for their sample, in arrival order */
+    uint32_t next_at[CCB_RULES_QUEUE];
+    uint8_t next_head, next_n;
+    /* samples taken but not sent yet (CCB_SAMPLES_PER_FRAME to a SAMPLES frame) */
+    uint16_t out_adc[CCB_SAMPLES_PER_FRAME], out_dac[CCB_SAMPLES_PER_FRAME];
+    uint8_t out_flags[CCB_SAMPLES_PER_FRAME];
+    uint8_t out_n, out_events;
+    uint32_t out_first, out_clock_us;
 } ccb_law_board;
 #endif
 

@@ -25,6 +25,12 @@
 #if CCB_LAW_QUEUE > 0 && CCB_BLOCK_POINTS < 2
 #error "CCB_BLOCK_POINTS must be at least 2"
 #endif
+#if CCB_LAW_QUEUE > 0 && (CCB_RULES_QUEUE < 1 || CCB_RULES_QUEUE > 255)
+#error "CCB_RULES_QUEUE must lie between 1 and 255"
+#endif
+#if CCB_SAMPLES_PER_FRAME < 1 || CCB_SAMPLES_PAYLOAD(CCB_SAMPLES_PER_FRAME) > CCB_MAX_PAYLOAD
+#error "CCB_SAMPLES_PER_FRAME must lie between 1 and 47 (a SAMPLES payload of <= 254 bytes)"
+#endif
 /* Law bodies carry IEEE-754 binary32 numbers; the board's float must be one. */
 typedef char ccb_float_is_32_bits[sizeof(float) == 4u ? 1 : -1];
 
@@ -333,6 +339,10 @@ ccb_result ccb_encode_hello(uint16_t seq, const ccb_board_info *info, uint8_t *o
     put_u32(&p[37], info->max_rate_hz);
     put_u32(&p[41], info->watchdog_min_us);
     put_u32(&p[45], info->watchdog_max_us);
+    p[49] = info->capabilities;
+    put_u32(&p[50], info->law_queue);
+    p[54] = info->mg_groups;
+    p[55] = info->max_samples;
     return result(finish_frame(out, CCB_HELLO_PAYLOAD), CCB_OK);
 }
 
@@ -502,6 +512,18 @@ uint8_t ccb_init(ccb_board *b, const ccb_board_info *info, const ccb_port *port)
     }
     memset(b, 0, sizeof(*b));
     b->info = *info;
+    /* HELLO says what this build can do (§4.1), whatever the port wrote there. */
+#if CCB_LAW_QUEUE > 0
+    b->info.capabilities = CCB_CAP_LAW;
+    b->info.law_queue = CCB_LAW_QUEUE;
+    b->info.mg_groups = 1u; /* one blocked group: one table, one [Mg] (§10.2) */
+    b->info.max_samples = CCB_SAMPLES_PER_FRAME;
+#else
+    b->info.capabilities = 0u;
+    b->info.law_queue = 0u;
+    b->info.mg_groups = 0u;
+    b->info.max_samples = 0u;
+#endif
     b->port = *port;
     ccb_deframer_init(&b->rx);
     b->state = CCB_STATE_UNCONFIGURED;
@@ -559,6 +581,23 @@ static void send_status(ccb_board *b, uint16_t ack_seq, uint8_t res)
     st.result = res;
     send(b, ccb_encode_status(b->tx_seq, &st, b->tx, sizeof(b->tx)));
 }
+
+#if CCB_LAW_QUEUE > 0
+/* Send the samples held for the next SAMPLES frame (law mode), if any. */
+static void send_samples(ccb_board *b)
+{
+    ccb_law_board *L = &b->law;
+    uint8_t status;
+    if (L->out_n == 0u) {
+        return;
+    }
+    status = (uint8_t)(sticky_bits(b) | L->out_events);
+    send(b, ccb_encode_samples(b->tx_seq, L->out_first, L->out_clock_us, status, L->out_n,
+                               L->out_adc, L->out_dac, L->out_flags, b->tx, sizeof(b->tx)));
+    L->out_n = 0;
+    L->out_events = 0;
+}
+#endif
 
 static void output_fault(ccb_board *b)
 {
@@ -638,6 +677,7 @@ static void on_configure(ccb_board *b, const uint8_t *payload, size_t len, uint1
 #if CCB_LAW_QUEUE > 0
         b->law.on = 0; /* until BOARD_RULES come again */
         memset(b->law.queued, 0, sizeof(b->law.queued));
+        b->law.next_n = 0;
 #endif
         output_fault(b);
     }
@@ -664,6 +704,9 @@ static void on_start(ccb_board *b, uint16_t seq)
     b->law.k = 0;
     b->law.late = 0;
     b->law.ahead = 0;
+    b->law.next_n = 0; /* a rule change of the last run never acts in this one */
+    b->law.out_n = 0;
+    b->law.out_events = 0;
 #endif
     output_fault(b);
     b->last_rx_us = b->port.micros(b->port.ctx);
@@ -673,12 +716,18 @@ static void on_start(ccb_board *b, uint16_t seq)
 
 static void on_stop(ccb_board *b, uint16_t seq)
 {
+#if CCB_LAW_QUEUE > 0
+    if (b->state == CCB_STATE_RUNNING) {
+        send_samples(b); /* every sample taken reaches the host, before the reply */
+    }
+#endif
     if (b->state == CCB_STATE_RUNNING) {
         b->state = CCB_STATE_READY;
         b->have_command = 0;
         b->tripped = 0;
 #if CCB_LAW_QUEUE > 0
         memset(b->law.queued, 0, sizeof(b->law.queued)); /* no law of this run may act in the next */
+        b->law.next_n = 0;
 #endif
         output_fault(b);
     }
@@ -884,6 +933,37 @@ static void on_laws(ccb_board *b, const uint8_t *payload, size_t len)
     }
 }
 
+/* RULES_AT (RUNNING, law mode): new board rules from a named sample on, held until that
+ * sample's tick.  One for a sample already taken is late: counted with the late laws, the
+ * LATE bit set, and applied at the next tick.  Malformed (length, ranges): unknown.  In
+ * another state, with another block_shift (the table is READY's), or with the holding queue
+ * full: rejected (counted, RX_ERROR). */
+static void on_rules_at(ccb_board *b, const uint8_t *payload, size_t len)
+{
+    ccb_law_board *L = &b->law;
+    const uint8_t *body = &payload[CCB_HEADER];
+    ccb_law_params p;
+    uint32_t at;
+    if (len != CCB_MIN_PAYLOAD + CCB_RULES_AT_BODY ||
+        !parse_rules(b, &body[4], CCB_BOARD_RULES_BODY, &p)) {
+        unknown(b);
+        return;
+    }
+    if (b->state != CCB_STATE_RUNNING || !L->on || p.block_shift != L->params.block_shift ||
+        L->next_n >= CCB_RULES_QUEUE) {
+        reject_quietly(b);
+        return;
+    }
+    at = get_u32(&body[0]);
+    if ((uint32_t)(at - b->counter) >= 0x80000000u) { /* taken already, as a late law (§5.7) */
+        L->late++;
+        b->flags |= CCB_STATUS_LATE;
+    }
+    L->next[(L->next_head + L->next_n) % CCB_RULES_QUEUE] = p;
+    L->next_at[(L->next_head + L->next_n) % CCB_RULES_QUEUE] = at;
+    L->next_n++;
+}
+
 /* ZERO: the zero request, applied on arrival, ahead of any queued law. */
 static void on_zero(ccb_board *b, const uint8_t *payload, size_t len)
 {
@@ -903,6 +983,11 @@ static void law_tick(ccb_board *b, uint16_t *dac, uint8_t *flags)
     uint8_t bit = (uint8_t)(1u << (slot & 7u));
     uint16_t adc = b->adc[0];
     uint16_t adc_top = (uint16_t)((1uL << b->info.adc_bits) - 1u);
+    while (L->next_n > 0u && !newer(L->next_at[L->next_head], b->counter)) {
+        L->params = L->next[L->next_head]; /* a rule change due at (or before) this sample */
+        L->next_head = (uint8_t)((L->next_head + 1u) % CCB_RULES_QUEUE);
+        L->next_n--;
+    }
     if ((L->queued[slot >> 3] & bit) && L->due[slot] == b->counter) {
         ccb_law_set(&L->state, &L->queue[slot], L->k);
         L->queued[slot >> 3] = (uint8_t)(L->queued[slot >> 3] & ~bit);
@@ -943,6 +1028,9 @@ static void on_frame(ccb_board *b, const uint8_t *p, size_t len)
         return;
     case CCB_MSG_ZERO:
         on_zero(b, p, len);
+        return;
+    case CCB_MSG_RULES_AT:
+        on_rules_at(b, p, len);
         return;
 #endif
     default:
@@ -1030,11 +1118,23 @@ void ccb_tick(ccb_board *b)
     if (law_mode) {
         uint16_t dac;
         uint8_t flags;
+        ccb_law_board *L = &b->law;
         law_tick(b, &dac, &flags);
-        status = (uint8_t)(sticky_bits(b) | b->flags);
+        if (L->out_n == 0u) {
+            L->out_first = b->counter;
+            L->out_clock_us = now;
+        }
+        if (L->out_n < CCB_SAMPLES_PER_FRAME) { /* always: a full batch was sent below */
+            L->out_adc[L->out_n] = b->adc[0];
+            L->out_dac[L->out_n] = dac;
+            L->out_flags[L->out_n] = flags;
+            L->out_n++;
+        }
+        L->out_events = (uint8_t)(L->out_events | b->flags); /* LATE, RX_ERROR since the last frame */
         b->flags = 0;
-        send(b, ccb_encode_samples(b->tx_seq, b->counter, now, status, 1u, b->adc, &dac, &flags,
-                                   b->tx, sizeof(b->tx)));
+        if (L->out_n >= CCB_SAMPLES_PER_FRAME) {
+            send_samples(b);
+        }
         b->counter++;
         return;
     }

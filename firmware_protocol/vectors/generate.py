@@ -1,6 +1,6 @@
-"""Write protocol_v1.json, the test vectors shared by the Python codec and the C core.
+"""Write protocol_v2.json, the test vectors shared by the Python codec and the C core.
 
-    python firmware_protocol/vectors/generate.py   # rewrites protocol_v1.json beside it
+    python firmware_protocol/vectors/generate.py   # rewrites protocol_v2.json beside it
 
 Built only from the standard library (``struct``, ``binascii.crc_hqx``) and the
 general-purpose ``cobs`` package (test extra), never from this project's codecs, so
@@ -19,7 +19,7 @@ from pathlib import Path
 
 from cobs import cobs
 
-OUT = Path(__file__).resolve().parent / "protocol_v1.json"
+OUT = Path(__file__).resolve().parent / "protocol_v2.json"
 
 # Message type codes and layouts as written in PROTOCOL.md §3-§4.
 TYPES = {
@@ -53,7 +53,7 @@ def wire_of(payload: bytes) -> bytes:
 def body_of(name: str, f: dict) -> bytes:
     if name == "Hello":
         return struct.pack(
-            "<B16sBBBBiiiiIII",
+            "<B16sBBBBiiiiIIIBIBB",
             f["version"],
             f["identity"].encode("ascii"),
             f["adc_bits"],
@@ -67,6 +67,10 @@ def body_of(name: str, f: dict) -> bytes:
             f["max_rate_hz"],
             f["watchdog_min_us"],
             f["watchdog_max_us"],
+            f["capabilities"],
+            f["law_queue"],
+            f["mg_groups"],
+            f["max_samples"],
         )
     if name == "Sample":
         k = len(f["adc_counts"])
@@ -126,7 +130,11 @@ HELLO = {
     "max_rate_hz": 50_000,
     "watchdog_min_us": 100,
     "watchdog_max_us": 60_000_000,
-    "version": 1,
+    "version": 2,
+    "capabilities": 1,
+    "law_queue": 1024,
+    "mg_groups": 1,
+    "max_samples": 1,
 }
 
 STATUS = {
@@ -203,6 +211,10 @@ MESSAGES = [
             "dac_min_uV": 550_000,
             "dac_max_uV": 2_750_000,
             "max_rate_hz": 10_000,
+            "capabilities": 0,
+            "law_queue": 0,
+            "mg_groups": 0,
+            "max_samples": 0,
         },
     ),
     ("status_report", "Status", 513, STATUS),
@@ -238,7 +250,7 @@ MESSAGES = [
             "n_inputs": 1,
             "watchdog_us": 50_000,
             "fault_counts": [32768],
-            "version": 1,
+            "version": 2,
         },
     ),
     (
@@ -250,7 +262,7 @@ MESSAGES = [
             "n_inputs": 2,
             "watchdog_us": 4_000_000_000,
             "fault_counts": [2048, 0],
-            "version": 1,
+            "version": 2,
         },
     ),
     ("get_hello", "GetHello", 0, {}),
@@ -335,7 +347,7 @@ def _streams() -> list[dict]:
 def _board_ignores() -> list[dict]:
     """Good frames (CRC fine) that a board must count as unknown and not act on."""
     cases = [
-        ("configure_version_2", 0x02, struct.pack("<BIBIH", 2, 1000, 1, 50_000, 32768)),
+        ("configure_version_1", 0x02, struct.pack("<BIBIH", 1, 1000, 1, 50_000, 32768)),
         (
             "configure_wrong_output_count",
             0x02,
@@ -381,7 +393,7 @@ def build_vectors() -> dict:
         ("01" * 509),
     ]
     return {
-        "protocol_version": 1,
+        "protocol_version": 2,
         "generated_by": "firmware_protocol/vectors/generate.py (struct, binascii.crc_hqx, cobs)",
         "crc16_ccitt_false": [
             # Check value of CRC-16/IBM-3740 (alias CRC-16/CCITT-FALSE) in the CRC RevEng
