@@ -314,6 +314,14 @@ MUTANTS: tuple[Mutant, ...] = (
         "(b->have_command && 0)",
         ("tests/test_rig.py", "tests/test_c_core.py"),
     ),
+    Mutant(
+        "rig-port-adc",
+        "the rig's board (C core through rig_port.c) reads the cell's ADC one count high",
+        "firmware_protocol/c/ports/rig_port.c",
+        "    ccb_mem_set_adc(r, 0u, adc);",
+        "    ccb_mem_set_adc(r, 0u, (uint16_t)(adc + 1u));",
+        ("tests/test_rig.py::test_lockstep_run_equals_offline_simulation",),
+    ),
     # ---- elements: signs and time constants, spike detection
     Mutant(
         "leak-sign",
