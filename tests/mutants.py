@@ -351,6 +351,14 @@ MUTANTS: tuple[Mutant, ...] = (
         "(b->have_command && 0)",
         ("tests/test_rig.py", "tests/test_c_core.py"),
     ),
+    Mutant(
+        "rig-port-adc",
+        "the rig's board (C core through rig_port.c) reads the cell's ADC one count high",
+        "firmware_protocol/c/ports/rig_port.c",
+        "    ccb_mem_set_adc(r, 0u, adc);",
+        "    ccb_mem_set_adc(r, 0u, (uint16_t)(adc + 1u));",
+        ("tests/test_rig.py::test_lockstep_run_equals_offline_simulation",),
+    ),
     # ---- elements: signs and time constants, spike detection
     Mutant(
         "leak-sign",
@@ -501,11 +509,22 @@ MUTANTS: tuple[Mutant, ...] = (
     ),
     Mutant(
         "late-spikes",
-        "link simulation: spikes heard after their law was sent are not counted late",
-        "clampcore/linksim.py",
-        "counters[0] += queue_late_cell_spike(m, hi, pa)",
-        "counters[0] += 0 * queue_late_cell_spike(m, hi, pa)",
-        ("tests/test_linksim.py",),
+        "law mode: spikes heard after their law was made are not counted late",
+        "clampcore/step.py",
+        "            late += 1\n",
+        "            late += 0\n",
+        ("tests/test_linksim.py::test_a_delay_shorter_than_the_lead_is_counted_late",),
+    ),
+    Mutant(
+        "late-spike-lost",
+        "law mode: a spike heard after its delivery sample's law was made is never delivered",
+        "clampcore/step.py",
+        "            pa.state[r, _syn.S_LATE] += 1.0",
+        "            pass",
+        (
+            "tests/test_lawloop.py::"
+            "test_a_spike_heard_too_late_is_delivered_with_the_next_law_and_counted",
+        ),
     ),
     Mutant(
         "c-law-zero",
@@ -514,6 +533,47 @@ MUTANTS: tuple[Mutant, ...] = (
         "b->law.state.hold_zero = payload[CCB_HEADER] != 0u;",
         "(void)payload; /* a mutant */\n    b->law.state.hold_zero = 0u;",
         ("tests/test_c_core_law.py",),
+    ),
+    Mutant(
+        "engine-imports-rig",
+        "the engine starts the simulated rig itself instead of through the factory it is handed",
+        "clampcore/engine.py",
+        "            self._rig = self.rig_factory(",
+        "            from clampcore.simulated_rig import start_rig\n\n"
+        "            self._rig = start_rig(",
+        ("tests/test_architecture.py",),
+    ),
+    Mutant(
+        "spec-too-wide",
+        "an element spec one params column too wide for N_PARAMS is accepted",
+        "clampcore/elements/spec.py",
+        "        if N_COMMON_PARAMS + len(self.params) > N_PARAMS:",
+        "        if N_COMMON_PARAMS + len(self.params) > N_PARAMS + 1:",
+        ("tests/test_element_spec.py::test_a_spec_that_does_not_fit_the_arrays_is_refused",),
+    ),
+    Mutant(
+        "kernel-no-cache",
+        "compiled kernels not kept in numba's on-disk cache (every run compiles again)",
+        "clampcore/jit.py",
+        "njit(cache=True, nogil=True, _nrt=False)(fn)",
+        "njit(cache=False, nogil=True, _nrt=False)(fn)",
+        ("tests/test_kernel_cache.py",),
+    ),
+    Mutant(
+        "roundtrip-guard",
+        "fast round trip: no guard band at a rounding boundary (rounding errors decide)",
+        "clampcore/roundtrip.py",
+        "        if part > margin and part < 1.0 - margin:",
+        "        if part >= 0.0 and part < 1.0:",
+        ("tests/test_roundtrip.py",),
+    ),
+    Mutant(
+        "spool-chunk-rows",
+        "NWB spool: a short last chunk counted as a whole chunk of rows",
+        "clampcore/nwb_spool.py",
+        "            self.rows += part.shape[0]",
+        "            self.rows += step",
+        ("tests/test_nwb.py::test_spooled_columns_are_the_stops_conversion",),
     ),
     # ---- outputs and recordings kept
     Mutant(
@@ -528,8 +588,8 @@ MUTANTS: tuple[Mutant, ...] = (
         "journal-unchecked",
         "the journal is removed although the NWB file does not match it",
         "clampcore/nwb.py",
-        "    if problems:\n        raise NwbError(",
-        "    if False:\n        raise NwbError(",
+        "        return check_against_journal(out, data)\n",
+        "        check_against_journal(out, data)\n        return []\n",
         ("tests/test_recording.py::test_one_copy_journal_removed_only_after_a_check",),
     ),
     # ---- the window
@@ -580,6 +640,22 @@ MUTANTS: tuple[Mutant, ...] = (
         "dv = np.nanmean(v_mV[end - settle : end])",
         "dv = np.nanmean(v_mV[start : start + settle])",
         ("tests/test_gui_views.py::test_test_pulse_gives_the_input_resistance",),
+    ),
+    Mutant(
+        "gui-stability-start",
+        "window: Start not refused beyond the stability bound (as if overridden)",
+        "gui/window.py",
+        "report = stability.guard(stability.assess(exp, delay), override, OVERRIDE_HINT)",
+        "report = stability.guard(stability.assess(exp, delay), True, OVERRIDE_HINT)",
+        ("tests/test_gui_stability.py::test_the_line_shows_the_bound_warns_and_start_is_refused",),
+    ),
+    Mutant(
+        "gui-stability-live",
+        "window: a live change beyond the stability bound applied without the override",
+        "gui/window.py",
+        "        if not pushes_beyond(before, after):",
+        "        if True:",
+        ("tests/test_gui_stability.py::test_live_change_refused_then_overridden_and_logged",),
     ),
     # ---- validation, defaults, timing primitives
     Mutant(
