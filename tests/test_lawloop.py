@@ -287,7 +287,7 @@ def test_a_spike_heard_too_late_is_delivered_with_the_next_law_and_counted(
         flags[0] = BF_FLAG_SPIKE
         adc = np.full(count, 30000, dtype=np.int64)
         wire = np.zeros(MAX_WIRE, dtype=np.uint8)
-        n = lawmsg.encode_samples(1, 0, 0, 0, count, adc, adc, flags, wire)
+        n = lawmsg.encode_samples(1, 0, 0, 0, adc, adc, flags, wire)
         ll.io.rx[:n] = wire[:n]
         process_rx_law(n, ll, pa, sh)
         made = count - 1 + lead  # laws now exist up to the newest sample seen + lead
