@@ -364,20 +364,6 @@ def _law_loop(
     return law_fd_loop(PortRun(fd, spin_us, silent_ms, max_samples), a, law.pa, law.sh)
 
 
-# [loop] fields a law-evaluating board applies itself (clampcore.law.board_arrays).
-_BOARD_LOOP_FIELDS = ("max_current_pA", "spike_threshold_mV", "spike_hysteresis_mV")
-
-
-def board_owns(program: Program, element: str, field_name: str) -> bool:
-    """Whether ``element.field_name`` is a rule the board applies in law mode (the current
-    limit, spike detection, every threshold_reset field) rather than part of the law: a live
-    change of one reaches the board as RULES_AT (PROTOCOL.md §10.4), from the sample the host
-    applies it at, as any change is logged (``clampcore.lawloop``)."""
-    if element == "loop":
-        return field_name in _BOARD_LOOP_FIELDS
-    return program.kinds[program.row(element)] == "threshold_reset"
-
-
 def _stop_requested(sh: LoopShared) -> LoopShared:
     """``sh`` with a copy of its control words that asks the loop to stop at once."""
     ctrl = sh.ctrl.copy()

@@ -294,7 +294,7 @@ def _zero_frame(lw: np.ndarray, ctrl: np.ndarray, body: np.ndarray, tx: np.ndarr
 @kernel
 def _board_owned(kind: np.ndarray, target: float, row: int, col: int) -> bool:
     """Whether a live change (mailbox target, row, column) is a rule the board applies itself
-    in law mode (``clampcore.engine.board_owns`` for names)."""
+    in law mode (the current limit, spike detection, threshold_reset)."""
     if target == MAIL_TO_PARAMS:
         return 0 <= row < kind.shape[0] and kind[row] == KIND_THRESHOLD_RESET
     return col in (LP_MAX_CURRENT_PA, LP_SPIKE_THRESHOLD_MV, LP_SPIKE_HYSTERESIS_MV)

@@ -166,9 +166,6 @@ class ParameterEditor(QtWidgets.QWidget):
         self.experiment: Experiment | None = None
         self._running_names: set[str] = set()
         self._running = False
-        # Why a live field cannot change in this run (a rule the board applies), or None;
-        # the window sets it for each run.
-        self.held_by_board: Callable[[Target, str], str | None] = lambda _t, _f: None
 
         outer = QtWidgets.QVBoxLayout(self)
         outer.setContentsMargins(4, 4, 4, 4)
@@ -296,8 +293,7 @@ class ParameterEditor(QtWidgets.QWidget):
             row += 1
         for f in fields:
             # While running, only live fields of elements the loop runs can change.
-            held = self.held_by_board(target, f.name) if self._running and f.live else None
-            editable = not self._running or new_element or (f.live and held is None)
+            editable = not self._running or new_element or f.live
             name = QtWidgets.QLabel(f.name)
             name.setToolTip(_describe(f))
             widget = self._field_widget(target, f, values.get(f.name, f.default), editable)
@@ -310,8 +306,7 @@ class ParameterEditor(QtWidgets.QWidget):
                 note.setToolTip(
                     "changes are applied by the running loop at a sample boundary"
                     if editable
-                    else f"cannot change while running{': ' + held if held else ''}: "
-                    "takes effect at the next start"
+                    else "cannot change while running: takes effect at the next start"
                 )
             note.setStyleSheet("color: #8a9099;")
             grid.addWidget(name, row, 0)
