@@ -312,7 +312,12 @@ def test_disk_fills_up_mid_run(capsys, tmp_path, kind, fill):
         engine = Engine(EXAMPLE, "sim", options, rig_factory=start_rig)
         engine.start(duration_s=3.0, out=out)  # 3 s fit in 32 MB: the start-up check passes
         _wait_for_rows(engine, 2000)
-        flushed = read_journal(journal).n_samples  # on disk before the disk fills
+        # The recorder flushes the journal on its own thread (after encoding the spool's
+        # chunks too): wait until rows are on disk, so that the disk fills mid-run.
+        deadline = time.monotonic() + 60.0
+        while (flushed := read_journal(journal).n_samples) == 0:  # on disk before the fill
+            assert engine.running and time.monotonic() < deadline, "the journal stayed empty"
+            time.sleep(0.05)
         fill(engine, journal)
         assert engine.wait(60.0), "the run did not stop when the disk filled"
         status = engine.status()
