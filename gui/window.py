@@ -511,12 +511,12 @@ class TuningWindow(QtWidgets.QMainWindow):
             return f"{element}.{field} = {value}: not applied: {why}"
 
     def _log_override(
-        self, engine: Engine, report: Any, element: str, field: str, value: Any
+        self, engine: Engine, report: Any, posted_at: int, element: str, field: str, value: Any
     ) -> None:
-        """Keep a live override in the recording, where --override-stability keeps it."""
-        assert engine.shared is not None
+        """Keep a live override in the recording, where --override-stability keeps it
+        (``posted_at``: the samples written when it was posted; the loop applies it later)."""
         change = {
-            "sample": engine.shared.written(),  # posted here; applied at the next boundary
+            "sample": posted_at,
             "element": element,
             "field": field,
             "value": value,
@@ -728,6 +728,8 @@ class TuningWindow(QtWidgets.QMainWindow):
             guarded = self._stability_check(engine, element, field, value)
             if isinstance(guarded, str):
                 return guarded
+            # Read before posting: the loop may apply the change at once.
+            posted_at = engine.shared.written() if engine.shared is not None else 0
             try:
                 engine.change(element, field, value)
             except ExperimentError as exc:
@@ -737,7 +739,7 @@ class TuningWindow(QtWidgets.QMainWindow):
             except RuntimeError as exc:  # a full mailbox
                 return str(exc)
             if guarded is not None:
-                self._log_override(engine, guarded, element, field, value)
+                self._log_override(engine, guarded, posted_at, element, field, value)
         # The experiment for saving and for the next run, checked by the loader.
         draft = self.experiment.to_dict()
         if section == "section":
