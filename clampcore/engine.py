@@ -60,9 +60,6 @@ from clampcore.hostloop import (
     EXIT_PORT_CLOSED,
     EXIT_PORT_ERROR,
     EXIT_STOP_REQUEST,
-    LK_LAST_COUNTER,
-    LK_NEXT_SEQ,
-    LK_SAMPLES,
     LinkArrays,
     PortRun,
     fd_loop,
@@ -306,8 +303,8 @@ def _loop_process(
                         link.zero_now(confirm_s=_ZERO_CONFIRM_S)
                     else:
                         link.command_after(
-                            int(arrays.lk[LK_NEXT_SEQ]),
-                            int(arrays.lk[LK_LAST_COUNTER]),
+                            int(arrays.lk[0]["next_seq"]),
+                            int(arrays.lk[0]["last_counter"]),
                             zero,
                             timeout_s=_ZERO_WAIT_PERIODS / rate + _ZERO_WAIT_SLACK_S,
                         )
@@ -414,7 +411,7 @@ def _python_loop(
     while True:
         if sh.ctrl[CTRL_STOP]:
             return EXIT_STOP_REQUEST
-        if max_samples > 0 and arrays.lk[LK_SAMPLES] >= max_samples:
+        if max_samples > 0 and arrays.lk[0]["samples"] >= max_samples:
             return EXIT_DURATION
         try:
             data = ser.read(max(1, min(ser.in_waiting, rx_size)))

@@ -21,7 +21,7 @@ and the shared blocks' (``clampcore.shared.LoopShared``).
 
 Public names: ``LinkArrays``, ``PortIo``, ``PortRun``, ``new_link``, ``new_port_io``,
 ``process_rx``, ``fd_loop``, ``next_input`` and ``write_all`` (the wait, read and write of
-both loops), the ``EXIT_*`` codes and ``LK_*``/``W_*`` indices.
+both loops), the ``EXIT_*`` codes, the ``LINK_STATE`` record and the ``W_*`` indices.
 """
 
 from __future__ import annotations
@@ -95,8 +95,6 @@ from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
     FLAG_LIMITED,
-    LS_CELL_SPIKED,
-    LS_FLAGS,
     step,
 )
 from clampcore.sysio import fd_read, fd_write, monotonic_us, wait_readable
@@ -118,17 +116,20 @@ EXIT_MESSAGES = {
 
 FLAG_ZEROED = 8  # ring flags bit: the zero-current control held the command at 0 pA
 
-# link state (int64 array ``lk``)
-LK_NEXT_SEQ = 0  # sequence number of the next command (1..65535, 0 is never used)
-LK_LAST_COUNTER = 1  # counter of the last sample (-1 before the first)
-LK_FIRST_COUNTER = 2
-LK_SAMPLES = 3  # samples processed
-LK_PENDING = 4  # 1 when the newest sample still needs its command
-LK_PENDING_COUNTER = 5
-LK_PENDING_DAC = 6
-LK_PENDING_ROW = 7  # ring row of the pending sample (for its turnaround)
-LK_ZERO_COUNTS = 8  # the DAC count that means 0 pA
-N_LK = 10
+# The current-mode link's state: a record (``lk``, a structured array of length 1).
+LINK_STATE = np.dtype(
+    [
+        ("next_seq", np.int64),  # sequence number of the next command (1..65535, 0 is never used)
+        ("last_counter", np.int64),  # counter of the last sample (-1 before the first)
+        ("first_counter", np.int64),
+        ("samples", np.int64),  # samples processed
+        ("pending", np.bool_),  # the newest sample still needs its command
+        ("pending_counter", np.int64),
+        ("pending_dac", np.int64),
+        ("pending_row", np.int64),  # ring row of the pending sample (for its turnaround)
+        ("zero_counts", np.int64),  # the DAC count that means 0 pA
+    ]
+)
 
 _SEQ_SPACE = 65536  # u16 sequence numbers (PROTOCOL.md)
 _POLL_SLICE_MS = 50  # a sleeping wait wakes this often to see a stop request
@@ -173,7 +174,7 @@ class PortRun(NamedTuple):
 class LinkArrays(NamedTuple):
     """Every buffer of the current-mode link, allocated once per run."""
 
-    lk: np.ndarray  # int64 (N_LK,): the LK_* columns
+    lk: np.ndarray  # LINK_STATE (1,): the link's state, one record
     answered: np.ndarray  # sample counter each command seq answered (-1: none)
     dstate: np.ndarray
     dbuf: np.ndarray
@@ -188,11 +189,11 @@ class LinkArrays(NamedTuple):
 def new_link(conv: np.ndarray) -> LinkArrays:
     """Buffers of a current-mode run on a board with converters ``conv``."""
     dstate, dbuf = new_deframer()
-    lk = np.zeros(N_LK, dtype=np.int64)
-    lk[LK_NEXT_SEQ] = 1
-    lk[LK_LAST_COUNTER] = -1
-    lk[LK_FIRST_COUNTER] = -1
-    lk[LK_ZERO_COUNTS] = pA_to_counts(conv, 0.0)
+    lk = np.zeros(1, dtype=LINK_STATE)
+    lk[0]["next_seq"] = 1
+    lk[0]["last_counter"] = -1
+    lk[0]["first_counter"] = -1
+    lk[0]["zero_counts"] = pA_to_counts(conv, 0.0)
     return LinkArrays(
         lk=lk,
         answered=np.full(_SEQ_SPACE, -1, dtype=np.int64),
@@ -251,23 +252,23 @@ def process_rx(nbytes: int, link: LinkArrays, pa: ProgramArrays, sh: LoopShared)
             stats[ST_OTHER_FRAMES] += 1.0
             continue
         counter = fields[SAMPLE_COUNTER]
-        last = lk[LK_LAST_COUNTER]
+        last = lk[0]["last_counter"]
         if last < 0:
-            lk[LK_FIRST_COUNTER] = counter
+            lk[0]["first_counter"] = counter
             ctrl[CTRL_FIRST_COUNTER] = counter
         elif counter <= last:
             stats[ST_OTHER_FRAMES] += 1.0  # a stale or repeated sample: ignored
             continue
         else:
             stats[ST_MISSING] += counter - last - 1
-        lk[LK_LAST_COUNTER] = counter
-        if lk[LK_PENDING] != 0:
+        lk[0]["last_counter"] = counter
+        if lk[0]["pending"]:
             stats[ST_UNANSWERED] += 1.0
-        n = counter - lk[LK_FIRST_COUNTER]
+        n = counter - lk[0]["first_counter"]
         _apply_mail(ctrl, mailbox, applied, params, loop_p, n)
         v_mV = counts_to_mV(conv, adc[0])
         i_pA = step(v_mV, n, pa)
-        flags = int(loop_s[LS_FLAGS])
+        flags = loop_s[0]["flags"]
         if ctrl[CTRL_ZERO] != 0:
             i_pA = 0.0
             flags |= FLAG_ZEROED
@@ -276,7 +277,7 @@ def process_rx(nbytes: int, link: LinkArrays, pa: ProgramArrays, sh: LoopShared)
         answered_counter = answered[fields[SAMPLE_CMD_SEQ]]
         latency = counter - answered_counter if answered_counter >= 0 else -1
         # ring row
-        row = lk[LK_SAMPLES] % rows
+        row = lk[0]["samples"] % rows
         ring[row, COL_COUNTER] = counter
         ring[row, COL_V] = v_mV
         ring[row, COL_I] = i_pA
@@ -289,11 +290,11 @@ def process_rx(nbytes: int, link: LinkArrays, pa: ProgramArrays, sh: LoopShared)
             ring[row, base + r] = g_out[r]
             ring[row, base + n_el + r] = i_out[r]
         spk = base + 2 * n_el
-        ring[row, spk] = loop_s[LS_CELL_SPIKED]
+        ring[row, spk] = loop_s[0]["cell_spiked"]
         for j in range(neuron_rows.shape[0]):
             ring[row, spk + 1 + j] = state[neuron_rows[j], NEURON_S_SPIKED]
-        lk[LK_SAMPLES] += 1
-        ctrl[CTRL_WRITTEN] = lk[LK_SAMPLES]
+        lk[0]["samples"] += 1
+        ctrl[CTRL_WRITTEN] = lk[0]["samples"]
         # statistics
         stats[ST_SAMPLES] += 1.0
         if latency >= 0:
@@ -308,14 +309,14 @@ def process_rx(nbytes: int, link: LinkArrays, pa: ProgramArrays, sh: LoopShared)
             stats[ST_FAULTS] += 1.0
         if flags & FLAG_LIMITED:
             stats[ST_LIMITED] += 1.0
-        if loop_s[LS_CELL_SPIKED] != 0.0:
+        if loop_s[0]["cell_spiked"]:
             stats[ST_SPIKES] += 1.0
-        lk[LK_PENDING] = 1
-        lk[LK_PENDING_COUNTER] = counter
-        lk[LK_PENDING_DAC] = pA_to_counts(conv, i_pA)
-        lk[LK_PENDING_ROW] = row
+        lk[0]["pending"] = True
+        lk[0]["pending_counter"] = counter
+        lk[0]["pending_dac"] = pA_to_counts(conv, i_pA)
+        lk[0]["pending_row"] = row
     stats[ST_BAD_FRAMES] = dstate[DEFRAMER_BAD]
-    if lk[LK_PENDING] == 0:
+    if not lk[0]["pending"]:
         return 0
     return encode_pending(lk, answered, dac, tx, stats)
 
@@ -325,12 +326,12 @@ def encode_pending(
     lk: np.ndarray, answered: np.ndarray, dac: np.ndarray, tx: np.ndarray, stats: np.ndarray
 ) -> int:
     """Encode the command for the pending sample into ``tx``; return its length."""
-    seq = lk[LK_NEXT_SEQ]
-    dac[0] = lk[LK_PENDING_DAC]
-    length = encode_command(seq, lk[LK_PENDING_COUNTER], dac, tx)
-    answered[seq] = lk[LK_PENDING_COUNTER]
-    lk[LK_NEXT_SEQ] = seq + 1 if seq + 1 < _SEQ_SPACE else 1
-    lk[LK_PENDING] = 0
+    seq = lk[0]["next_seq"]
+    dac[0] = lk[0]["pending_dac"]
+    length = encode_command(seq, lk[0]["pending_counter"], dac, tx)
+    answered[seq] = lk[0]["pending_counter"]
+    lk[0]["next_seq"] = seq + 1 if seq + 1 < _SEQ_SPACE else 1
+    lk[0]["pending"] = False
     stats[ST_COMMANDS] += 1.0
     return length
 
@@ -340,7 +341,7 @@ def record_turnaround(
     lk: np.ndarray, ring: np.ndarray, stats: np.ndarray, turnaround_us: float
 ) -> None:
     """Store the host turnaround of the command just written (ring row and histogram)."""
-    ring[lk[LK_PENDING_ROW], COL_TURNAROUND] = turnaround_us
+    ring[lk[0]["pending_row"], COL_TURNAROUND] = turnaround_us
     stats[ST_TURN_HIST + min(int(turnaround_us / TURN_BIN_US), TURN_BINS - 1)] += 1.0
 
 
@@ -392,7 +393,7 @@ def write_all(fd: int, io: PortIo, length: int) -> bool:
 def fd_loop(port: PortRun, link: LinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
     """Serve the board on ``port`` until a stop condition; returns an ``EXIT_*`` code."""
     while True:
-        got = next_input(port, link.lk[LK_SAMPLES], link.io, sh.ctrl)
+        got = next_input(port, link.lk[0]["samples"], link.io, sh.ctrl)
         if got < 0:
             return -got
         length = process_rx(got, link, pa, sh) if got > 0 else 0

@@ -45,10 +45,6 @@ from clampcore.step import (
     LP_MG_MM,
     LP_SPIKE_HYSTERESIS_MV,
     LP_SPIKE_THRESHOLD_MV,
-    LS_LAW_A_PA,
-    LS_LAW_AB_PA,
-    LS_LAW_G_NS,
-    LS_LAW_GB_NS,
     element_conductances,
 )
 
@@ -95,15 +91,8 @@ def law_to_counts(
 def make_law(s: int, scale: np.ndarray, pa: ProgramArrays, out: np.ndarray) -> None:
     """Advance every element to sample ``s`` and write that sample's law, in counts, to ``out``."""
     element_conductances(s, pa)
-    loop_s = pa.loop_s
-    law_to_counts(
-        scale,
-        loop_s[LS_LAW_A_PA],
-        loop_s[LS_LAW_G_NS],
-        loop_s[LS_LAW_AB_PA],
-        loop_s[LS_LAW_GB_NS],
-        out,
-    )
+    ls = pa.loop_s[0]
+    law_to_counts(scale, ls["law_a_pA"], ls["law_g_nS"], ls["law_ab_pA"], ls["law_gb_nS"], out)
 
 
 @kernel

@@ -21,8 +21,8 @@ Real-time rules as in ``clampcore.hostloop``: compiled, preallocated, no I/O but
 read and one write per pass.
 
 Public names: ``LawLinkArrays``, ``new_law_link``, ``top_up_laws``, ``process_rx_law``,
-``law_fd_loop``, ``host_flags``, ``host_flags_of``, ``board_reset_current``, the ``LW_*``
-indices, ``FLAG_STALE``.
+``law_fd_loop``, ``host_flags``, ``host_flags_of``, ``board_reset_current``, the
+``LAW_LINK_STATE`` record, ``FLAG_STALE``.
 """
 
 from __future__ import annotations
@@ -105,16 +105,20 @@ from clampcore.step import (
     queue_late_cell_spike,
 )
 
-LW_NEXT_SEQ = 0  # sequence number of the next frame the loop sends
-LW_SEEN = 1  # the newest sample (run index) seen; -1 before the first
-LW_FIRST_COUNTER = 2  # the board's counter of the first sample (normally 0)
-LW_HI = 3  # laws exist for samples 0 .. LW_HI
-LW_SAMPLES = 4  # samples processed (ring rows written)
-LW_LEAD = 5  # look-ahead, samples
-LW_BLOCKED = 6  # 1: laws carry the Mg-blocked part
-LW_ZERO_SENT = 7  # the zero-current state last sent to the board
-LW_MAIL_SEEN = 8  # live changes checked for board rules so far (ctrl[CTRL_MAIL_APPLIED])
-N_LW = 9
+# The law-mode link's state: a record (``lw``, a structured array of length 1).
+LAW_LINK_STATE = np.dtype(
+    [
+        ("next_seq", np.int64),  # sequence number of the next frame the loop sends
+        ("seen", np.int64),  # the newest sample (run index) seen; -1 before the first
+        ("first_counter", np.int64),  # the board's counter of the first sample (normally 0)
+        ("hi", np.int64),  # laws exist for samples 0 .. hi
+        ("samples", np.int64),  # samples processed (ring rows written)
+        ("lead", np.int64),  # look-ahead, samples
+        ("blocked", np.bool_),  # laws carry the Mg-blocked part
+        ("zero_sent", np.int64),  # the zero-current state last sent to the board (0 or 1)
+        ("mail_seen", np.int64),  # live changes checked for board rules (ctrl[CTRL_MAIL_APPLIED])
+    ]
+)
 
 FLAG_STALE = 16  # ring flags bit: the board had no law young enough and output 0 pA
 
@@ -124,7 +128,7 @@ _TX_BYTES = 8192  # LAWS frames of one pass: a 1 ms burst of samples at 50 kHz a
 class LawLinkArrays(NamedTuple):
     """Every buffer of the law-mode link, allocated once per run."""
 
-    lw: np.ndarray  # int64 (N_LW,): the LW_* columns
+    lw: np.ndarray  # LAW_LINK_STATE (1,): the law link's state, one record
     dstate: np.ndarray
     dbuf: np.ndarray
     frame: np.ndarray
@@ -162,13 +166,13 @@ def new_law_link(
         rules_bi[:] = bi
     dstate, dbuf = new_deframer()
     rows = 1 << (2 * lead + 64).bit_length()  # the laws in flight and the samples to come
-    lw = np.zeros(N_LW, dtype=np.int64)
-    lw[LW_NEXT_SEQ] = 1
-    lw[LW_SEEN] = -1
-    lw[LW_FIRST_COUNTER] = -1
-    lw[LW_HI] = -1
-    lw[LW_LEAD] = lead
-    lw[LW_BLOCKED] = 1 if blocked else 0
+    lw = np.zeros(1, dtype=LAW_LINK_STATE)
+    lw[0]["next_seq"] = 1
+    lw[0]["seen"] = -1
+    lw[0]["first_counter"] = -1
+    lw[0]["hi"] = -1
+    lw[0]["lead"] = lead
+    lw[0]["blocked"] = blocked
     laws = np.zeros((rows, 4), dtype=np.float32)
     return LawLinkArrays(
         lw=lw,
@@ -236,8 +240,8 @@ def board_reset_current(
 
 @kernel
 def _next_seq(lw: np.ndarray) -> int:
-    seq = lw[LW_NEXT_SEQ]
-    lw[LW_NEXT_SEQ] = seq + 1 if seq < 0xFFFF else 1
+    seq = lw[0]["next_seq"]
+    lw[0]["next_seq"] = seq + 1 if seq < 0xFFFF else 1
     return seq
 
 
@@ -249,10 +253,10 @@ def top_up_laws(ll: LawLinkArrays, at: int, pa: ProgramArrays, sh: LoopShared) -
     ctrl, stats, neuron_rows = sh.ctrl, sh.stats, sh.neuron_rows
     n_el = kind.shape[0]
     mask = laws.shape[0] - 1
-    blocked = lw[LW_BLOCKED] != 0
+    blocked = lw[0]["blocked"]
     per_frame = lawmsg.MAX_LAWS_BLOCKED if blocked else lawmsg.MAX_LAWS
-    first = lw[LW_HI] + 1
-    target = lw[LW_SEEN] + lw[LW_LEAD]
+    first = lw[0]["hi"] + 1
+    target = lw[0]["seen"] + lw[0]["lead"]
     for s in range(first, target + 1):
         _apply_mail(ctrl, sh.mailbox, sh.applied, params, pa.loop_p, s)
         make_law(s, ll.scale, pa, laws[s & mask])
@@ -262,13 +266,13 @@ def top_up_laws(ll: LawLinkArrays, at: int, pa: ProgramArrays, sh: LoopShared) -
             ghist[h, n_el + r] = i_out[r]
         for j in range(neuron_rows.shape[0]):
             ghist[h, 2 * n_el + j] = state[neuron_rows[j], NEURON_S_SPIKED]
-        lw[LW_HI] = s
+        lw[0]["hi"] = s
     s = first
     while True:  # at least one frame: it says how far the host has got
         count = min(per_frame, target + 1 - s) if target >= s else 0
         if at + 2 * MAX_WIRE > tx.shape[0]:  # room left for a RULES_AT frame after them
             break
-        nb = lawmsg.encode_laws(_next_seq(lw), lw[LW_SEEN], s, count, blocked, lawbits, tx, at)
+        nb = lawmsg.encode_laws(_next_seq(lw), lw[0]["seen"], s, count, blocked, lawbits, tx, at)
         at += nb
         stats[ST_COMMANDS] += 1.0
         s += count
@@ -281,12 +285,12 @@ def top_up_laws(ll: LawLinkArrays, at: int, pa: ProgramArrays, sh: LoopShared) -
 def _zero_frame(lw: np.ndarray, ctrl: np.ndarray, body: np.ndarray, tx: np.ndarray, at: int) -> int:
     """A ZERO frame at tx[at:] when the zero-current control changed; new end of tx."""
     want = 1 if ctrl[CTRL_ZERO] != 0 else 0
-    if want == lw[LW_ZERO_SENT]:
+    if want == lw[0]["zero_sent"]:
         return at
     body[0] = want
     nb = encode_frame(lawmsg.MSG_ZERO, _next_seq(lw), body, 1, tx[at:])
     if nb > 0:
-        lw[LW_ZERO_SENT] = want
+        lw[0]["zero_sent"] = want
         at += nb
     return at
 
@@ -307,8 +311,8 @@ def _rules_frame(ll: LawLinkArrays, pa: ProgramArrays, sh: LoopShared, at: int) 
     sample the newest such change took effect at (the law front); new end of tx."""
     lw, applied, kind = ll.lw, sh.applied, pa.kind
     done = sh.ctrl[CTRL_MAIL_APPLIED]
-    first = max(lw[LW_MAIL_SEEN], done - MAILBOX_SLOTS)
-    lw[LW_MAIL_SEEN] = done
+    first = max(lw[0]["mail_seen"], done - MAILBOX_SLOTS)
+    lw[0]["mail_seen"] = done
     sample = -1
     for k in range(first, done):
         slot = k % MAILBOX_SLOTS
@@ -330,7 +334,6 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
     s_adc, s_dac, s_flags, laws, ghist = ll.s_adc, ll.s_dac, ll.s_flags, ll.laws, ll.ghist
     body, conv, rx, tx = ll.body, ll.conv, ll.io.rx, ll.io.tx
     kind, params, g_out, i_out = pa.kind, pa.params, pa.g_out, pa.i_out
-    loop_p, loop_s = pa.loop_p, pa.loop_s
     ctrl, ring, stats, neuron_rows = sh.ctrl, sh.ring, sh.stats, sh.neuron_rows
     n_el = kind.shape[0]
     rows = ring.shape[0]
@@ -347,24 +350,24 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
         status = fields[lawmsg.SAMPLES_STATUS]
         for i in range(count):
             counter = fields[lawmsg.SAMPLES_FIRST] + i
-            if lw[LW_FIRST_COUNTER] < 0:
-                lw[LW_FIRST_COUNTER] = counter
+            if lw[0]["first_counter"] < 0:
+                lw[0]["first_counter"] = counter
                 ctrl[CTRL_FIRST_COUNTER] = counter
-            n = counter - lw[LW_FIRST_COUNTER]
-            if n <= lw[LW_SEEN]:
+            n = counter - lw[0]["first_counter"]
+            if n <= lw[0]["seen"]:
                 stats[ST_OTHER_FRAMES] += 1.0  # a stale or repeated sample: ignored
                 continue
-            stats[ST_MISSING] += n - lw[LW_SEEN] - 1
-            if n > lw[LW_HI]:  # samples lost on the way: catch the model up to this one
-                lw[LW_SEEN] = n - lw[LW_LEAD]
+            stats[ST_MISSING] += n - lw[0]["seen"] - 1
+            if n > lw[0]["hi"]:  # samples lost on the way: catch the model up to this one
+                lw[0]["seen"] = n - lw[0]["lead"]
                 top_up_laws(ll, tx.shape[0], pa, sh)  # makes laws, encodes none
-            lw[LW_SEEN] = n
+            lw[0]["seen"] = n
             got_samples = True
             bflags = s_flags[i]
             spiked = (bflags & bl.BF_FLAG_SPIKE) != 0
-            hist_record_cell_spike(n, spiked, loop_p, loop_s)
+            hist_record_cell_spike(n, spiked, pa.spike_ring)
             if spiked:  # a synapse that hears it too late gets it at the next law made
-                stats[ST_LATE_SPIKES] += queue_late_cell_spike(n, lw[LW_HI], pa)
+                stats[ST_LATE_SPIKES] += queue_late_cell_spike(n, lw[0]["hi"], pa)
             v_mV = counts_to_mV(conv, float(s_adc[i]))
             h = n & mask
             for r in range(n_el):
@@ -373,7 +376,7 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
             cell_currents(v_mV, kind, params, g_out, i_out)
             board_reset_current(v_mV, (bflags & bl.BF_FLAG_RESET) != 0, kind, params, g_out, i_out)
             flags = host_flags(bflags)
-            row = lw[LW_SAMPLES] % rows
+            row = lw[0]["samples"] % rows
             ring[row, COL_COUNTER] = counter
             ring[row, COL_V] = v_mV
             ring[row, COL_I] = counts_to_pA(conv, float(s_dac[i]))
@@ -392,8 +395,8 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
             ring[row, spk] = 1.0 if spiked else 0.0
             for j in range(neuron_rows.shape[0]):
                 ring[row, spk + 1 + j] = ghist[h, 2 * n_el + j]
-            lw[LW_SAMPLES] += 1
-            ctrl[CTRL_WRITTEN] = lw[LW_SAMPLES]
+            lw[0]["samples"] += 1
+            ctrl[CTRL_WRITTEN] = lw[0]["samples"]
             stats[ST_SAMPLES] += 1.0
             if not fault:
                 stats[ST_LAT_HIST + min(1, LAT_BINS - 1)] += 1.0
@@ -420,7 +423,7 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
 def law_fd_loop(port: PortRun, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopShared) -> int:
     """Serve a law-evaluating board on ``port`` until a stop condition; an ``EXIT_*`` code."""
     while True:
-        got = next_input(port, ll.lw[LW_SAMPLES], ll.io, sh.ctrl)
+        got = next_input(port, ll.lw[0]["samples"], ll.io, sh.ctrl)
         if got < 0:
             return -got
         if got > 0:

@@ -70,7 +70,6 @@ from clampcore.simulated_rig.cells import (
     make_cell,
 )
 from clampcore.step import (
-    LS_CELL_SPIKED,
     cell_currents,
     hist_record_cell_spike,
     queue_late_cell_spike,
@@ -160,7 +159,7 @@ def link_loop(
             for m in range(seen + 1, newest + 1):
                 spiked = law_mode and (out_flags[m] & BF_FLAG_SPIKE) != 0
                 if law_mode:
-                    hist_record_cell_spike(m, spiked, loop_p, loop_s)
+                    hist_record_cell_spike(m, spiked, pa.spike_ring)
                     if spiked:
                         counters[0] += queue_late_cell_spike(m, hi, pa)
                 else:
@@ -169,7 +168,7 @@ def link_loop(
                     # In current mode the host detects the cell's spikes (and runs
                     # threshold_reset): its decision replaces the board's.
                     out_flags[m] &= ~BF_FLAG_SPIKE
-                    if loop_s[LS_CELL_SPIKED] != 0.0:
+                    if loop_s[0]["cell_spiked"]:
                         out_flags[m] |= BF_FLAG_SPIKE
                     _put_row(out_g, m, g_out)
                     _put_row(out_i_el, m, i_out)

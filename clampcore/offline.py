@@ -41,8 +41,6 @@ from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
     FLAG_LIMITED,
-    LS_CELL_SPIKED,
-    LS_FLAGS,
     step,
 )
 
@@ -95,16 +93,18 @@ def closed_loop(
             v_mV = adc_round_trip_mV(conv, rt.coef, rt.adc_mV, v_mV)
         # step writes every element's g and i of this sample straight into the recording.
         kind, params, state, rng, trains = pa.kind, pa.params, pa.state, pa.rng, pa.trains
-        row = ProgramArrays(kind, params, state, rng, trains, out_g[n], out_i_el[n], loop_p, loop_s)
+        row = ProgramArrays(
+            kind, params, state, rng, trains, out_g[n], out_i_el[n], loop_p, loop_s, pa.spike_ring
+        )  # fmt: skip
         i_pA = step(v_mV, n, row)
         commands_pA[slot] = dac_round_trip_pA(conv, rt.coef, rt.dac_pA, i_pA) if quantise else i_pA
         slot = slot + 1 if slot + 1 < delay_samples else 0
         out_v[n] = v_mV
         out_i[n] = i_pA
-        out_spikes[n, 0] = loop_s[LS_CELL_SPIKED] != 0.0
+        out_spikes[n, 0] = loop_s[0]["cell_spiked"]
         for j in range(spike_rows.shape[0]):
             out_spikes[n, j + 1] = state[spike_rows[j], NEURON_S_SPIKED] != 0.0
-        out_flags[n] = int(loop_s[LS_FLAGS])
+        out_flags[n] = loop_s[0]["flags"]
     for r in range(g_out.shape[0] if n_samples > 0 else 0):  # the last sample, as after a run
         g_out[r] = out_g[n_samples - 1, r]
         i_out[r] = out_i_el[n_samples - 1, r]

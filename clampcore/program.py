@@ -56,10 +56,12 @@ class ParamSlot:
 
 
 # ``Program``'s array fields, in the order compiled code takes them (``ProgramArrays``).
-ARRAY_FIELDS = ("kind", "params", "state", "rng", "trains", "g_out", "i_out", "loop_p", "loop_s")
+ARRAY_FIELDS = (
+    "kind", "params", "state", "rng", "trains", "g_out", "i_out", "loop_p", "loop_s", "spike_ring"
+)  # fmt: skip
 
 # A program's arrays as compiled code takes them (``step``, ``make_law``, the loops): one
-# argument that numba passes as the nine arrays, at no cost per call. Fields: as ``Program``.
+# argument that numba passes as the ten arrays, at no cost per call. Fields: as ``Program``.
 ProgramArrays = NamedTuple("ProgramArrays", [(f, np.ndarray) for f in ARRAY_FIELDS])  # type: ignore[misc]
 
 
@@ -77,7 +79,8 @@ class Program:
     g_out: np.ndarray  # float64 (n,)  conductance of each element at the last sample, nS
     i_out: np.ndarray  # float64 (n,)  current of each element at the last sample, pA
     loop_p: np.ndarray  # float64 (N_LOOP_PARAMS,): clampcore.step's LP_* columns
-    loop_s: np.ndarray  # float64 (N_LOOP_STATE + ring,): clampcore.step's LS_* columns
+    loop_s: np.ndarray  # clampcore.step.LOOP_STATE (1,): the loop's state, one record
+    spike_ring: np.ndarray  # int64 (power of two,): the cell's spike history (clampcore.step)
     experiment: Experiment
 
     @property
@@ -200,8 +203,7 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
     synapses = [r for r, e in enumerate(exp.elements) if e["kind"] == "synapse"]
     longest = max((int(params[r, P_DELAY]) for r in synapses), default=0)
     ring = 1 << (longest + 1).bit_length()  # a power of two above the longest delay
-    loop_p[step_mod.LP_SPIKE_RING] = ring
-    loop_s = np.zeros(step_mod.N_LOOP_STATE + ring)
+
     return Program(
         names=names,
         kinds=[e["kind"] for e in exp.elements],
@@ -213,7 +215,8 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
         g_out=np.zeros(n),
         i_out=np.zeros(n),
         loop_p=loop_p,
-        loop_s=loop_s,
+        loop_s=np.zeros(1, dtype=step_mod.LOOP_STATE),
+        spike_ring=np.zeros(ring, dtype=np.int64),
         experiment=exp,
     )
 

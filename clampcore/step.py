@@ -29,8 +29,8 @@ Order within a sample:
    max_current_pA -> clipped and ``FLAG_LIMITED``.
 
 Public names: ``step``, ``element_conductances``, ``cell_currents``,
-``hist_record_cell_spike``, ``queue_late_cell_spike``, the ``LP_*``/``LS_*`` loop-array
-columns, and the ``FAULT_*``/``FLAG_*`` bits.
+``hist_record_cell_spike``, ``queue_late_cell_spike``, the ``LP_*`` loop-parameter
+columns, the loop state's record type ``LOOP_STATE``, and the ``FAULT_*``/``FLAG_*`` bits.
 """
 
 from __future__ import annotations
@@ -68,24 +68,25 @@ LP_SPIKE_THRESHOLD_MV = 2
 LP_SPIKE_HYSTERESIS_MV = 3
 LP_V_FAULT_MV = 4
 LP_MG_MM = 5  # [Mg2+] of the cell's one Mg-blocked group (0: none); see ``element_conductances``
-LP_SPIKE_RING = 6  # length of the cell-spike history ring in ``loop_s`` (a power of two)
-N_LOOP_PARAMS = 7
+N_LOOP_PARAMS = 6
 
-# Loop state (float64 array ``loop_s``).
-LS_ARMED = 0  # detector armed (V went below threshold - hysteresis)
-LS_CELL_SPIKED = 1  # 1.0 when the cell spiked at this sample
-LS_SPIKES = 2  # cell spikes counted
-LS_FLAGS = 3  # FAULT_*/FLAG_* bits of this sample
-LS_N_FAULT = 4  # samples that injected 0 pA because of a fault
-LS_N_LIMITED = 5  # samples whose command was clipped to max_current_pA
-# The cell's current law at the last sample: I(V) = a - g V + B(V) (a_b - g_b V), pA with V
-# in mV, B the Mg2+ block of LP_MG_MM (every conductance is linear in V given g).
-LS_LAW_A_PA = 6
-LS_LAW_G_NS = 7
-LS_LAW_AB_PA = 8
-LS_LAW_GB_NS = 9
-LS_SPIKE_RING = 10  # first column of the cell-spike history (loop_p[LP_SPIKE_RING] columns)
-N_LOOP_STATE = 10  # fixed columns; build_program adds the ring after them
+# Loop state: a record (``loop_s``, a structured array of length 1).
+LOOP_STATE = np.dtype(
+    [
+        ("armed", np.bool_),  # detector armed (V went below threshold - hysteresis)
+        ("cell_spiked", np.bool_),  # the cell spiked at this sample
+        ("spikes", np.int64),  # cell spikes counted
+        ("flags", np.int64),  # FAULT_*/FLAG_* bits of this sample
+        ("n_fault", np.int64),  # samples that injected 0 pA because of a fault
+        ("n_limited", np.int64),  # samples whose command was clipped to max_current_pA
+        # The cell's current law at the last sample: I(V) = a - g V + B(V) (a_b - g_b V), pA
+        # with V in mV, B the Mg2+ block of LP_MG_MM (every conductance is linear in V given g).
+        ("law_a_pA", np.float64),
+        ("law_g_nS", np.float64),
+        ("law_ab_pA", np.float64),
+        ("law_gb_nS", np.float64),
+    ]
+)
 
 FAULT_BAD_V = 1
 FAULT_NONFINITE = 2
@@ -95,30 +96,31 @@ FLAG_LIMITED = 4
 @kernel
 def _detect_cell_spike(v_mV: float, loop_p: np.ndarray, loop_s: np.ndarray) -> bool:
     threshold = loop_p[LP_SPIKE_THRESHOLD_MV]
-    if loop_s[LS_ARMED] != 0.0:
+    ls = loop_s[0]
+    if ls["armed"]:
         if v_mV >= threshold:
-            loop_s[LS_ARMED] = 0.0
+            ls["armed"] = False
             return True
     elif v_mV < threshold - loop_p[LP_SPIKE_HYSTERESIS_MV]:
-        loop_s[LS_ARMED] = 1.0
+        ls["armed"] = True
     return False
 
 
 @kernel
-def hist_record_cell_spike(n: int, spiked: bool, loop_p: np.ndarray, loop_s: np.ndarray) -> None:
+def hist_record_cell_spike(n: int, spiked: bool, spike_ring: np.ndarray) -> None:
     """Remember whether the cell spiked at sample ``n`` (read back by delayed synapses).
 
-    A spike is stored as n + 1, so a sample not heard yet (law mode, a slot still holding
-    an older sample) never reads as a spike (``_heard_cell_spike``).
+    ``spike_ring``: the program's history ring (its length a power of two). A spike is
+    stored as n + 1, so a sample not heard yet (law mode, a slot still holding an older
+    sample) never reads as a spike (``_heard_cell_spike``).
     """
-    ring = int(loop_p[LP_SPIKE_RING])
-    loop_s[LS_SPIKE_RING + (n & (ring - 1))] = n + 1.0 if spiked else 0.0
+    spike_ring[n & (spike_ring.shape[0] - 1)] = n + 1 if spiked else 0
 
 
 @kernel
-def _heard_cell_spike(j: int, ring: int, loop_s: np.ndarray) -> bool:
+def _heard_cell_spike(j: int, spike_ring: np.ndarray) -> bool:
     """Whether the cell's spike of sample ``j`` is in the history ring."""
-    return j >= 0 and loop_s[LS_SPIKE_RING + (j & (ring - 1))] == j + 1.0
+    return j >= 0 and spike_ring[j & (spike_ring.shape[0] - 1)] == j + 1
 
 
 @kernel
@@ -147,7 +149,7 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
 
     Writes each element's conductance to ``g_out`` (nS), the current of elements
     that do not depend on the cell's V (current waveforms, elements on virtual
-    neurons) to ``i_out``, and the cell's law coefficients to ``loop_s[LS_LAW_*]``.
+    neurons) to ``i_out``, and the cell's law coefficients to ``loop_s``'s ``law_*`` fields.
     A cell-driven synapse hears the cell's spike of sample n - delay from the
     history ring (``hist_record_cell_spike`` must have run for that sample).
     """
@@ -155,7 +157,6 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
     g_out, i_out, loop_p, loop_s = pa.g_out, pa.i_out, pa.loop_p, pa.loop_s
     dt_ms = loop_p[LP_DT_MS]
     t_ms = n * dt_ms
-    ring = int(loop_p[LP_SPIKE_RING])
     a_pA = 0.0
     g_nS = 0.0
     ab_pA = 0.0
@@ -176,7 +177,7 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
             g = p[_leak.P_G]
             e_mV = p[_leak.P_E]
         elif k == KIND_SYNAPSE:
-            heard = _heard_cell_spike(n - int(p[_syn.P_DELAY]), ring, loop_s)
+            heard = _heard_cell_spike(n - int(p[_syn.P_DELAY]), pa.spike_ring)
             events = _syn.synapse_events(pa, r, t_ms, dt_ms, heard)
             g = _syn.synapse_conductance(p, state[r], events, t_ms, dt_ms)
             e_mV = p[_syn.P_E]
@@ -205,10 +206,11 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
         else:
             a_pA += g * e_mV
             g_nS += g
-    loop_s[LS_LAW_A_PA] = a_pA
-    loop_s[LS_LAW_G_NS] = g_nS
-    loop_s[LS_LAW_AB_PA] = ab_pA
-    loop_s[LS_LAW_GB_NS] = gb_nS
+    ls = loop_s[0]
+    ls["law_a_pA"] = a_pA
+    ls["law_g_nS"] = g_nS
+    ls["law_ab_pA"] = ab_pA
+    ls["law_gb_nS"] = gb_nS
     for r in range(kind.shape[0]):
         if kind[r] != KIND_NEURON:
             continue
@@ -256,11 +258,12 @@ def step(v_mV: float, n: int, pa: ProgramArrays) -> float:
     """
     kind, params, state, g_out, i_out = pa.kind, pa.params, pa.state, pa.g_out, pa.i_out
     loop_p, loop_s = pa.loop_p, pa.loop_s
+    ls = loop_s[0]
     dt_ms = loop_p[LP_DT_MS]
-    loop_s[LS_CELL_SPIKED] = 0.0
+    ls["cell_spiked"] = False
     if not math.isfinite(v_mV) or abs(v_mV) > loop_p[LP_V_FAULT_MV]:
-        loop_s[LS_FLAGS] = FAULT_BAD_V
-        loop_s[LS_N_FAULT] += 1.0
+        ls["flags"] = FAULT_BAD_V
+        ls["n_fault"] += 1
         g_out[:] = 0.0
         i_out[:] = 0.0
         return 0.0
@@ -290,23 +293,23 @@ def step(v_mV: float, n: int, pa: ProgramArrays) -> float:
     # A detector crossing during an imposed reset is the same spike, not a new one.
     cell_spiked = imposed or (detected and not clamping)
     if cell_spiked:
-        loop_s[LS_CELL_SPIKED] = 1.0
-        loop_s[LS_SPIKES] += 1.0
+        ls["cell_spiked"] = True
+        ls["spikes"] += 1
 
     # 3-4. Conductances (and the cell's current law), then the currents at this V.
-    hist_record_cell_spike(n, cell_spiked, loop_p, loop_s)
+    hist_record_cell_spike(n, cell_spiked, pa.spike_ring)
     element_conductances(n, pa)
     total += cell_currents(v_mV, kind, params, g_out, i_out)
 
     # 5. Output guard.
     limit = loop_p[LP_MAX_CURRENT_PA]
     if not math.isfinite(total):
-        loop_s[LS_FLAGS] = FAULT_NONFINITE
-        loop_s[LS_N_FAULT] += 1.0
+        ls["flags"] = FAULT_NONFINITE
+        ls["n_fault"] += 1
         return 0.0
     if abs(total) > limit:
-        loop_s[LS_FLAGS] = FLAG_LIMITED
-        loop_s[LS_N_LIMITED] += 1.0
+        ls["flags"] = FLAG_LIMITED
+        ls["n_limited"] += 1
         return limit if total > 0 else -limit
-    loop_s[LS_FLAGS] = 0.0
+    ls["flags"] = 0
     return total

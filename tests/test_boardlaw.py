@@ -44,7 +44,7 @@ from clampcore.calibration import (
 )
 from clampcore.law import LAW_MODE, block_table, board_arrays, law_scale, law_to_counts
 from clampcore.program import build_program
-from clampcore.step import LS_CELL_SPIKED, step
+from clampcore.step import step
 
 ROOT = Path(__file__).resolve().parents[1]
 VECTOR_DIR = ROOT / "firmware_protocol" / "vectors"
@@ -544,7 +544,7 @@ def test_board_spikes_and_resets_decide_as_the_host_step(c_lib: LawLibrary, case
     for n, adc in enumerate(adcs):
         v = counts_to_mV(CONV0, float(adc))  # the quantised V both sides see
         step(v, n, host.arrays())
-        host_spike = loop_s[LS_CELL_SPIKED] != 0.0
+        host_spike = bool(loop_s[0]["cell_spiked"])
         host_reset = g_out[tr_row] != 0.0  # the reset conductance is on at this sample
         for board in boards:
             _, flags = board.eval(adc, n)

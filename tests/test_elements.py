@@ -34,11 +34,6 @@ from clampcore.step import (
     FAULT_BAD_V,
     FAULT_NONFINITE,
     FLAG_LIMITED,
-    LS_CELL_SPIKED,
-    LS_FLAGS,
-    LS_N_FAULT,
-    LS_N_LIMITED,
-    LS_SPIKES,
     step,
 )
 
@@ -69,8 +64,8 @@ def _drive(program: Program, v_mV: np.ndarray | list[float]) -> dict[str, np.nda
         out["i_pA"][k] = step(float(v[k]), k, arrays)
         out["g_nS"][k] = program.g_out
         out["i_el_pA"][k] = program.i_out
-        out["flags"][k] = int(program.loop_s[LS_FLAGS])
-        out["cell_spiked"][k] = program.loop_s[LS_CELL_SPIKED] != 0.0
+        out["flags"][k] = int(program.loop_s[0]["flags"])
+        out["cell_spiked"][k] = program.loop_s[0]["cell_spiked"]
     return out
 
 
@@ -814,7 +809,7 @@ def test_spike_detection_with_hysteresis() -> None:
     v = [-10.0, -70.0, -10.0, -25.0, -10.0, -35.0, -21.0, -20.0, -5.0, -31.0, 0.0]
     out = _drive(prog, v)
     np.testing.assert_array_equal(np.flatnonzero(out["cell_spiked"]), [2, 7, 10])
-    assert prog.loop_s[LS_SPIKES] == 3
+    assert prog.loop_s[0]["spikes"] == 3
 
 
 def test_spike_detection_no_double_count_on_a_noisy_crossing() -> None:
@@ -859,8 +854,8 @@ def test_command_clipped_to_max_current_with_flag() -> None:
     out = _drive(prog, [-2.0, -10.0, 10.0, -4.0])  # leak current 200, 1000, -1000, 400 pA
     np.testing.assert_allclose(out["i_pA"], [200.0, 500.0, -500.0, 400.0])
     np.testing.assert_array_equal(out["flags"], [0, FLAG_LIMITED, FLAG_LIMITED, 0])
-    assert prog.loop_s[LS_N_LIMITED] == 2
-    assert prog.loop_s[LS_N_FAULT] == 0
+    assert prog.loop_s[0]["n_limited"] == 2
+    assert prog.loop_s[0]["n_fault"] == 0
 
 
 @pytest.mark.parametrize("bad_v", [math.nan, math.inf, -math.inf, 250.0, -201.0])
@@ -869,7 +864,7 @@ def test_bad_v_injects_zero_with_fault(bad_v: float) -> None:
     out = _drive(prog, [-50.0, bad_v, -50.0])
     np.testing.assert_allclose(out["i_pA"], [500.0, 0.0, 500.0])
     np.testing.assert_array_equal(out["flags"], [0, FAULT_BAD_V, 0])
-    assert prog.loop_s[LS_N_FAULT] == 1
+    assert prog.loop_s[0]["n_fault"] == 1
 
 
 @pytest.mark.parametrize("bad", [math.nan, math.inf])
@@ -885,8 +880,8 @@ def test_nonfinite_parameter_injects_zero_with_fault(bad: float) -> None:
     assert step(-10.0, 0, arrays) == pytest.approx(105.0)
     prog.params[slot.row, slot.col] = bad  # as a corrupted live change would
     assert step(-10.0, 1, arrays) == 0.0
-    assert int(prog.loop_s[LS_FLAGS]) == FAULT_NONFINITE
-    assert prog.loop_s[LS_N_FAULT] == 1
+    assert int(prog.loop_s[0]["flags"]) == FAULT_NONFINITE
+    assert prog.loop_s[0]["n_fault"] == 1
 
 
 def test_loader_refuses_what_would_fault_in_the_loop() -> None:
@@ -964,7 +959,7 @@ def test_live_change_applies_at_the_next_step() -> None:
     assert slot.array == "loop"
     prog.loop_p[slot.col] = check_live_change(prog, "loop", "max_current_pA", 20.0)
     assert step(v, 3, arrays) == -20.0
-    assert int(prog.loop_s[LS_FLAGS]) == FLAG_LIMITED
+    assert int(prog.loop_s[0]["flags"]) == FLAG_LIMITED
 
 
 @pytest.mark.parametrize(

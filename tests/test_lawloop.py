@@ -32,7 +32,7 @@ from clampcore.calibration import (
 from clampcore.engine import Engine, RunOptions
 from clampcore.experiment import load_experiment
 from clampcore.health import loop_health
-from clampcore.lawloop import LW_HI, new_law_link, process_rx_law, top_up_laws
+from clampcore.lawloop import new_law_link, process_rx_law, top_up_laws
 from clampcore.nwb import read_nwb_summary, validate_nwb
 from clampcore.preflight import law_lead_samples
 from clampcore.program import build_program
@@ -291,7 +291,7 @@ def test_a_spike_heard_too_late_is_delivered_with_the_next_law_and_counted(
         ll.io.rx[:n] = wire[:n]
         process_rx_law(n, ll, pa, sh)
         made = count - 1 + lead  # laws now exist up to the newest sample seen + lead
-        assert ll.lw[LW_HI] == made
+        assert ll.lw[0]["hi"] == made
         mask = ll.laws.shape[0] - 1
         g = np.array([ll.ghist[s & mask, 0] for s in range(made + 1)])
         jumps = np.flatnonzero(np.diff(g) > 1.0) + 1
