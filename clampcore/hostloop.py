@@ -21,7 +21,7 @@ and the shared blocks' (``clampcore.shared.LoopShared``).
 
 Public names: ``LinkArrays``, ``PortIo``, ``PortRun``, ``new_link``, ``new_port_io``,
 ``process_rx``, ``fd_loop``, ``next_input`` and ``write_all`` (the wait, read and write of
-both loops), the ``EXIT_*`` codes, the ``LINK_STATE`` record and the ``W_*`` indices.
+both loops), the ``EXIT_*`` codes, the ``LINK_STATE`` and ``WAIT_STATE`` records.
 """
 
 from __future__ import annotations
@@ -136,9 +136,13 @@ _POLL_SLICE_MS = 50  # a sleeping wait wakes this often to see a stop request
 _POLLHUP_POLLERR_POLLNVAL = 0x10 | 0x08 | 0x20  # <poll.h> on Linux
 
 
-# PortIo.wait columns
-W_IDLE_MS = 0  # time without input since the last bytes came, ms
-W_READY_US = 1  # monotonic time at which the last input was ready, µs
+# PortIo.wait: the state of waiting for input, one record.
+WAIT_STATE = np.dtype(
+    [
+        ("idle_ms", np.int64),  # time without input since the last bytes came, ms
+        ("ready_us", np.int64),  # monotonic time at which the last input was ready, µs
+    ]
+)
 
 
 class PortIo(NamedTuple):
@@ -148,7 +152,7 @@ class PortIo(NamedTuple):
     tx: np.ndarray  # uint8: the bytes of one write
     timespec: np.ndarray  # int64[2]: scratch of clock_gettime and nanosleep
     pollfd: np.ndarray  # int32[2]: scratch of poll
-    wait: np.ndarray  # int64[2]: the W_* columns
+    wait: np.ndarray  # WAIT_STATE (1,)
 
 
 def new_port_io(tx_bytes: int) -> PortIo:
@@ -158,7 +162,7 @@ def new_port_io(tx_bytes: int) -> PortIo:
         tx=np.zeros(tx_bytes, dtype=np.uint8),
         timespec=np.zeros(2, dtype=np.int64),
         pollfd=np.zeros(2, dtype=np.int32),
-        wait=np.zeros(2, dtype=np.int64),
+        wait=np.zeros(1, dtype=WAIT_STATE),
     )
 
 
@@ -360,15 +364,15 @@ def next_input(port: PortRun, samples: int, io: PortIo, ctrl: np.ndarray) -> int
     if ready < 0:
         return -EXIT_PORT_ERROR
     if ready == 0:
-        io.wait[W_IDLE_MS] += _POLL_SLICE_MS
-        if silent_ms > 0 and io.wait[W_IDLE_MS] >= silent_ms:
+        io.wait[0]["idle_ms"] += _POLL_SLICE_MS
+        if silent_ms > 0 and io.wait[0]["idle_ms"] >= silent_ms:
             return -EXIT_BOARD_SILENT
         return 0
     revents = io.pollfd[1] >> 16
     if (revents & 0x01) == 0 and (revents & _POLLHUP_POLLERR_POLLNVAL) != 0:
         return -EXIT_PORT_CLOSED
-    io.wait[W_IDLE_MS] = 0
-    io.wait[W_READY_US] = monotonic_us(io.timespec)
+    io.wait[0]["idle_ms"] = 0
+    io.wait[0]["ready_us"] = monotonic_us(io.timespec)
     got = fd_read(fd, io.rx, 0, io.rx.shape[0])
     if got == 0:
         return -EXIT_PORT_CLOSED
@@ -400,5 +404,5 @@ def fd_loop(port: PortRun, link: LinkArrays, pa: ProgramArrays, sh: LoopShared) 
         if length > 0:
             if not write_all(port.fd, link.io, length):
                 return EXIT_PORT_ERROR
-            turnaround_us = monotonic_us(link.io.timespec) - link.io.wait[W_READY_US]
+            turnaround_us = monotonic_us(link.io.timespec) - link.io.wait[0]["ready_us"]
             record_turnaround(link.lk, sh.ring, sh.stats, turnaround_us)
