@@ -229,6 +229,15 @@ def _die_with_parent() -> None:
         pass
 
 
+@dataclass
+class _Session:
+    """What the loop process's teardown needs, filled in as the run gets that far."""
+
+    link: BoardLink | None = None
+    started: bool = False  # the board was told to start
+    zero: Callable[[], Any] | None = None  # commands 0 pA on this run's link, in its mode
+
+
 def _loop_process(
     exp_text: str,
     port: str,
@@ -242,49 +251,15 @@ def _loop_process(
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # the main process decides when to stop
     _die_with_parent()
     report: dict[str, Any] = {"exit_code": 0, "error": None, "board_status": None}
-    shared = link = law = None
-    started = False
+    shared = None
+    session = _Session()
     try:
         program = build_program(exp_text, seed=options.seed)
-        exp = program.experiment
         shared = SharedRun.attach(names, RingLayout.for_program(program))
-        link = BoardLink(port)
-        hello = link.handshake()
-        report["board"] = {k: getattr(hello, k) for k in hello.__dataclass_fields__}
-        shared.publish_board(report["board"])  # the journal's header: any board's counts
-        plan = preflight(hello, exp, options, simulated=allow_default_calibration)
-        conv, rate, zero = plan.conv, plan.rate_hz, plan.zero_counts
-        report["notice"] = plan.notice
-        shared.publish_current_range(*current_range_pA(conv))  # live changes: the same rule
-        link.configure(rate, plan.watchdog_us, zero)
-        arrays = new_link(conv)
-        pa, sh = program.arrays(), shared.loop(program.spike_rows())
-        law = None
-        report["mode"] = plan.mode
-        if plan.mode == LAW_MODE:
-            law = _law_setup(link, program, plan, sh)
-        else:
-            _compile_before_start(arrays, pa, sh)
-        report["realtime"] = fifo_scheduling(options.realtime_priority)
-        spin_us = min(options.spin_us, SPIN_SHARE * 1e6 / rate)
-        with hold_cpu_dma_latency_zero(options.low_latency) as held:
-            report["low_latency_held"] = held
-            link.start()
-            started = True
-            shared.ctrl[CTRL_STATE] = STATE_RUNNING
-            fd = None if options.python_io else link.blocking_fd()
-            if law is not None:
-                if fd is None:
-                    raise EngineError("law mode needs a port with a file descriptor")
-                code = _law_loop(link, fd, law, spin_us, options.silent_ms, max_samples)
-            else:
-                # Samples that came with the replies must be answered before the loop waits.
-                _feed(link, link.take_unread(), arrays, pa, sh)
-                if fd is not None:
-                    port = PortRun(fd, spin_us, options.silent_ms, max_samples)
-                    code = fd_loop(port, arrays, pa, sh)
-                else:
-                    code = _python_loop(link, arrays, pa, sh, options, max_samples)
+        session.link = BoardLink(port)
+        code = _serve(
+            session, program, shared, options, max_samples, allow_default_calibration, report
+        )
         report["exit_code"] = int(code)
         shared.ctrl[CTRL_STATE] = STATE_STOPPING
         if code in (EXIT_PORT_CLOSED, EXIT_PORT_ERROR, EXIT_BOARD_SILENT):
@@ -294,33 +269,88 @@ def _loop_process(
     except Exception:
         report["error"] = traceback.format_exc()
     finally:
-        if link is not None:
-            if started:
-                # Safety first: 0 pA (a command answering the newest sample, so that the board
-                # applies it; PROTOCOL.md §5.2), then stop the board.
-                with contextlib.suppress(BoardError, OSError, NameError):
-                    if law is not None:
-                        link.zero_now(confirm_s=_ZERO_CONFIRM_S)
-                    else:
-                        link.command_after(
-                            int(arrays.lk[0]["next_seq"]),
-                            int(arrays.lk[0]["last_counter"]),
-                            zero,
-                            timeout_s=_ZERO_WAIT_PERIODS / rate + _ZERO_WAIT_SLACK_S,
-                        )
-                with contextlib.suppress(BoardError, OSError):
-                    status = link.stop()
-                    if status is not None:
-                        report["board_status"] = {
-                            k: getattr(status, k) for k in status.__dataclass_fields__
-                        }
-            link.close()
+        if session.link is not None:
+            _stop_board(session, report)
         if shared is not None:
             shared.ctrl[CTRL_STATE] = STATE_FAILED if report["error"] else STATE_STOPPED
             shared.ctrl[CTRL_EXIT] = report["exit_code"]
             shared.close()
         conn.send(report)
         conn.close()
+
+
+def _serve(
+    session: _Session,
+    program: Program,
+    shared: SharedRun,
+    options: RunOptions,
+    max_samples: int,
+    allow_default_calibration: bool,
+    report: dict[str, Any],
+) -> int:
+    """Greet and configure the board, warm up, then run the loop until it ends; returns the
+    loop's ``EXIT_*`` code. ``report`` gets the board, the mode and the scheduling held."""
+    link, exp = session.link, program.experiment
+    assert link is not None
+    hello = link.handshake()
+    report["board"] = {k: getattr(hello, k) for k in hello.__dataclass_fields__}
+    shared.publish_board(report["board"])  # the journal's header: any board's counts
+    plan = preflight(hello, exp, options, simulated=allow_default_calibration)
+    conv, rate = plan.conv, plan.rate_hz
+    report["notice"] = plan.notice
+    shared.publish_current_range(*current_range_pA(conv))  # live changes: the same rule
+    link.configure(rate, plan.watchdog_us, plan.zero_counts)
+    arrays = new_link(conv)
+    pa, sh = program.arrays(), shared.loop(program.spike_rows())
+    report["mode"] = plan.mode
+    law = None
+    if plan.mode == LAW_MODE:
+        law = _law_setup(link, program, plan, sh)
+        session.zero = lambda: link.zero_now(confirm_s=_ZERO_CONFIRM_S)
+    else:
+        _compile_before_start(arrays, pa, sh)
+        # A command answering the newest sample, so that the board applies it (PROTOCOL.md §5.2).
+        session.zero = lambda: link.command_after(
+            int(arrays.lk[0]["next_seq"]),
+            int(arrays.lk[0]["last_counter"]),
+            plan.zero_counts,
+            timeout_s=_ZERO_WAIT_PERIODS / rate + _ZERO_WAIT_SLACK_S,
+        )
+    report["realtime"] = fifo_scheduling(options.realtime_priority)
+    spin_us = min(options.spin_us, SPIN_SHARE * 1e6 / rate)
+    with hold_cpu_dma_latency_zero(options.low_latency) as held:
+        report["low_latency_held"] = held
+        link.start()
+        session.started = True
+        shared.ctrl[CTRL_STATE] = STATE_RUNNING
+        fd = None if options.python_io else link.blocking_fd()
+        if law is not None:
+            if fd is None:
+                raise EngineError("law mode needs a port with a file descriptor")
+            return _law_loop(link, fd, law, spin_us, options.silent_ms, max_samples)
+        # Samples that came with the replies must be answered before the loop waits.
+        _feed(link, link.take_unread(), arrays, pa, sh)
+        if fd is None:
+            return _python_loop(link, arrays, pa, sh, options, max_samples)
+        return fd_loop(PortRun(fd, spin_us, options.silent_ms, max_samples), arrays, pa, sh)
+
+
+def _stop_board(session: _Session, report: dict[str, Any]) -> None:
+    """Teardown, whatever happened: 0 pA first, then STOP (its status into ``report``), then
+    close the port. Never raises."""
+    link = session.link
+    assert link is not None
+    if session.started:
+        if session.zero is not None:  # safety first
+            with contextlib.suppress(BoardError, OSError):
+                session.zero()
+        with contextlib.suppress(BoardError, OSError):
+            status = link.stop()
+            if status is not None:
+                report["board_status"] = {
+                    k: getattr(status, k) for k in status.__dataclass_fields__
+                }
+    link.close()
 
 
 @dataclass

@@ -91,8 +91,8 @@ MUTANTS: tuple[Mutant, ...] = (
         "law-teardown-zero",
         "law mode: no zero request before STOP",
         "clampcore/engine.py",
-        "                        link.zero_now(confirm_s=_ZERO_CONFIRM_S)",
-        "                        pass",
+        "session.zero = lambda: link.zero_now(confirm_s=_ZERO_CONFIRM_S)",
+        "session.zero = lambda: None",
         ("tests/test_lawloop.py::test_zero_request_acts_at_once_and_teardown_leaves_zero",),
     ),
     Mutant(
