@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from clampcore.lawloop import FLAG_STALE
 from clampcore.nwb import NwbError, read_nwb_summary
 from clampcore.plot import plot_recording
 from clampcore.step import FAULT_BAD_V, FAULT_NONFINITE, FLAG_LIMITED
@@ -75,7 +76,11 @@ def summary_text(summary: dict[str, Any], lo: float, hi: float) -> str:
         f = np.nan_to_num(flags[rows]).astype(np.int64)
         faults = int(np.count_nonzero(f & (FAULT_BAD_V | FAULT_NONFINITE)))
         limited = int(np.count_nonzero(f & FLAG_LIMITED))
-        lines.append(f"fault samples (0 pA injected): {faults}; at the current limit: {limited}")
+        line = f"fault samples (0 pA injected): {faults}; at the current limit: {limited}"
+        stale = int(np.count_nonzero(f & FLAG_STALE))
+        if stale:  # law mode: the board had no law young enough (PROTOCOL.md §10)
+            line += f"; without a young law (0 pA): {stale}"
+        lines.append(line)
     events = [e for e in summary["events"] if lo <= e["time_s"] < hi]
     others = [e for e in events if e["kind"] != "param"]
     lines.append(f"events: {len(others)}" + ("" if not others else ":"))

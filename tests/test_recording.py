@@ -282,3 +282,21 @@ def test_counter_gaps_and_small_integers_worked_examples():
     data, unknown = smallest_uint(np.array([0, 255, np.nan]))  # 255 taken: the next type
     assert data.dtype == np.uint16 and unknown == np.iinfo(np.uint16).max
     assert smallest_uint(np.array([0.5])) is None and smallest_uint(np.array([-1.0])) is None
+
+
+def test_show_counts_law_mode_samples_without_a_young_law(tmp_path):
+    """A law-mode sample the board served with 0 pA for want of a young law (PROTOCOL.md §10,
+    recorded as the ring's FLAG_STALE bit) is counted in the summary, within the slice."""
+    from clampcore.lawloop import FLAG_STALE
+    from clampcore.show import summary_text
+
+    rec = clampcore.simulate(EXAMPLES / "slice_background.toml", 0.2, seed=1)
+    summary = read_nwb_summary(rec.save(tmp_path / "law.nwb"))
+    # A run's recording has a flags column (an offline one has none): the same, all clear.
+    flags = summary["columns"].setdefault("flags", np.zeros(summary["n_samples"]))
+    assert "without a young law" not in summary_text(summary, 0.0, 0.2)
+    flags[100:130] = FLAG_STALE  # 30 stale samples, at 5-6.5 ms at 20 kHz
+    flags[3000] = FLAG_STALE  # one outside the slice below
+    rate = float(summary["rate_hz"])
+    assert "without a young law (0 pA): 31" in summary_text(summary, 0.0, 0.2)
+    assert "without a young law (0 pA): 30" in summary_text(summary, 0.0, 2000 / rate)
