@@ -72,8 +72,15 @@ def _nearest_count(volts: float, min_V: float, max_V: float, top: float) -> int:
 
     x is formed as (v - min) * top / (max - min): the same real number, but exact in
     binary floating point whenever (v - min) * top is and divides evenly, so exact halves
-    stay exact halves."""
-    c = math.floor((volts - min_V) * top / (max_V - min_V) + 0.5)
+    stay exact halves.
+
+    Beyond the range the count saturates, infinities too (clipped before the floor: an
+    infinite float has no integer); NaN gives the count of 0 V, never an end of the range.
+    """
+    if volts != volts:  # NaN
+        volts = 0.0
+    x = min(max((volts - min_V) * top / (max_V - min_V), -1.0), top + 1.0)
+    c = math.floor(x + 0.5)
     return int(min(max(c, 0.0), top))
 
 

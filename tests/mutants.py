@@ -256,8 +256,8 @@ MUTANTS: tuple[Mutant, ...] = (
         "rounding",
         "counts rounded half to even instead of floor(x + 1/2)",
         "clampcore/calibration.py",
-        "c = math.floor((volts - min_V) * top / (max_V - min_V) + 0.5)",
-        "c = round((volts - min_V) * top / (max_V - min_V))",
+        "c = math.floor(x + 0.5)",
+        "c = round(x)",
         ("tests/test_calibration.py",),
     ),
     # ---- CRC and COBS, both codecs, every C build

@@ -87,6 +87,21 @@ def test_exact_halves_round_up_as_the_specification_says() -> None:
         assert mV_to_counts(conv, 100.0 * i_pA) == expected, i_pA
 
 
+@pytest.mark.parametrize("compiled", [True, False], ids=["compiled", "plain-python"])
+def test_counts_saturate_beyond_the_range_and_at_infinity(compiled: bool) -> None:
+    """PROTOCOL.md §6 clips to 0 .. 2^N - 1: a value beyond either end, infinite ones too,
+    takes that end's count (a float infinity has no integer: it must be clipped first);
+    NaN takes the count of 0 V (the spec's formula at v = 0), never an end of the range."""
+    conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, AMP_PLAIN)
+    to_mv = mV_to_counts if compiled else mV_to_counts.py_func
+    to_pa = pA_to_counts if compiled else pA_to_counts.py_func
+    top = 2**DEFAULT_BOARD_ADC.bits - 1
+    for convert, huge in ((to_mv, 1e4), (to_pa, 1e6)):  # ±10 V is ±1000 mV, ±4000 pA
+        assert convert(conv, huge) == convert(conv, math.inf) == top
+        assert convert(conv, -huge) == convert(conv, -math.inf) == 0
+        assert convert(conv, math.nan) == spec_count(0.0, DEFAULT_BOARD_ADC) == 32_768
+
+
 @pytest.mark.parametrize("amp", [AMP_PLAIN, AMP_OFFSETS], ids=["plain", "offsets"])
 def test_random_currents_and_potentials_against_the_exact_formula(amp: dict) -> None:
     conv = conversion_array(DEFAULT_BOARD_ADC, DEFAULT_BOARD_DAC, amp)
