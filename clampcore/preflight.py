@@ -68,19 +68,21 @@ def _experiment(experiment: Any) -> Experiment:
     return getattr(experiment, "experiment", None) or load_experiment(experiment)
 
 
-def law_lead_samples(experiment: Any, law_queue: int | None = None) -> int:
+def law_lead_samples(experiment: Any, law_queue: int | None = None, batch: int = 1) -> int:
     """Law mode's look-ahead in samples: ``lead_ms``, shortened to fit every cell-driven
     synapse's delay (at least lead + 1 samples: the minimum-delay rule of parallel network
     simulation). ``experiment``: anything ``load_experiment`` takes, or a ``Program``.
 
-    Raises ``PreflightError`` naming the synapse when a delay leaves less than ``MIN_LEAD_MS``, and
-    naming ``lead_ms`` when the look-ahead exceeds ``law_queue`` (the laws the board holds
-    ahead, from its HELLO; None: no limit).
+    Raises ``PreflightError`` naming the synapse when a delay leaves less than ``MIN_LEAD_MS``
+    plus the board's batching (a board that sends ``batch`` samples a frame, HELLO
+    ``max_samples``, lets the host hear a sample up to batch - 1 samples late), and naming
+    ``lead_ms`` when the look-ahead exceeds ``law_queue`` (the laws the board holds ahead,
+    from its HELLO; None: no limit).
     """
     exp = _experiment(experiment)
     rate = float(exp.loop["rate_hz"])
     lead = max(1, round(exp.loop["lead_ms"] * rate / 1000.0))
-    floor = max(1, math.ceil(MIN_LEAD_MS * rate / 1000.0))
+    floor = max(1, math.ceil(MIN_LEAD_MS * rate / 1000.0)) + max(0, batch - 1)
     for e in exp.elements:
         if e["kind"] == "synapse" and e["source"] == "cell":
             d = delay_samples(e["delay_ms"], exp.dt_ms)
@@ -159,7 +161,7 @@ def preflight(hello: codec.Hello, experiment: Any, options: Any, simulated: bool
         if hello.evaluates_laws:
             mode = LAW_MODE
             _law_refusals(exp, hello)
-            lead = law_lead_samples(exp, hello.law_queue)
+            lead = law_lead_samples(exp, hello.law_queue, hello.max_samples)
             # An explicit look-ahead (RunOptions.lead_samples) replaces the synapses' bound: a
             # cell-driven synapse whose delay it exceeds gets its spikes late (counted).
             override = getattr(options, "lead_samples", None)

@@ -80,6 +80,27 @@ def test_a_lead_beyond_the_boards_queue_is_refused_with_the_longest_it_allows() 
     assert plan.lead_samples == 128  # exactly the queue: the newest law is 127 ahead
 
 
+def test_a_batching_board_needs_longer_cell_driven_delays() -> None:
+    """A board that sends 20 samples a frame (PROTOCOL.md §10.4) lets the host hear a spike up
+    to 19 samples late, so the shortest look-ahead grows by 19 samples: at 20 kHz 1 ms
+    (MIN_LEAD_MS, 20 samples) + 19 = 39 samples, and a cell-driven delay must be at least
+    40 samples, 2 ms (the minimum-delay rule: delay >= lead + 1)."""
+    exp = copy.deepcopy(EXP)
+    exp["element"].append(
+        {"kind": "synapse", "name": "from_cell", "g_max_nS": 1.0, "e_mV": 0.0,
+         "tau_decay_ms": 5.0, "source": "cell", "delay_ms": 1.5}
+    )  # fmt: skip
+    # One sample a frame: 1.5 ms (30 samples) allows a look-ahead of 29 samples.
+    assert preflight(LAW_BOARD, exp, RunOptions()).lead_samples == 29
+    batching = dataclasses.replace(LAW_BOARD, max_samples=20)
+    with pytest.raises(
+        PreflightError, match=r"'from_cell': delay_ms = 1\.5 .*shortest it allows is 2 ms"
+    ):
+        preflight(batching, exp, RunOptions())
+    exp["element"][-1]["delay_ms"] = 2.0
+    assert preflight(batching, exp, RunOptions()).lead_samples == 39
+
+
 def test_a_missing_calibration_is_refused_except_on_the_simulated_rig() -> None:
     exp = copy.deepcopy(EXP)
     del exp["amplifier"]
