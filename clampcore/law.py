@@ -89,8 +89,18 @@ def law_to_counts(
 
 @kernel
 def make_law(s: int, scale: np.ndarray, pa: ProgramArrays, out: np.ndarray) -> None:
-    """Advance every element to sample ``s`` and write that sample's law, in counts, to ``out``."""
+    """Advance every element to sample ``s`` and write that sample's law, in counts, to ``out``.
+
+    A threshold_reset row's ``g_out`` and ``e_out`` get the rule the board applies from this
+    sample on (its conductance while clamping, its reset potential), so that a sample's
+    record keeps the rule its law was made with (``lawloop.board_reset_current``).
+    """
     element_conductances(s, pa)
+    for r in range(pa.kind.shape[0]):
+        if pa.kind[r] == KIND_THRESHOLD_RESET:
+            p = pa.params[r]
+            pa.g_out[r] = p[_tr.P_G] if p[P_ENABLED] != 0.0 else 0.0
+            pa.e_out[r] = p[_tr.P_RESET]
     ls = pa.loop_s[0]
     law_to_counts(scale, ls["law_a_pA"], ls["law_g_nS"], ls["law_ab_pA"], ls["law_gb_nS"], out)
 

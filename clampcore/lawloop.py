@@ -34,7 +34,6 @@ import numpy as np
 
 from clampcore.calibration import counts_to_mV, counts_to_pA
 from clampcore.elements import KIND_THRESHOLD_RESET
-from clampcore.elements import threshold_reset as _tr
 from clampcore.elements.neuron import S_SPIKED as NEURON_S_SPIKED
 from clampcore.firmware_protocol import boardlaw as bl
 from clampcore.firmware_protocol import lawmsg
@@ -138,7 +137,7 @@ class LawLinkArrays(NamedTuple):
     s_flags: np.ndarray
     laws: np.ndarray  # float32 (R, 4): law ring, row = sample & (R - 1)
     lawbits: np.ndarray  # uint32 view of laws
-    ghist: np.ndarray  # float64 (R, 2 n_el + n_neurons): g, direct i, neuron spikes
+    ghist: np.ndarray  # float64 (R, 3 n_el + n_neurons): g, direct i, E, neuron spikes
     body: np.ndarray
     conv: np.ndarray  # the board's converters and the amplifier (clampcore.calibration)
     scale: np.ndarray  # the law's units for conv (clampcore.law.law_scale)
@@ -185,7 +184,7 @@ def new_law_link(
         s_flags=np.zeros(lawmsg.MAX_SAMPLES, dtype=np.int64),
         laws=laws,
         lawbits=laws.view(np.uint32),
-        ghist=np.zeros((rows, 2 * n_elements + n_neurons)),
+        ghist=np.zeros((rows, 3 * n_elements + n_neurons)),
         body=np.zeros(MAX_PAYLOAD, dtype=np.uint8),
         conv=conv,
         scale=law_scale(conv),
@@ -225,17 +224,19 @@ def board_reset_current(
     v_mV: float,
     on: bool,
     kind: np.ndarray,
-    params: np.ndarray,
     g_out: np.ndarray,
     i_out: np.ndarray,
+    e_out: np.ndarray,
 ) -> None:
-    """The threshold_reset element's conductance and current, which the board applied."""
+    """The threshold_reset element's conductance and current, which the board applied
+    (``on``: it clamped at this sample) with the rule its law was made with (``make_law``:
+    the conductance in ``g_out``, the reset potential in ``e_out``)."""
     for r in range(kind.shape[0]):
         if kind[r] != KIND_THRESHOLD_RESET:
             continue
-        g = params[r, _tr.P_G] if on else 0.0
+        g = g_out[r] if on else 0.0
         g_out[r] = g
-        i_out[r] = -g * (v_mV - params[r, _tr.P_RESET])
+        i_out[r] = -g * (v_mV - e_out[r])
 
 
 @kernel
@@ -264,8 +265,9 @@ def top_up_laws(ll: LawLinkArrays, at: int, pa: ProgramArrays, sh: LoopShared) -
         for r in range(n_el):
             ghist[h, r] = g_out[r]
             ghist[h, n_el + r] = i_out[r]
+            ghist[h, 2 * n_el + r] = pa.e_out[r]
         for j in range(neuron_rows.shape[0]):
-            ghist[h, 2 * n_el + j] = state[neuron_rows[j], NEURON_S_SPIKED]
+            ghist[h, 3 * n_el + j] = state[neuron_rows[j], NEURON_S_SPIKED]
         lw[0]["hi"] = s
     s = first
     while True:  # at least one frame: it says how far the host has got
@@ -333,7 +335,7 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
     lw, dstate, dbuf, frame, fields = ll.lw, ll.dstate, ll.dbuf, ll.frame, ll.fields
     s_adc, s_dac, s_flags, laws, ghist = ll.s_adc, ll.s_dac, ll.s_flags, ll.laws, ll.ghist
     body, conv, rx, tx = ll.body, ll.conv, ll.io.rx, ll.io.tx
-    kind, params, g_out, i_out = pa.kind, pa.params, pa.g_out, pa.i_out
+    kind, params, g_out, i_out, e_out = pa.kind, pa.params, pa.g_out, pa.i_out, pa.e_out
     ctrl, ring, stats, neuron_rows = sh.ctrl, sh.ring, sh.stats, sh.neuron_rows
     n_el = kind.shape[0]
     rows = ring.shape[0]
@@ -370,11 +372,14 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
                 stats[ST_LATE_SPIKES] += queue_late_cell_spike(n, lw[0]["hi"], pa)
             v_mV = counts_to_mV(conv, float(s_adc[i]))
             h = n & mask
+            # Each element as the law of sample n was made (a live change since then acts
+            # from a later sample): g, direct current and reversal potential.
             for r in range(n_el):
                 g_out[r] = ghist[h, r]
                 i_out[r] = ghist[h, n_el + r]
-            cell_currents(v_mV, kind, params, g_out, i_out)
-            board_reset_current(v_mV, (bflags & bl.BF_FLAG_RESET) != 0, kind, params, g_out, i_out)
+                e_out[r] = ghist[h, 2 * n_el + r]
+            cell_currents(v_mV, kind, params, g_out, i_out, e_out)
+            board_reset_current(v_mV, (bflags & bl.BF_FLAG_RESET) != 0, kind, g_out, i_out, e_out)
             flags = host_flags(bflags)
             row = lw[0]["samples"] % rows
             ring[row, COL_COUNTER] = counter
@@ -394,7 +399,7 @@ def process_rx_law(nbytes: int, ll: LawLinkArrays, pa: ProgramArrays, sh: LoopSh
             spk = base + 2 * n_el
             ring[row, spk] = 1.0 if spiked else 0.0
             for j in range(neuron_rows.shape[0]):
-                ring[row, spk + 1 + j] = ghist[h, 2 * n_el + j]
+                ring[row, spk + 1 + j] = ghist[h, 3 * n_el + j]
             lw[0]["samples"] += 1
             ctrl[CTRL_WRITTEN] = lw[0]["samples"]
             stats[ST_SAMPLES] += 1.0

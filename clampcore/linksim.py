@@ -201,9 +201,10 @@ def link_loop(
         # Each sample's element currents at the V the cell had (the host keeps g until V comes).
         for k in range(min(n, hi + 1)):
             v_k = counts_to_mV(conv, float(out_adc[k]))
-            cell_currents(v_k, kind, params, out_g[k], out_i_el[k])
+            # (No live changes here: every law's reversal potentials are the same, pa.e_out.)
+            cell_currents(v_k, kind, params, out_g[k], out_i_el[k], pa.e_out)
             reset_on = (out_flags[k] & BF_FLAG_RESET) != 0
-            board_reset_current(v_k, reset_on, kind, params, out_g[k], out_i_el[k])
+            board_reset_current(v_k, reset_on, kind, out_g[k], out_i_el[k], pa.e_out)
     counters[1] = hi
 
 

@@ -94,7 +94,8 @@ def closed_loop(
         # step writes every element's g and i of this sample straight into the recording.
         kind, params, state, rng, trains = pa.kind, pa.params, pa.state, pa.rng, pa.trains
         row = ProgramArrays(
-            kind, params, state, rng, trains, out_g[n], out_i_el[n], loop_p, loop_s, pa.spike_ring
+            kind, params, state, rng, trains, out_g[n], out_i_el[n], pa.e_out, loop_p, loop_s,
+            pa.spike_ring,
         )  # fmt: skip
         i_pA = step(v_mV, n, row)
         commands_pA[slot] = dac_round_trip_pA(conv, rt.coef, rt.dac_pA, i_pA) if quantise else i_pA

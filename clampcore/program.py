@@ -57,11 +57,12 @@ class ParamSlot:
 
 # ``Program``'s array fields, in the order compiled code takes them (``ProgramArrays``).
 ARRAY_FIELDS = (
-    "kind", "params", "state", "rng", "trains", "g_out", "i_out", "loop_p", "loop_s", "spike_ring"
+    "kind", "params", "state", "rng", "trains", "g_out", "i_out", "e_out", "loop_p", "loop_s",
+    "spike_ring",
 )  # fmt: skip
 
 # A program's arrays as compiled code takes them (``step``, ``make_law``, the loops): one
-# argument that numba passes as the ten arrays, at no cost per call. Fields: as ``Program``.
+# argument that numba passes as the eleven arrays, at no cost per call. Fields: as ``Program``.
 ProgramArrays = NamedTuple("ProgramArrays", [(f, np.ndarray) for f in ARRAY_FIELDS])  # type: ignore[misc]
 
 
@@ -78,6 +79,7 @@ class Program:
     trains: np.ndarray  # float64, every train source's times (ms) one after another
     g_out: np.ndarray  # float64 (n,)  conductance of each element at the last sample, nS
     i_out: np.ndarray  # float64 (n,)  current of each element at the last sample, pA
+    e_out: np.ndarray  # float64 (n,)  reversal potential of each conductance at it, mV
     loop_p: np.ndarray  # float64 (N_LOOP_PARAMS,): clampcore.step's LP_* columns
     loop_s: np.ndarray  # clampcore.step.LOOP_STATE (1,): the loop's state, one record
     spike_ring: np.ndarray  # int64 (power of two,): the cell's spike history (clampcore.step)
@@ -214,6 +216,7 @@ def build_program(experiment: Any, seed: int = 0) -> Program:
         trains=np.asarray(ctx.trains, dtype=np.float64),
         g_out=np.zeros(n),
         i_out=np.zeros(n),
+        e_out=np.zeros(n),
         loop_p=loop_p,
         loop_s=np.zeros(1, dtype=step_mod.LOOP_STATE),
         spike_ring=np.zeros(ring, dtype=np.int64),

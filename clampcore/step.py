@@ -147,9 +147,10 @@ def queue_late_cell_spike(m: int, hi: int, pa: ProgramArrays) -> int:
 def element_conductances(n: int, pa: ProgramArrays) -> None:
     """Advance every element but threshold_reset to sample ``n``; sum the cell's law.
 
-    Writes each element's conductance to ``g_out`` (nS), the current of elements
-    that do not depend on the cell's V (current waveforms, elements on virtual
-    neurons) to ``i_out``, and the cell's law coefficients to ``loop_s``'s ``law_*`` fields.
+    Writes each element's conductance to ``g_out`` (nS) and its reversal potential to
+    ``e_out`` (mV), the current of elements that do not depend on the cell's V (current
+    waveforms, elements on virtual neurons) to ``i_out``, and the cell's law coefficients
+    to ``loop_s``'s ``law_*`` fields.
     A cell-driven synapse hears the cell's spike of sample n - delay from the
     history ring (``hist_record_cell_spike`` must have run for that sample).
     """
@@ -189,6 +190,7 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
             g = 0.0
             i_out[r] = current_waveform(p, state[r], rng, r, t_ms, dt_ms)
         g_out[r] = g
+        pa.e_out[r] = e_mV
         if target >= 0:
             v_target = state[target, _neuron.S_V]
             if k != KIND_CURRENT:
@@ -225,9 +227,15 @@ def element_conductances(n: int, pa: ProgramArrays) -> None:
 
 @kernel
 def cell_currents(
-    v_mV: float, kind: np.ndarray, params: np.ndarray, g_out: np.ndarray, i_out: np.ndarray
+    v_mV: float,
+    kind: np.ndarray,
+    params: np.ndarray,
+    g_out: np.ndarray,
+    i_out: np.ndarray,
+    e_out: np.ndarray,
 ) -> float:
-    """Each cell element's current at ``v_mV`` from its conductance in ``g_out``; their sum.
+    """Each cell element's current at ``v_mV`` from its conductance in ``g_out`` and its
+    reversal potential in ``e_out`` (as ``element_conductances`` made them); their sum.
 
     I = -g B(V) (V - E) for a conductance (B = 1 unless an Mg-blocked synapse);
     a current waveform's ``i_out`` is kept as ``element_conductances`` set it.
@@ -238,14 +246,14 @@ def cell_currents(
         if k in (KIND_THRESHOLD_RESET, KIND_NEURON):
             continue
         p = params[r]
-        if p[P_ENABLED] == 0.0 or int(p[P_TARGET]) >= 0:
+        if int(p[P_TARGET]) >= 0:
             continue
-        if k == KIND_LEAK:
-            i_out[r] = -g_out[r] * (v_mV - p[_leak.P_E])
-        elif k == KIND_SYNAPSE:
-            i_out[r] = -g_out[r] * _syn.mg_block(v_mV, p[_syn.P_MG]) * (v_mV - p[_syn.P_E])
-        elif k == KIND_NOISE:
-            i_out[r] = -g_out[r] * (v_mV - p[_noise.P_E])
+        # A disabled element has g = 0 (element_conductances): no enabled flag read here, so
+        # that the law mode's samples in flight keep the state their laws were made with.
+        if k == KIND_SYNAPSE:
+            i_out[r] = -g_out[r] * _syn.mg_block(v_mV, p[_syn.P_MG]) * (v_mV - e_out[r])
+        elif k != KIND_CURRENT:
+            i_out[r] = -g_out[r] * (v_mV - e_out[r])
         total += i_out[r]
     return total
 
@@ -299,7 +307,7 @@ def step(v_mV: float, n: int, pa: ProgramArrays) -> float:
     # 3-4. Conductances (and the cell's current law), then the currents at this V.
     hist_record_cell_spike(n, cell_spiked, pa.spike_ring)
     element_conductances(n, pa)
-    total += cell_currents(v_mV, kind, params, g_out, i_out)
+    total += cell_currents(v_mV, kind, params, g_out, i_out, pa.e_out)
 
     # 5. Output guard.
     limit = loop_p[LP_MAX_CURRENT_PA]

@@ -200,9 +200,10 @@ def test_a_board_that_ignores_the_law_runs_in_current_mode(tmp_path):
 
 def test_live_changes_in_law_mode_reach_the_law_and_the_boards_rules(tmp_path):
     """A conductance change is part of the law: applied from the sample the host is making
-    laws for, and logged with it. A rule the board applies itself (the current limit) goes
-    to the board as RULES_AT naming that sample (PROTOCOL.md §10.4): the board clips from
-    exactly the logged sample on."""
+    laws for, and logged with it; so is a reversal potential's, in the recorded currents
+    too. A rule the board applies itself (the current limit) goes to the board as RULES_AT
+    naming that sample (PROTOCOL.md §10.4): the board clips from exactly the logged sample
+    on."""
     engine = Engine(SUBTHRESHOLD, "sim", RunOptions(rig_clock="wall"), rig_factory=start_rig)
     engine.start(duration_s=None, out=tmp_path / "live.nwb")
     deadline = time.monotonic() + 60
@@ -210,6 +211,8 @@ def test_live_changes_in_law_mode_reach_the_law_and_the_boards_rules(tmp_path):
         assert time.monotonic() < deadline and engine.running
         time.sleep(0.02)
     engine.change("extra_leak", "g_nS", 12.0)
+    time.sleep(0.2)
+    engine.change("extra_leak", "e_mV", -50.0)
     time.sleep(0.2)
     # The background conductance (3 nS at 0 mV, the cell near -70 mV) injects about
     # 3 nS x 70 mV = 210 pA: a 100 pA limit clips it.
@@ -224,12 +227,62 @@ def test_live_changes_in_law_mode_reach_the_law_and_the_boards_rules(tmp_path):
     first = int(np.flatnonzero(g == 12.0)[0])
     assert np.all(g[:first] == 5.0) and np.all(g[first:] == 12.0)
     assert counters[first] == change["sample"]
+    # Each sample's recorded current is the leak's at the V the board read, with the
+    # reversal potential of the law it ran (Ohm's law for a conductance, I = -g (V - E)):
+    # the samples already in flight when the change came keep the old E.
+    (moved,) = [c for c in rec["param_changes"] if c.get("field") == "e_mV"]
+    at_e = int(np.flatnonzero(counters == moved["sample"])[0])
+    e_mV = np.where(np.arange(g.size) < at_e, -70.0, -50.0)
+    np.testing.assert_allclose(
+        rec["columns"]["i_pA/extra_leak"], -g * (rec["v_mV"] - e_mV), rtol=1e-6, atol=1e-3
+    )
+    assert at_e > first + 1000  # 0.2 s later at 10 kHz, well past the look-ahead (100 samples)
     (limit,) = [c for c in rec["param_changes"] if c.get("field") == "max_current_pA"]
     at = int(np.flatnonzero(counters == limit["sample"])[0])
     step_pA = 400.0 * 20.0 / 65535  # one DAC count through 400 pA/V (PROTOCOL.md §6)
     i_pA = rec["i_pA"]
     assert np.all(np.abs(i_pA[at:]) <= 100.0 + step_pA / 2)  # the board's new limit
     assert np.max(np.abs(i_pA[at - 200 : at])) > 100.0 + step_pA  # not before it
+
+
+def test_a_live_reset_change_is_recorded_with_the_rule_each_sample_ran(tmp_path):
+    """threshold_reset in law mode is the board's rule (PROTOCOL.md §10.4 RULES_AT): a live
+    change of reset_mV acts from the sample the host was making laws for, and each sample's
+    recorded current is the rule's at the V the board read, I = -g (V - E_reset) while it
+    clamps (Ohm's law for a conductance), with the reset potential that sample ran."""
+    exp = load_experiment(EXAMPLE).to_dict()
+    # No cell-driven synapse (the look-ahead stays lead_ms, 10 ms); a steady 400 pA drive
+    # and a 30 ms clamp: the cell (5 nS, tau 20 ms) climbs from -65 to -50 mV in 4.5 ms,
+    # so the rule clamps within any 10 ms, and within the samples in flight at the change.
+    exp["element"] = [e for e in exp["element"] if e["name"] != "recurrent"]
+    tr, drive = exp["element"]
+    tr["refractory_ms"] = 30.0
+    drive.update(amplitude_pA=400.0, start_ms=0.0, period_ms=100_000.0, pulse_ms=100_000.0)
+    engine = Engine(exp, "sim", RunOptions(rig_clock="wall", mode="law"), rig_factory=start_rig)
+    engine.start(duration_s=None, out=tmp_path / "reset.nwb")
+    deadline = time.monotonic() + 60
+    while engine.status().get("samples", 0) < 3000:
+        assert time.monotonic() < deadline and engine.running
+        time.sleep(0.02)
+    engine.change("imposed_spike", "reset_mV", -60.0)
+    time.sleep(0.3)
+    result = engine.finish()
+    assert result.error is None, result.error
+    rec = read_nwb_summary(result.nwb_path)
+    (change,) = [c for c in rec["param_changes"] if c.get("field") == "reset_mV"]
+    counters = rec["columns"]["sample_counter"].astype(np.int64)
+    at = int(np.flatnonzero(counters == change["sample"])[0])
+    g = rec["columns"]["g_nS/imposed_spike"]
+    clamping = g > 0
+    assert np.all(g[clamping] == 60.0)
+    # The cell fired (the rule clamped) both before and after the change.
+    assert clamping[:at].sum() >= 20 and clamping[at:].sum() >= 20
+    lead = law_lead_samples(build_program(exp))
+    assert lead == 100 and clamping[at - lead : at].any()  # laws in flight at the change
+    e_reset = np.where(np.arange(g.size) < at, -65.0, -60.0)
+    np.testing.assert_allclose(
+        rec["columns"]["i_pA/imposed_spike"], -g * (rec["v_mV"] - e_reset), rtol=1e-6, atol=1e-3
+    )
 
 
 def test_run_command_in_law_mode_says_so(tmp_path, capsys):
