@@ -184,9 +184,12 @@ def _stall_host(engine: Engine, stall_ms: float, stop: threading.Event) -> None:
         pid = engine.loop_pid
         if pid is None:
             continue
-        os.kill(pid, signal.SIGSTOP)
-        time.sleep(stall_ms / 1000.0)
-        os.kill(pid, signal.SIGCONT)
+        try:
+            os.kill(pid, signal.SIGSTOP)
+            time.sleep(stall_ms / 1000.0)
+            os.kill(pid, signal.SIGCONT)
+        except ProcessLookupError:  # the run ended meanwhile
+            return
 
 
 def wall_run(exp: dict, seconds: float, link: str, mode: str, stall_ms: float) -> linksim.LinkRun:
