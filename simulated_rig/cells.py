@@ -55,7 +55,7 @@ from typing import NamedTuple
 import numpy as np
 
 from clampcore.jit import kernel
-from clampcore.rng import normal_cached, seed_state
+from clampcore.rng import normal, seed_state
 
 CELL_PASSIVE = 0
 CELL_HH = 1
@@ -82,10 +82,7 @@ S_V_MV = 0
 S_M = 1
 S_H = 2
 S_N = 3
-# The Box–Muller spare deviate and its flag (clampcore.rng.normal_cached): the cell's two
-# noises draw from one stream of standard normal deviates, two per logarithm.
-S_SPARE = 4
-N_STATE = 6
+N_STATE = 4
 
 # The cell's random stream number for clampcore.rng.seed_state: an arbitrary
 # constant of ours, far above any element index, so the cell's stream never
@@ -259,7 +256,7 @@ def cell_advance(
     """
     i_total_pA = i_pA
     if params[P_NOISE_PA] > 0.0:
-        i_total_pA += params[P_NOISE_PA] * normal_cached(rng, 0, state, S_SPARE)
+        i_total_pA += params[P_NOISE_PA] * normal(rng, 0)
     substeps = int(params[P_SUBSTEPS])
     if substeps < 1:
         substeps = 1
@@ -296,7 +293,7 @@ def cell_measure_mV(
     """
     v_mV = state[S_V_MV] + i_pA * params[P_ELECTRODE_MOHM] * _PA_MOHM_TO_MV
     if params[P_MEAS_NOISE_MV] > 0.0:
-        v_mV += params[P_MEAS_NOISE_MV] * normal_cached(rng, 0, state, S_SPARE)
+        v_mV += params[P_MEAS_NOISE_MV] * normal(rng, 0)
     return v_mV
 
 
