@@ -1,6 +1,6 @@
 """Deliberate bugs in the safety paths, and the tests that must catch each one.
 
-    python3 tasks.py mutants                 # all of them (45 min on 2 shared cores)
+    python3 tasks.py mutants                 # all of them (about 25 min on 2 shared cores)
     .venv/bin/python tests/mutants.py --list # what would be applied, and whether it still can be
     .venv/bin/python tests/mutants.py --only teardown,crc
 
