@@ -13,9 +13,12 @@ Every value comes with its unit, how it was measured and a fit quality
   fits, SD over steps). The current of sample n is in force over (t_n, t_{n+1}]
   (DEVELOPERS.md, timing model), so the fit's t = 0 is the step's first sample.
 - **Capacitance**: ``C = τ/R``; also ``C_onset = I/(dV/dt at the onset)`` from a
-  quadratic fitted to the short pulses' summed responses over their summed current
-  (the least-squares response per pA) over the first 0.3 ms or 0.1·τ, whichever is
-  longer (at least 3 samples, at most the pulse):
+  quadratic through the origin fitted to the short pulses' summed responses over their
+  summed current (the least-squares response per pA) over the first 0.3 ms or 0.2·τ,
+  whichever is longer (at least 3 samples, at most the longest pulse; the pulses at
+  least that long); each response is taken from the line fitted to V over the 3 ms
+  before its pulse (the membrane may still be relaxing from the pulse before), and a
+  pulse near a spike (one it provoked, or the one before's) is left out:
   the method for a cell whose step response is not one exponential
   (Hodgkin–Huxley), since at the onset only the capacitor charges. On a port, onsets
   during which a command came late or a sample was lost are left out (the recording's
@@ -63,10 +66,30 @@ MIN_ONSET_SAMPLES = 3  # the onset quadratic: its 3 parameters and the sample be
 # at 30 pF): on that cell, noise-free, 0.2/0.3/0.5/1 ms windows gave C within 0.5/0.9/1.6/
 # 3.7% of the truth (measured here), the error growing with the gates' contribution.
 ONSET_MS = 0.3
-# ... or a tenth of the fitted tau where that is longer (less noise; the quadratic's
-# error at 0.1 tau is below 0.2% for one exponential: the cubic term, (t/tau)^2/6).
-ONSET_TAU_SHARE = 0.1
+# ... or a fifth of the fitted tau where that is longer (less noise). The quadratic then
+# reads C about 1.6% low for one exponential (a noise-free 100 pF / 20 ms cell: 98.4 pF,
+# measured here); over a tenth of tau the bias is smaller but the slope's noise 2.8 times
+# larger, and a 16 pF / 8 ms cell with 0.05 mV of noise came out 6% off.
+ONSET_TAU_SHARE = 0.2
+# The onset is measured against the line fitted to V over the 3 ms before it: 30 samples at
+# 10 kHz average the measurement noise; a longer window lets a slow cell's relaxation from
+# the pulse before bend away from the line (its curvature makes the line too steep).
+# Measured here on a 100 pF / 20 ms cell, 2 ms pulses every 20 ms, noise free: C_onset
+# 98.6 pF with 5 ms, 99.7 with 3 ms, 99.3 with pulses 100 ms apart (the ADC's counts
+# then limit it); with noise, seeds 1-8: 98.3-101.0 pF with 3 ms.
+ONSET_BASE_MS = 3.0
 TROUGH_WINDOW_MS = 50.0
+# Imposed spikes: the release from the rule's clamp is sought where the spike-aligned mean
+# trace first rises this far above its minimum (0.4 ms of a slow rise, 1.25 mV/ms on the
+# 100 pF / 5 nS cell at 150 pA; ten times the mean's noise over 20 spikes at 0.05 mV) ...
+RELEASE_RISE_MV = 0.5
+# ... then located as the kink of a line, flat from the minimum, rising after, fitted up to
+# this long after that point, at RELEASE_GRID of a sample. The minimum: the clamp holds V
+# at the reset until the release, or (a clamp held at the current limit, or a weak one)
+# is still pulling V down when it lets go.
+RELEASE_AFTER_MS = 1.0
+RELEASE_GRID = 20
+MIN_RELEASE_SPIKES = 3  # spikes of one step averaged for a release time
 # A step's onset is fitted only if the first 10 ms came on time (each command in force at
 # the next sample, no sample lost); pulses likewise over their whole length.
 ON_TIME_MS = 10.0  # where the trough after a spike is sought, at most
@@ -96,6 +119,21 @@ def _r2(y: np.ndarray, fit: np.ndarray) -> float:
     return 1.0 - float(np.sum((y - fit) ** 2)) / ss if ss > 0 else float("nan")
 
 
+def _onset_response(run: ProtocolRun, on: int, n_after: int) -> np.ndarray:
+    """V over rows ``on .. on + n_after`` minus the line fitted to the ``ONSET_BASE_MS``
+    before it (row ``on`` included): the response to a current that acts from the row
+    after ``on``, freed of the membrane's own drift (a slow cell still relaxing from the
+    pulse before)."""
+    n_base = max(2, round(ONSET_BASE_MS / run.dt_ms))
+    lo = max(0, on - n_base + 1)
+    rows = np.arange(lo, on + n_after + 1)
+    n = rows if run.sample_n is None else run.sample_n[rows].astype(np.int64)
+    t = (n - n[on - lo]) * run.dt_ms
+    base = slice(0, on - lo + 1)
+    slope, intercept = np.polyfit(t[base], run.v_mV[lo : on + 1], 1)
+    return run.v_mV[on : on + n_after + 1] - (intercept + slope * t[on - lo :])
+
+
 def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     """Rest, input resistance, τ and capacitance from the hyperpolarising steps."""
     dt = run.dt_ms
@@ -103,7 +141,7 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     steps = run.protocol.of_kind("step")
     n_base = round(BASELINE_MS / dt)
     amps, dv_ss, taus, r2s, fits = [], [], [], [], []
-    onsets, step_onset_amps = [], []
+    step_onsets, step_onset_amps = [], []
     # Rest: before the first step. Later steps are measured from it too: the gap between
     # steps need not be long enough for a slow membrane to settle (200 ms: 4 tau at 50 ms).
     first = run.index(steps[0].start_ms)
@@ -121,7 +159,7 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
         guess_tau = max(dt, float(t[np.argmax(np.abs(y - y[0]) >= 0.63 * abs(ss - base))]))
         if not run.on_time(on, min(off - on - 1, round(ON_TIME_MS / dt))):
             continue  # a late command or a lost sample shapes the onset: no fit
-        onsets.append(v[on:off] - base)
+        step_onsets.append(on)
         step_onset_amps.append(seg.delta_pA)
         try:
             popt, _ = optimize.curve_fit(
@@ -145,30 +183,42 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
     c_pF = tau / r_MOhm * 1000.0
     # onset: the pulses' (else the steps') summed response over their summed current,
     # the least-squares mean response per pA
-    pulses = [
-        p
-        for p in run.protocol.of_kind("pulse")
-        if run.on_time(run.index(p.start_ms), run.index(p.end_ms) - run.index(p.start_ms))
-    ]
-    if pulses:
-        onsets = [v[run.index(p.start_ms) : run.index(p.end_ms) + 1] for p in pulses]
-        onsets = [o - o[0] for o in onsets]
-        amps_on = [p.delta_pA for p in pulses]
-    else:
-        amps_on = step_onset_amps
-    if not onsets:
+    quiet, n_spiking = [], 0  # (onset row, rows long, pA) of the pulses on time, not near a spike
+    prev_start = None
+    for p in run.protocol.of_kind("pulse"):
+        on, off = run.index(p.start_ms), run.index(p.end_ms)
+        # a pulse that made the cell fire (an anode-break spike: the Hodgkin-Huxley model
+        # cell does so) leaves the next pulse's baseline still moving: both left out
+        lo = on - round(ONSET_BASE_MS / dt) if prev_start is None else prev_start
+        prev_start = on
+        if np.max(v[max(0, lo) : off + 1]) >= run.spike_threshold_mV:
+            n_spiking += 1
+        elif run.on_time(on, off - on):
+            quiet.append((on, off - on, p.delta_pA))
+    if not quiet:  # no pulses: the steps' onsets
+        n_step = round(ON_TIME_MS / dt)
+        quiet = [(on, n_step, a) for on, a in zip(step_onsets, step_onset_amps, strict=True)]
+    if not quiet:
         raise ValueError(
             "no step or pulse began on time (late commands or lost samples at every onset): "
             "the loop cannot keep up; try a lower rate_hz"
         )
     tau_for_window = tau if math.isfinite(tau) else 0.0
     n_on = max(MIN_ONSET_SAMPLES, round(max(ONSET_MS, ONSET_TAU_SHARE * tau_for_window) / dt))
-    n_on = min(n_on, min(o.size for o in onsets) - 1)  # within the pulse
-    mean_resp = np.sum([o[: n_on + 1] for o in onsets], axis=0) / float(np.sum(amps_on))
-    t_on = np.arange(n_on + 1) * dt
-    coef, cov = np.polyfit(t_on, mean_resp, 2, cov="unscaled" if n_on < 3 else True)
-    c_onset_pF = 1.0 / coef[1]  # (mV/ms)/pA -> pF
-    slope_rel_se = float(np.sqrt(cov[1, 1]) / abs(coef[1])) if n_on >= 3 else float("nan")
+    n_on = int(min(n_on, max(n for _, n, _ in quiet)))  # within the longest pulse
+    used = [(on, a) for on, n, a in quiet if n >= n_on]  # the pulses that long
+    resp = [_onset_response(run, on, n_on) for on, _ in used]
+    mean_resp = np.sum(resp, axis=0) / float(np.sum([a for _, a in used]))
+    # through the origin: the baseline line fixes V at the onset sample
+    t_on = np.arange(1, n_on + 1) * dt
+    design = np.vstack([t_on, t_on**2]).T
+    coef, ss_res, *_ = np.linalg.lstsq(design, mean_resp[1:], rcond=None)
+    c_onset_pF = 1.0 / coef[0]  # (mV/ms)/pA -> pF
+    if n_on > 2 and ss_res.size:
+        cov = np.linalg.inv(design.T @ design) * float(ss_res[0]) / (n_on - 2)
+        slope_rel_se = float(np.sqrt(cov[0, 0]) / abs(coef[0]))
+    else:
+        slope_rel_se = float("nan")
     values = {
         "resting_potential": value(
             rest,
@@ -204,7 +254,8 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
             "pF",
             f"I / (dV/dt at onset): quadratic over the first {n_on} samples",
             n_samples=n_on,
-            n_pulses=len(onsets),
+            n_pulses=len(used),
+            n_pulses_near_a_spike=n_spiking,
             relative_se=slope_rel_se,
         ),
     }
@@ -214,6 +265,7 @@ def analyse_passive(run: ProtocolRun) -> dict[str, Any]:
         "intercept_mV": reg.intercept,
         "fits": fits,
         "steps": [(s.start_ms, s.end_ms, s.delta_pA) for s in steps],
+        "onsets_per_pA": [r / a for r, (_, a) in zip(resp, used, strict=True)],
     }
     return {"values": values, "figure": figure}
 
@@ -292,6 +344,52 @@ def isi_stats(times_ms: np.ndarray) -> tuple[float, float]:
         else float("nan")
     )
     return cv, adapt
+
+
+def release_ms(trace_mV: np.ndarray, dt_ms: float) -> float:
+    """Where a spike-aligned mean trace (sample 0: the spike's) leaves the reset clamp, ms.
+
+    The kink of ``a + s·max(0, t − t_r)`` fitted by least squares from the trace's
+    minimum to ``RELEASE_AFTER_MS`` past its first rise of ``RELEASE_RISE_MV`` above it,
+    ``t_r`` on a grid of ``dt/RELEASE_GRID``; NaN when the trace never rises that far.
+    """
+    low = int(np.argmin(trace_mV))
+    risen = np.flatnonzero(trace_mV[low:] >= trace_mV[low] + RELEASE_RISE_MV)
+    if not risen.size:
+        return float("nan")
+    coarse = low + int(risen[0])
+    hi = min(trace_mV.size, coarse + round(RELEASE_AFTER_MS / dt_ms) + 1)
+    t = np.arange(low, hi) * dt_ms
+    y = trace_mV[low:hi]
+    best, best_sse = float("nan"), math.inf
+    for t_r in np.arange(t[0], coarse * dt_ms + 1e-12, dt_ms / RELEASE_GRID):
+        design = np.vstack([np.ones_like(t), np.maximum(0.0, t - t_r)]).T
+        coef, *_ = np.linalg.lstsq(design, y, rcond=None)
+        sse = float(np.sum((design @ coef - y) ** 2))
+        if sse < best_sse:
+            best, best_sse = float(t_r), sse
+    return best
+
+
+def _refractory(v_mV: np.ndarray, dt_ms: float, peaks: np.ndarray, sets: list) -> dict:
+    """The refractory period of imposed spikes: the release from the clamp, per step."""
+    per_step = []
+    for idx in sets:
+        if idx.size < MIN_RELEASE_SPIKES + 1:
+            continue
+        p = peaks[idx]
+        n = int(min(np.min(np.diff(p)), round(TROUGH_WINDOW_MS / dt_ms)))
+        mean = np.mean([v_mV[a : a + n] for a in p[:-1]], axis=0)  # each followed by the next
+        per_step.append(release_ms(mean, dt_ms))
+    per_step = [x for x in per_step if math.isfinite(x)]
+    return value(
+        float(np.median(per_step)) if per_step else None,
+        "ms",
+        "imposed spikes: from the spike's sample to the release from the reset clamp (the"
+        " kink where V starts to rise in the spike-aligned mean of each step), median",
+        sd_ms=float(np.std(per_step)) if per_step else None,
+        n_steps=len(per_step),
+    )
 
 
 def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, Any]:
@@ -377,6 +475,8 @@ def analyse_active(run: ProtocolRun, hysteresis_mV: float = 10.0) -> dict[str, A
         "full width at half height (threshold to peak), median",
         sd_ms=float(np.nanstd(feats["width_ms"])) if spikes_ok.any() else None,
     )
+    if n_sp and not spikes_ok.any():  # every spike imposed by a threshold_reset rule
+        values["refractory_period"] = _refractory(v, dt, peaks, spike_sets)
     values["spike_trough"] = value(
         float(np.nanmedian(feats["trough_mV"])) if n_sp else None,
         "mV",

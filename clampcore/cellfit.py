@@ -12,9 +12,11 @@ one recording finds the other beside it):
   ``E_L`` = resting potential from the passive values (``C = τ/R`` when one
   exponential describes the step response, mean R² >= 0.9; otherwise — a
   Hodgkin–Huxley-like response — the onset capacitance); threshold = the spike
-  threshold, reset = the trough after the spike; the refractory period is the one
-  free parameter, fitted (``scipy.optimize.minimize_scalar``, bounded) to the f–I
-  curve with the LIF's closed-form rate for a step ``I`` from rest::
+  threshold, reset = the trough after the spike; the refractory period is measured
+  where the spikes are imposed by a ``threshold_reset`` rule (the release from its
+  clamp, ``refractory_period`` of the characterisation), else it is the one free
+  parameter, fitted (``scipy.optimize.minimize_scalar``, bounded) to the f–I curve
+  with the LIF's closed-form rate for a step ``I`` from rest::
 
       f(I) = 1 / (t_ref + τ·ln((V∞ − V_reset)/(V∞ − θ))),  V∞ = E_L + R·I > θ; else 0
 
@@ -140,7 +142,10 @@ def fit_lif(values: dict[str, Any], rate_hz: float) -> dict[str, Any]:
         q = dict(p, refractory_ms=t_ref)
         return float(np.sum((lif_rate_hz(amps[fired], q) - rates[fired]) ** 2))
 
-    if fired.any():
+    measured = values.get("refractory_period", {}).get("value")
+    if measured is not None:  # imposed spikes: the clamp's own period, measured
+        t_ref = float(measured)
+    elif fired.any():
         res = optimize.minimize_scalar(loss, bounds=(dt_ms, 100.0), method="bounded")
         t_ref = float(res.x)
     else:

@@ -3,12 +3,13 @@
 Two protocols, each one run (one NWB recording):
 
 - ``passive``: a baseline, then a family of hyperpolarising steps (300 ms on, 200 ms
-  off), from 40% to 100% of a step that moves V by about −4 mV according to an estimate of the
-  input resistance; small enough to keep a cell near rest, where it is close to
-  linear, and out of anode-break spikes (the Hodgkin–Huxley model cell fires a rebound
-  spike after 300 ms at −5 mV: measured here), large enough to stand above the noise;
-  then 25 short hyperpolarising pulses (1 ms, every 20 ms) for the capacitance from
-  the onset slope.
+  off, the family three times), from 40% to 100% of a step that moves V by about
+  −4 mV according to an estimate of the input resistance; small enough to keep a cell
+  near rest, where it is close to linear, and out of anode-break spikes (the
+  Hodgkin–Huxley model cell fires a rebound spike after 300 ms at −5 mV: measured
+  here), large enough to stand above the noise; then 100 short hyperpolarising pulses
+  (50 of 1 ms, 50 of 5 ms, every 30 ms, each worth −10 mV at steady state) for the
+  capacitance from the onset slope.
 - ``active``: a family of depolarising steps (500 ms on, 300 ms off, equal increments
   up to a top step worth about +40 mV of passive depolarisation: typical neurons fire
   15–25 mV above rest, common practice), a slow ramp (4 s, 0 to 1.25× the top step)
@@ -19,7 +20,7 @@ Each stimulus is a ``current`` element added to the experiment's own elements
 (so a virtual ``threshold_reset`` or ``leak`` in the file stays in force), named
 ``protocol_<segment>``; the recording stores each element's current, so the
 analysis reads back exactly what was commanded. Total protocol time with the
-default sizes: about 3.2 s + 17 s.
+default sizes: about 10.9 s + 16.8 s.
 
 Amplitudes are put on the DAC's grid (``dac_quantiser``: the simulated rig's 16-bit
 converters; a hardware board with other converters rounds them again, by at most half
@@ -65,12 +66,24 @@ PASSIVE_TARGET_MV = -4.0
 # The smallest passive step is this share of the largest: small steps sit close to the
 # ADC's resolution (0.03 mV of membrane at 100 mV/V, 16 bits over +-10 V).
 PASSIVE_SMALLEST_SHARE = 0.4
-# Short hyperpolarising pulses for the capacitance at the onset: 1 ms, worth -20 mV at
-# steady state (a cell with tau >= 1 ms moves at most 63% of it), every 20 ms (10 tau
-# of a fast cell: measured tau 1.5 ms for the Hodgkin-Huxley model cell at 30 pF).
-PULSE_TARGET_MV = -20.0
-PULSE_MS = 1.0
-PULSE_PERIOD_MS = 20.0
+# The family three times over: its steps are small (above), and a cell's own noise makes
+# each point's steady state and each transient uncertain; a single family measured R and
+# tau only 5-7% right on a 500 MOhm cell with 0.05 mV of noise (measured here).
+PASSIVE_REPEATS = 3
+# Short hyperpolarising pulses for the capacitance at the onset, worth -10 mV at steady
+# state: 50 of 1 ms, then 50 of 5 ms, every 30 ms (3 s). The onset is measured over 0.1 tau
+# (cellfeatures), so a slow cell needs the long ones: its onset slope is 10 mV / tau
+# whatever the pulse, and the slope's noise falls as the window's length to the power 1.5
+# (1 ms pulses gave 96-104 pF on a noisy 100 pF / 20 ms cell, seeds 1-8, measured here). A
+# fast excitable cell needs the short ones: the Hodgkin-Huxley model cell answers a 5 ms
+# pulse with an anode-break spike (2 ms pulses at -20 mV already on most; such pulses and
+# the ones after them are left out of the onset). 30 ms apart: 12 tau of a fast cell
+# (tau 1.5 ms, the HH model cell at 30 pF; a slower cell's relaxation is taken off by the
+# onset's baseline line).
+PULSE_TARGET_MV = -10.0
+PULSE_LENGTHS_MS = (1.0, 5.0)
+PULSES_PER_LENGTH = 50
+PULSE_PERIOD_MS = 30.0
 # Active steps: the top step's passive depolarisation (see the module docstring).
 ACTIVE_TARGET_MV = 40.0
 # Noise correlation time: a few ms, like synaptic background (common practice).
@@ -168,8 +181,9 @@ def passive_protocol(
     step_ms: float = 300.0,
     gap_ms: float = 200.0,
     lead_ms: float = 200.0,
-    n_pulses: int = 25,
+    pulses_per_length: int = PULSES_PER_LENGTH,
     dac: Any = None,
+    repeats: int = PASSIVE_REPEATS,
 ) -> Protocol:
     """Hyperpolarising steps and short pulses from an input-resistance estimate (MΩ)."""
     top_pA = _passive_pA(PASSIVE_TARGET_MV, r_estimate_MOhm)
@@ -177,14 +191,16 @@ def passive_protocol(
     q = dac or _identity
     segs = []
     t = lead_ms
-    for i, amp in enumerate(amps):
-        segs.append(Segment(f"hyper_{i + 1}", "step", t, step_ms, q(amp), baseline_pA=q(0.0)))
+    for amp in np.tile(amps, repeats):
+        name = f"hyper_{len(segs) + 1}"
+        segs.append(Segment(name, "step", t, step_ms, q(amp), baseline_pA=q(0.0)))
         t += step_ms + gap_ms
     pulse_pA = q(
         float(_cap(np.array([_passive_pA(PULSE_TARGET_MV, r_estimate_MOhm)]), limit_pA)[0])
     )
-    for i in range(n_pulses):
-        segs.append(Segment(f"pulse_{i + 1}", "pulse", t, PULSE_MS, pulse_pA, baseline_pA=q(0.0)))
+    for k, length_ms in enumerate(np.repeat(PULSE_LENGTHS_MS, pulses_per_length)):
+        name = f"pulse_{k + 1}"
+        segs.append(Segment(name, "pulse", t, float(length_ms), pulse_pA, baseline_pA=q(0.0)))
         t += PULSE_PERIOD_MS
     return Protocol("passive", tuple(segs), t + gap_ms)
 

@@ -65,18 +65,8 @@ def write_report(
     ax = fig.add_subplot(grid[0, 2])
     q = values["capacitance_onset"]["quality"]
     n_on = int(q["n_samples"])
-    pulses = passive.protocol.of_kind("pulse") or passive.protocol.of_kind("step")
-    for seg in pulses:
-        on = passive.index(seg.start_ms)
-        if not passive.on_time(on, n_on):
-            continue  # left out of the analysis too
-        trace = passive.v_mV[on : on + 4 * n_on + 1]
-        ax.plot(
-            np.arange(trace.size) * passive.dt_ms,
-            (trace - trace[0]) / seg.delta_pA,
-            lw=0.5,
-            color="0.5",
-        )
+    for trace in fp["onsets_per_pA"]:  # the ones the analysis used, from their baselines
+        ax.plot(np.arange(trace.size) * passive.dt_ms, trace, lw=0.5, color="0.5")
     c_on = values["capacitance_onset"]["value"]
     ax.plot([0, n_on * passive.dt_ms], [0, n_on * passive.dt_ms / c_on], "r--", lw=1.2)
     ax.set(

@@ -500,6 +500,28 @@ MUTANTS: tuple[Mutant, ...] = (
         ("tests/test_characterize.py::test_passive_cell_values_within_five_percent",),
     ),
     Mutant(
+        "onset-drift",
+        "characterisation: the onset taken from a flat baseline (a slow cell's drift ignored)",
+        "clampcore/cellfeatures.py",
+        "- (intercept + slope * t[on - lo :])",
+        "- (intercept + 0.0 * t[on - lo :])",
+        (
+            "tests/test_characterize.py::test_passive_cell_values_within_five_percent",
+            "tests/test_characterize.py::test_passive_values_hold_across_cells",
+        ),
+    ),
+    Mutant(
+        "release-from-spike",
+        "characterisation: the release from an imposed clamp fitted from the spike, not the reset",
+        "clampcore/cellfeatures.py",
+        "    t = np.arange(low, hi) * dt_ms\n    y = trace_mV[low:hi]",
+        "    t = np.arange(0, hi) * dt_ms\n    y = trace_mV[0:hi]",
+        (
+            "tests/test_characterize.py::test_lif_fit_recovers_the_imposed_rule",
+            "tests/test_characterize.py::test_rheobase_and_fi_hold_across_cells",
+        ),
+    ),
+    Mutant(
         "poisson-one",
         "Poisson input: at most one event per sample (events sharing a sample lost)",
         "clampcore/elements/synapse.py",

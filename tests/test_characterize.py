@@ -61,8 +61,9 @@ IMPOSED = {
     },
     "amplifier": {"vm_mV_per_V": 100, "command_pA_per_V": 400},
     "element": [
-        # g 500 nS: V reaches reset within C/g = 0.2 ms, well inside the 2 ms refractory
-        # period, and a quarter of the loop's stable limit at 10 kHz (clampcore.stability).
+        # g 500 nS: a quarter of the loop's stable limit at 10 kHz (clampcore.stability).
+        # The clamp asks for 8 nA and gets the 800 pA limit (the limit applies to the whole
+        # command): V falls about 9 mV/ms and reaches the reset as the 2 ms end.
         {
             "kind": "threshold_reset",
             "name": "imposed",
@@ -331,20 +332,34 @@ def test_adaptation_index_matches_efel():
 
 
 # ------------------------------------------------------------------ property test
-@settings(max_examples=6, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=20, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
-    g_nS=st.floats(2, 20),
-    tau_ms=st.floats(5, 50),  # typical neurons: 10-50 ms (common practice), and faster
+    # 50-333 MOhm; typical neurons' tau: 10-50 ms (common practice), and a little faster
+    g_nS=st.floats(3, 20),
+    tau_ms=st.floats(8, 50),
     rest_mV=st.floats(-80, -55),
-    noise_pA=st.floats(0, 2),
+    # The membrane's own noise as the SD of V at rest it makes: a current noise of SD
+    # sigma_I held per sample gives sigma_I * sqrt(dt / (2 C g)) (the variance of an OU
+    # process, e.g. Gardiner, Handbook of Stochastic Methods, 3.8.4). Measurement noise
+    # from one count of the ADC (0.0305 mV at 100 mV/V, 16 bits over +-10 V) up: a real
+    # recording's noise dithers the ADC's rounding; a noise-free model cell repeats the
+    # same rounding in every pulse, and the onset's average cannot remove it.
+    # The limits are the protocol's (measured here, hypothesis seeds 999 and 4242): with
+    # 0.05 mV of each, tau and tau/R came out 5.1-5.5% off on 3 nS cells (the family
+    # sized from the 1.5x estimate below has steps of 1.1-2.7 mV); 2 nS or tau 5 ms, 6-9%
+    # off. Such a cell needs a better estimate or the characterisation repeated.
+    v_noise_mV=st.floats(0, 0.03),
+    meas_mV=st.floats(0.03, 0.04),
     seed=st.integers(0, 1000),
 )
-def test_passive_values_hold_across_cells(g_nS, tau_ms, rest_mV, noise_pA, seed):
+def test_passive_values_hold_across_cells(g_nS, tau_ms, rest_mV, v_noise_mV, meas_mV, seed):
     c_pF = g_nS * tau_ms
+    noise_pA = v_noise_mV / math.sqrt(0.1 / (2.0 * c_pF * g_nS))  # dt 0.1 ms (10 kHz)
     exp = {
         "loop": {"rate_hz": 10000, "max_current_pA": 1000},
         "cell": {"model": "passive", "capacitance_pF": c_pF, "leak_nS": g_nS,
-                 "rest_mV": rest_mV, "noise_pA": noise_pA, "seed": seed},
+                 "rest_mV": rest_mV, "noise_pA": noise_pA, "seed": seed,
+                 "measurement_noise_mV": meas_mV},
     }  # fmt: skip
     # sized from a wrong estimate (x1.5): the analysis must not depend on a good guess
     proto = passive_protocol(1.5 * 1000.0 / g_nS, 1000.0, dac=dac_quantiser(exp))
@@ -354,9 +369,11 @@ def test_passive_values_hold_across_cells(g_nS, tau_ms, rest_mV, noise_pA, seed)
     assert v["input_resistance"]["value"] == pytest.approx(1000.0 / g_nS, rel=0.05)
     assert v["membrane_time_constant"]["value"] == pytest.approx(tau_ms, rel=0.05)
     assert v["capacitance"]["value"] == pytest.approx(c_pF, rel=0.05)
+    # the onset: only the capacitor charges (C dV/dt = I at t = 0, the RC membrane)
+    assert v["capacitance_onset"]["value"] == pytest.approx(c_pF, rel=0.05)
 
 
-@settings(max_examples=5, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(c_pF=st.floats(15, 100), noise_pA=st.floats(0, 5), seed=st.integers(0, 1000))
 def test_hh_values_hold_across_cells(c_pF, noise_pA, seed):
     exp = {
@@ -382,11 +399,16 @@ def test_hh_values_hold_across_cells(c_pF, noise_pA, seed):
     between=st.floats(0.3, 0.7),
     noise_pA=st.floats(0.1, 0.5),
     seed=st.integers(0, 1000),
+    refractory_ms=st.floats(1.0, 5.0),
 )
-def test_rheobase_and_fi_hold_across_cells(g_nS, tau_ms, step_below, between, noise_pA, seed):
+def test_rheobase_and_fi_hold_across_cells(
+    g_nS, tau_ms, step_below, between, noise_pA, seed, refractory_ms
+):
     """Passive cells made integrate-and-fire (threshold_reset), with noise: the rheobase
     within one step of the LIF's g_L (theta - E_L) (Gerstner & Kistler 2002) and every f-I
-    point within 5% or one spike of the model's own noise-free simulation.
+    point within 5% or one spike of the model's own noise-free simulation; the refractory
+    period measured where V leaves the clamp within 0.1 ms of the one the rule applied
+    (ceil(refractory_ms / dt) samples: clampcore/elements/threshold_reset.py).
 
     The threshold puts the rheobase between two steps of the family, every step at least
     1.2 mV of drive from theta (7 SD of V even if the 0.5 pA noise current held still on
@@ -403,7 +425,9 @@ def test_rheobase_and_fi_hold_across_cells(g_nS, tau_ms, step_below, between, no
     # the clamp's C/g 0.2 ms (a quarter of the loop's stable limit at 10 kHz), and a current
     # limit that lets it get there within the refractory period: 16 mV x C / 2 ms <= 2400 pA
     # (C <= 300 pF), well inside the 4000 pA that +-10 V at 400 pA/V can command.
-    exp["element"][0].update(threshold_mV=theta, reset_mV=theta - 16.0, g_nS=c_pF / 0.2)
+    exp["element"][0].update(
+        threshold_mV=theta, reset_mV=theta - 16.0, g_nS=c_pF / 0.2, refractory_ms=refractory_ms
+    )
     exp["loop"].update(spike_threshold_mV=theta, max_current_pA=3000.0)
     proto = active_protocol(1000.0 / g_nS, 800.0, seed=seed, dac=dac_quantiser(exp))
     values = analyse_active(run_protocol(exp, proto, None, seed=seed))["values"]
@@ -412,6 +436,8 @@ def test_rheobase_and_fi_hold_across_cells(g_nS, tau_ms, step_below, between, no
     truth = g_nS * above_rest_mV
     assert truth <= values["rheobase"]["value"] <= truth + step
     _check_fi({"values": values}, exp)
+    applied_ms = math.ceil(refractory_ms * 10.0 - 1e-9) / 10.0  # 10 kHz: 0.1 ms samples
+    assert values["refractory_period"]["value"] == pytest.approx(applied_ms, abs=0.1)
 
 
 # ------------------------------------------------------------ simulated rig, CLI
