@@ -38,6 +38,11 @@ Every value comes with its unit, how it was measured and a fit quality
 - **f–I**: spikes per depolarising step / step duration; **rheobase**: the smallest
   step with a spike (resolution: the step increment) and, from the ramp, the current
   at its first spike; **f–I slope**: least-squares line through the steps that fired.
+- **Refractory period** (only when every spike is imposed, by a ``threshold_reset``
+  rule): per step with at least 4 spikes, the spike-aligned mean trace; where it leaves
+  the rule's clamp (``release_ms``: the kink of a line, flat from the trace's minimum,
+  rising after); the median over steps. The rule lets go ``refractory_ms`` after the
+  spike's sample, so this is its refractory period, read from V alone.
 - **ISI CV and adaptation**: over the step with the most spikes (at least 4): CV =
   sample SD/mean of the intervals; adaptation index = mean of (ISI_{i+1} − ISI_i)/
   (ISI_{i+1} + ISI_i) over consecutive pairs from the second interval on (the first is
@@ -45,7 +50,8 @@ Every value comes with its unit, how it was measured and a fit quality
   The noise segment's rate and ISI CV are reported too.
 
 Public names: ``characterise``, ``analyse_passive``, ``analyse_active``,
-``detect_spikes``, ``spike_features``, ``isi_stats``, ``value``, ``DVDT_THRESHOLD_MV_PER_MS``.
+``detect_spikes``, ``spike_features``, ``isi_stats``, ``release_ms``, ``value``,
+``DVDT_THRESHOLD_MV_PER_MS``.
 """
 
 from __future__ import annotations
@@ -61,7 +67,7 @@ from clampcore.protocols import ProtocolRun
 # dV/dt criterion for spike threshold (see the module docstring).
 DVDT_THRESHOLD_MV_PER_MS = 20.0
 BASELINE_MS = 100.0  # baseline window before each step
-MIN_ONSET_SAMPLES = 3  # the onset quadratic: its 3 parameters and the sample before
+MIN_ONSET_SAMPLES = 3  # the onset quadratic through the origin: 2 parameters and 1 more
 # Onset window: short against the fastest membrane expected (tau 1.5 ms, the HH model cell
 # at 30 pF): on that cell, noise-free, 0.2/0.3/0.5/1 ms windows gave C within 0.5/0.9/1.6/
 # 3.7% of the truth (measured here), the error growing with the gates' contribution.
@@ -74,7 +80,7 @@ ONSET_TAU_SHARE = 0.2
 # The onset is measured against the line fitted to V over the 3 ms before it: 30 samples at
 # 10 kHz average the measurement noise; a longer window lets a slow cell's relaxation from
 # the pulse before bend away from the line (its curvature makes the line too steep).
-# Measured here on a 100 pF / 20 ms cell, 2 ms pulses every 20 ms, noise free: C_onset
+# Measured here on a 100 pF / 20 ms cell (2 ms pulses every 20 ms then), noise free: C_onset
 # 98.6 pF with 5 ms, 99.7 with 3 ms, 99.3 with pulses 100 ms apart (the ADC's counts
 # then limit it); with noise, seeds 1-8: 98.3-101.0 pF with 3 ms.
 ONSET_BASE_MS = 3.0
@@ -371,7 +377,9 @@ def release_ms(trace_mV: np.ndarray, dt_ms: float) -> float:
     return best
 
 
-def _refractory(v_mV: np.ndarray, dt_ms: float, peaks: np.ndarray, sets: list) -> dict:
+def _refractory(
+    v_mV: np.ndarray, dt_ms: float, peaks: np.ndarray, sets: list[np.ndarray]
+) -> dict[str, Any]:
     """The refractory period of imposed spikes: the release from the clamp, per step."""
     per_step = []
     for idx in sets:
