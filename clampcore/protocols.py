@@ -71,7 +71,7 @@ PASSIVE_SMALLEST_SHARE = 0.4
 # tau only 5-7% right on a 500 MOhm cell with 0.05 mV of noise (measured here).
 PASSIVE_REPEATS = 3
 # Short hyperpolarising pulses for the capacitance at the onset, worth -10 mV at steady
-# state: 50 of 1 ms, then 50 of 5 ms, every 30 ms (3 s). The onset is measured over 0.1 tau
+# state: 50 of 1 ms, then 50 of 5 ms, every 30 ms (3 s). The onset is measured over 0.2 tau
 # (cellfeatures), so a slow cell needs the long ones: its onset slope is 10 mV / tau
 # whatever the pulse, and the slope's noise falls as the window's length to the power 1.5
 # (1 ms pulses gave 96-104 pF on a noisy 100 pF / 20 ms cell, seeds 1-8, measured here). A
