@@ -63,7 +63,8 @@ IMPOSED = {
     "element": [
         # g 500 nS: a quarter of the loop's stable limit at 10 kHz (clampcore.stability).
         # The clamp asks for 8 nA and gets the 800 pA limit (the limit applies to the whole
-        # command): V falls about 9 mV/ms and reaches the reset as the 2 ms end.
+        # command): V falls about 9 mV/ms and reaches the reset as the 2 ms run out
+        # (measured here: 8.8 mV/ms in the spike-aligned mean).
         {
             "kind": "threshold_reset",
             "name": "imposed",
@@ -340,7 +341,7 @@ def test_adaptation_index_matches_efel():
     rest_mV=st.floats(-80, -55),
     # The membrane's own noise as the SD of V at rest it makes: a current noise of SD
     # sigma_I held per sample gives sigma_I * sqrt(dt / (2 C g)) (the variance of an OU
-    # process, e.g. Gardiner, Handbook of Stochastic Methods, 3.8.4). Measurement noise
+    # process; Gardiner, Handbook of Stochastic Methods, sec. 3.8.4, from memory). Measurement noise
     # from one count of the ADC (0.0305 mV at 100 mV/V, 16 bits over +-10 V) up: a real
     # recording's noise dithers the ADC's rounding; a noise-free model cell repeats the
     # same rounding in every pulse, and the onset's average cannot remove it.
